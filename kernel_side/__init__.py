@@ -1,0 +1,27 @@
+"""jostle: how a Bayesian neural network's posterior predictive holds up under attack."""
+from __future__ import annotations
+
+from . import datasets, metrics
+from .datasets import Dataset
+from .ensemble import DEFAULT_MEMORY_BUDGET, Ensemble
+from .models import build_architecture, init_parameters, mlp, register_architecture
+from .prediction import Prediction, entropy
+from .storage import FormatError, load
+
+__version__ = "0.1.0"
+
+__all__ = [
+    "DEFAULT_MEMORY_BUDGET",
+    "Dataset",
+    "Ensemble",
+    "FormatError",
+    "Prediction",
+    "build_architecture",
+    "datasets",
+    "entropy",
+    "init_parameters",
+    "load",
+    "metrics",
+    "mlp",
+    "register_architecture",
+]

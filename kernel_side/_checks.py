@@ -1,0 +1,119 @@
+"""Input checks shared by the public functions.
+
+Every check raises with a message that names the parameter, the rule and the
+value received, e.g. ``eps must be a finite float >= 0; got -0.1``.
+"""
+from __future__ import annotations
+
+import math
+from numbers import Integral, Real
+from typing import Any
+
+import numpy as np
+import torch
+from torch import Tensor
+
+
+def _show(value: Any) -> str:
+    if isinstance(value, Tensor):
+        if value.numel() <= 6:
+            return repr(value.tolist())
+        return f"tensor of shape {tuple(value.shape)}"
+    if isinstance(value, np.ndarray):
+        if value.size <= 6:
+            return repr(value.tolist())
+        return f"array of shape {value.shape}"
+    text = repr(value)
+    return text if len(text) <= 80 else text[:77] + "..."
+
+
+def check_int(name: str, value: Any, *, low: int | None = None, high: int | None = None) -> int:
+    """An integer within [low, high]; bools are refused."""
+    rule = "an integer"
+    if low is not None and high is not None:
+        rule = f"an integer in [{low}, {high}]"
+    elif low is not None:
+        rule = f"an integer >= {low}"
+    elif high is not None:
+        rule = f"an integer <= {high}"
+    if isinstance(value, bool) or not isinstance(value, Integral):
+        raise ValueError(f"{name} must be {rule}; got {_show(value)}")
+    value = int(value)
+    if (low is not None and value < low) or (high is not None and value > high):
+        raise ValueError(f"{name} must be {rule}; got {value}")
+    return value
+
+
+def check_float(
+    name: str,
+    value: Any,
+    *,
+    low: float | None = None,
+    high: float | None = None,
+    low_open: bool = False,
+    high_open: bool = False,
+) -> float:
+    """A finite real number within the given bounds."""
+    parts = []
+    if low is not None:
+        parts.append(f"{'>' if low_open else '>='} {low:g}")
+    if high is not None:
+        parts.append(f"{'<' if high_open else '<='} {high:g}")
+    rule = "a finite float" + (" " + " and ".join(parts) if parts else "")
+    if isinstance(value, bool) or not isinstance(value, Real):
+        raise ValueError(f"{name} must be {rule}; got {_show(value)}")
+    value = float(value)
+    bad = not math.isfinite(value)
+    if low is not None:
+        bad = bad or (value <= low if low_open else value < low)
+    if high is not None:
+        bad = bad or (value >= high if high_open else value > high)
+    if bad:
+        raise ValueError(f"{name} must be {rule}; got {value:g}")
+    return value
+
+
+def check_choice(name: str, value: Any, choices: tuple[str, ...]) -> str:
+    if not isinstance(value, str) or value not in choices:
+        listed = ", ".join(repr(c) for c in choices)
+        raise ValueError(f"{name} must be one of {listed}; got {_show(value)}")
+    return value
+
+
+def as_float_tensor(
+    name: str,
+    value: Any,
+    *,
+    ndim: int | tuple[int, ...] | None = None,
+    dtype: torch.dtype = torch.float32,
+    device: torch.device | str | None = None,
+) -> Tensor:
+    """Convert array-likes to a finite floating tensor, checking its rank."""
+    try:
+        tensor = torch.as_tensor(value, dtype=dtype, device=device)
+    except (TypeError, ValueError, RuntimeError) as err:
+        raise ValueError(f"{name} must be a numeric array; got {_show(value)} ({err})") from None
+    if ndim is not None:
+        allowed = (ndim,) if isinstance(ndim, int) else ndim
+        if tensor.ndim not in allowed:
+            ranks = " or ".join(f"{r}-d" for r in allowed)
+            raise ValueError(f"{name} must be a {ranks} array; got shape {tuple(tensor.shape)}")
+    if not bool(torch.isfinite(tensor).all()):
+        raise ValueError(f"{name} must contain only finite values; got NaN or inf")
+    return tensor
+
+
+def as_label_tensor(name: str, value: Any, *, n_points: int, classes: int | None = None) -> Tensor:
+    """Integer class labels of shape (n_points,) within [0, classes)."""
+    array = np.asarray(value.detach().cpu() if isinstance(value, Tensor) else value)
+    if array.ndim != 1 or array.shape[0] != n_points:
+        raise ValueError(f"{name} must have shape ({n_points},); got shape {array.shape}")
+    if array.size and not np.issubdtype(array.dtype, np.integer):
+        if not np.all(np.isfinite(array)) or not np.all(array == np.round(array)):
+            raise ValueError(f"{name} must hold integer class labels; got dtype {array.dtype}")
+    labels = torch.as_tensor(array.astype(np.int64))
+    if labels.numel() and int(labels.min()) < 0:
+        raise ValueError(f"{name} must hold labels >= 0; got {int(labels.min())}")
+    if classes is not None and labels.numel() and int(labels.max()) >= classes:
+        raise ValueError(f"{name} must hold labels < {classes} (the number of classes); got {int(labels.max())}")
+    return labels

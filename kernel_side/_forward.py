@@ -1,0 +1,226 @@
+"""Vectorised forward passes over stacked parameters, chunked under a memory budget.
+
+Two plans share one interface. ``MLPPlan`` handles ``nn.Sequential`` stacks of Linear
+layers and elementwise activations with batched matrix products (the common case, and
+much faster than ``vmap`` at small N). ``GeneralPlan`` handles any module with
+``torch.func.vmap(functional_call)``.
+"""
+from __future__ import annotations
+
+from typing import Callable
+
+import torch
+from torch import Tensor, nn
+from torch.func import functional_call, vmap
+
+_ELEMENTWISE = (
+    nn.Tanh, nn.ReLU, nn.GELU, nn.SiLU, nn.ELU, nn.Sigmoid, nn.Softplus, nn.LeakyReLU,
+    nn.Mish, nn.Hardtanh, nn.Identity, nn.Dropout,
+)
+
+# Activations of one chunk are sized to stay near this many bytes: measured on a 2-core
+# CPU, per-layer blocks of about this size keep batched GEMMs cache-resident (see
+# benchmarks/bench_ensemble.py); a whole-ensemble block at N = 2,500 is ~2x slower.
+_CACHE_BYTES = 1 * 2**20
+
+# With no gradient to track, activations are applied in place: on a 2-core CPU a fresh
+# allocation per layer costs more than the tanh itself.
+_IN_PLACE = {
+    nn.Tanh: lambda layer, h: h.tanh_(),
+    nn.ReLU: lambda layer, h: h.relu_(),
+    nn.Sigmoid: lambda layer, h: h.sigmoid_(),
+    nn.SiLU: lambda layer, h: torch.nn.functional.silu(h, inplace=True),
+    nn.ELU: lambda layer, h: torch.nn.functional.elu(h, layer.alpha, inplace=True),
+    nn.LeakyReLU: lambda layer, h: torch.nn.functional.leaky_relu(h, layer.negative_slope, inplace=True),
+    nn.Identity: lambda layer, h: h,
+    nn.Dropout: lambda layer, h: h,
+}
+
+
+def make_plan(template: nn.Module, params: dict[str, Tensor]) -> "ForwardPlan":
+    plan = MLPPlan.try_build(template, params)
+    return plan if plan is not None else GeneralPlan(template)
+
+
+class ForwardPlan:
+    """Shared chunking logic; subclasses provide ``forward(params, x) -> [s, n, C]``."""
+
+    #: floats held per (member, point) pair during a forward pass
+    floats_per_pair: int = 1
+
+    def forward(self, params: dict[str, Tensor], x: Tensor) -> Tensor:
+        raise NotImplementedError
+
+    def check_input(self, x: Tensor) -> None:
+        """Raise a clear error when ``x`` cannot feed the first layer."""
+
+    def chunk_sizes(self, members: int, points: int, memory_budget: int, element_bytes: int) -> tuple[int, int]:
+        grad = torch.is_grad_enabled()
+        pair_bytes = self.floats_per_pair * element_bytes * (2 if grad else 1)
+        point_chunk = max(1, min(points, memory_budget // max(1, pair_bytes)))
+        member_budget = memory_budget // max(1, pair_bytes * point_chunk)
+        member_cache = _CACHE_BYTES // max(1, self.widest * element_bytes * point_chunk)
+        member_chunk = max(1, min(members, member_budget, max(member_cache, 1)))
+        return member_chunk, point_chunk
+
+    widest: int = 1
+
+    def run(
+        self,
+        params: dict[str, Tensor],
+        x: Tensor,
+        memory_budget: int,
+        transform: Callable[[Tensor], Tensor] | None = None,
+    ) -> Tensor:
+        members = int(next(iter(params.values())).shape[0])
+        points = int(x.shape[0])
+        member_chunk, point_chunk = self.chunk_sizes(members, points, memory_budget, x.element_size())
+        if member_chunk >= members and point_chunk >= points:
+            out = self.forward(params, x)
+            return out if transform is None else transform(out)
+        tracking = torch.is_grad_enabled() and (x.requires_grad or any(p.requires_grad for p in params.values()))
+        rows = []
+        out = None
+        for m0 in range(0, members, member_chunk):
+            chunk_params = {k: v[m0:m0 + member_chunk] for k, v in params.items()}
+            pieces = []
+            for n0 in range(0, points, point_chunk):
+                block = self.forward(chunk_params, x[n0:n0 + point_chunk])
+                if transform is not None:
+                    block = transform(block)
+                if tracking:
+                    pieces.append(block)
+                    continue
+                if out is None:
+                    out = block.new_empty((members, points) + tuple(block.shape[2:]))
+                out[m0:m0 + block.shape[0], n0:n0 + block.shape[1]] = block
+            if tracking:
+                rows.append(torch.cat(pieces, dim=1))
+        return torch.cat(rows, dim=0) if tracking else out
+
+    def run_by_points(
+        self,
+        params: dict[str, Tensor],
+        x: Tensor,
+        memory_budget: int,
+        fn: Callable[[Tensor, slice], Tensor],
+    ) -> Tensor:
+        members = int(next(iter(params.values())).shape[0])
+        points = int(x.shape[0])
+        pair_bytes = self.floats_per_pair * x.element_size() * (2 if torch.is_grad_enabled() else 1)
+        point_chunk = max(1, min(points, memory_budget // max(1, pair_bytes * members)))
+        results = []
+        for n0 in range(0, points, point_chunk):
+            where = slice(n0, min(points, n0 + point_chunk))
+            results.append(fn(self.run(params, x[where], memory_budget), where))
+        return torch.cat(results, dim=0)
+
+
+class MLPPlan(ForwardPlan):
+    """Batched matrix products over members for Linear + elementwise stacks."""
+
+    def __init__(self, steps: list[tuple], in_features: int, widths: list[int]):
+        self.steps = steps
+        self.in_features = in_features
+        self.floats_per_pair = in_features + 2 * sum(widths)
+        self.widest = max([in_features] + widths)
+
+    @classmethod
+    def try_build(cls, template: nn.Module, params: dict[str, Tensor]) -> "MLPPlan | None":
+        if not isinstance(template, nn.Sequential) or any(True for _ in template.buffers()):
+            return None
+        steps: list[tuple] = []
+        widths: list[int] = []
+        in_features = None
+        for name, layer in template.named_children():
+            if isinstance(layer, nn.Linear):
+                has_bias = layer.bias is not None
+                steps.append(("linear", f"{name}.weight", f"{name}.bias" if has_bias else None))
+                in_features = layer.in_features if in_features is None else in_features
+                widths.append(layer.out_features)
+            elif isinstance(layer, nn.Flatten) and layer.start_dim == 1 and layer.end_dim == -1 and not steps:
+                steps.append(("flatten",))
+            elif isinstance(layer, _ELEMENTWISE):
+                if isinstance(layer, nn.Dropout) and layer.training and layer.p > 0:
+                    return None
+                steps.append(("map", layer))
+            else:
+                return None
+        if not widths:
+            return None
+        return cls(steps, in_features, widths)
+
+    def check_input(self, x: Tensor) -> None:
+        features = x[0].numel() if any(s[0] == "flatten" for s in self.steps) else x.shape[-1]
+        if (x.ndim != 2 and not any(s[0] == "flatten" for s in self.steps)) or features != self.in_features:
+            raise ValueError(
+                f"x must have shape (n_points, {self.in_features}) for this network; got shape {tuple(x.shape)}"
+            )
+
+    def forward(self, params: dict[str, Tensor], x: Tensor) -> Tensor:
+        in_place = not torch.is_grad_enabled() or not (
+            x.requires_grad or any(p.requires_grad for p in params.values())
+        )
+        hidden = x
+        shared = True  # hidden is still [n, d], common to every member
+        for step in self.steps:
+            kind = step[0]
+            if kind == "linear":
+                weight = params[step[1]]
+                bias = params[step[2]] if step[2] is not None else None
+                hidden = _batched_linear(hidden, weight, bias, shared)
+                shared = False
+            elif kind == "flatten":
+                hidden = hidden.flatten(1)
+            elif in_place and not shared and type(step[1]) in _IN_PLACE:
+                hidden = _IN_PLACE[type(step[1])](step[1], hidden)
+            else:
+                hidden = step[1](hidden)
+        return hidden
+
+
+# Up to this many shared points, one GEMM against all members' weights side by side wins;
+# beyond it a batched product per member chunk does (measured, benchmarks/bench_ensemble.py).
+_SMALL_BATCH = 16
+
+
+def _batched_linear(hidden: Tensor, weight: Tensor, bias: Tensor | None, shared: bool) -> Tensor:
+    """``hidden @ weight.T + bias`` for every member: weight [s, out, in] -> [s, n, out]."""
+    if shared and hidden.shape[0] <= _SMALL_BATCH:
+        members, out_features, in_features = weight.shape
+        # One GEMM against all members' weights side by side: [n, in] @ [in, s*out].
+        flat = hidden @ weight.reshape(members * out_features, in_features).T
+        result = flat.reshape(hidden.shape[0], members, out_features).transpose(0, 1)
+        return result if bias is None else result + bias.unsqueeze(1)
+    if shared:
+        hidden = hidden.expand(weight.shape[0], *hidden.shape)
+    if bias is None:
+        return torch.bmm(hidden, weight.transpose(1, 2))
+    return torch.baddbmm(bias.unsqueeze(1), hidden, weight.transpose(1, 2))
+
+
+class GeneralPlan(ForwardPlan):
+    """``vmap(functional_call)`` over members for any module without batch-dependent layers."""
+
+    def __init__(self, template: nn.Module):
+        self.template = template
+        widths = [m.out_features for m in template.modules() if isinstance(m, nn.Linear)]
+        self.floats_per_pair = 4 * max(1, sum(widths)) + 256
+        self.widest = max(widths or [64])
+
+        def one_member(member_params: dict[str, Tensor], x: Tensor) -> Tensor:
+            return functional_call(self.template, member_params, (x,))
+
+        self._call = vmap(one_member, in_dims=(0, None))
+
+    def forward(self, params: dict[str, Tensor], x: Tensor) -> Tensor:
+        try:
+            out = self._call(params, x)
+        except RuntimeError as err:
+            raise ValueError(
+                f"the module could not be evaluated over stacked members with torch.func.vmap "
+                f"({err}); wrap a module without data-dependent control flow or in-place buffer updates"
+            ) from err
+        if out.ndim != 3:
+            raise ValueError(f"the module must return logits of shape (n_points, n_classes); got {tuple(out.shape[1:])}")
+        return out

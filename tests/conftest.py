@@ -1,0 +1,24 @@
+"""Shared fixtures. Every test is seeded and runs on the CPU."""
+from __future__ import annotations
+
+import os
+
+import pytest
+import torch
+
+os.environ.setdefault("OMP_NUM_THREADS", "2")
+
+
+@pytest.fixture
+def generator() -> torch.Generator:
+    return torch.Generator().manual_seed(1234)
+
+
+def random_mlp_ensemble(members: int = 5, in_features: int = 2, classes: int = 3, hidden=(8, 8),
+                        activation: str = "tanh", seed: int = 0):
+    import jostle
+
+    g = torch.Generator().manual_seed(seed)
+    nets = [jostle.init_parameters(jostle.mlp(in_features, classes, hidden=hidden, activation=activation), g)
+            for _ in range(members)]
+    return jostle.Ensemble.from_modules(nets), nets

@@ -1,0 +1,9 @@
+"""Jupyter widgets over jostle's compute objects.
+
+Widget classes live one per file here; their views are ES modules in ``jostle/js``.
+"""
+from __future__ import annotations
+
+from ._assets import asset_path, read_asset
+
+__all__ = ["asset_path", "read_asset"]
