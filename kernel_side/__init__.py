@@ -7,6 +7,7 @@ from .ensemble import DEFAULT_MEMORY_BUDGET, Ensemble
 from .models import build_architecture, init_parameters, mlp, register_architecture
 from .prediction import Prediction, entropy
 from .storage import FormatError, load
+from .training import fit_deep_ensemble, fit_map
 
 __version__ = "0.1.0"
 
@@ -19,6 +20,8 @@ __all__ = [
     "build_architecture",
     "datasets",
     "entropy",
+    "fit_deep_ensemble",
+    "fit_map",
     "init_parameters",
     "load",
     "metrics",

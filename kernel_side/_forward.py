@@ -48,7 +48,7 @@ class ForwardPlan:
     #: floats held per (member, point) pair during a forward pass
     floats_per_pair: int = 1
 
-    def forward(self, params: dict[str, Tensor], x: Tensor) -> Tensor:
+    def forward(self, params: dict[str, Tensor], x: Tensor, per_member: bool = False) -> Tensor:
         raise NotImplementedError
 
     def check_input(self, x: Tensor) -> None:
@@ -157,12 +157,15 @@ class MLPPlan(ForwardPlan):
                 f"x must have shape (n_points, {self.in_features}) for this network; got shape {tuple(x.shape)}"
             )
 
-    def forward(self, params: dict[str, Tensor], x: Tensor) -> Tensor:
+    def forward(self, params: dict[str, Tensor], x: Tensor, per_member: bool = False) -> Tensor:
+        """Logits [s, n, C]; ``x`` is [n, ...] shared by every member, or with
+        ``per_member=True`` [s, n, ...], one block of inputs per member."""
         in_place = not torch.is_grad_enabled() or not (
             x.requires_grad or any(p.requires_grad for p in params.values())
         )
         hidden = x
-        shared = True  # hidden is still [n, d], common to every member
+        shared = not per_member  # hidden is still [n, d], common to every member
+        owned = False  # hidden is a tensor this pass made, safe to overwrite
         for step in self.steps:
             kind = step[0]
             if kind == "linear":
@@ -170,9 +173,10 @@ class MLPPlan(ForwardPlan):
                 bias = params[step[2]] if step[2] is not None else None
                 hidden = _batched_linear(hidden, weight, bias, shared)
                 shared = False
+                owned = True
             elif kind == "flatten":
-                hidden = hidden.flatten(1)
-            elif in_place and not shared and type(step[1]) in _IN_PLACE:
+                hidden = hidden.flatten(1 if not per_member else 2)
+            elif in_place and owned and type(step[1]) in _IN_PLACE:
                 hidden = _IN_PLACE[type(step[1])](step[1], hidden)
             else:
                 hidden = step[1](hidden)
@@ -212,10 +216,12 @@ class GeneralPlan(ForwardPlan):
             return functional_call(self.template, member_params, (x,))
 
         self._call = vmap(one_member, in_dims=(0, None))
+        self._call_each = vmap(one_member, in_dims=(0, 0))
 
-    def forward(self, params: dict[str, Tensor], x: Tensor) -> Tensor:
+    def forward(self, params: dict[str, Tensor], x: Tensor, per_member: bool = False) -> Tensor:
+        """Logits [s, n, C]; with ``per_member=True`` ``x`` is [s, n, ...], one block per member."""
         try:
-            out = self._call(params, x)
+            out = (self._call_each if per_member else self._call)(params, x)
         except RuntimeError as err:
             raise ValueError(
                 f"the module could not be evaluated over stacked members with torch.func.vmap "
