@@ -1,0 +1,345 @@
+"""Real-browser test harness: JupyterLab, Voila and headless Chromium driven by Playwright.
+
+Servers listen on 127.0.0.1 only, on ports the OS reports free; each runs in its own
+process group so that stopping it also stops the kernels it started. Every wait is
+bounded and says what it waited for when it gives up.
+"""
+from __future__ import annotations
+
+import json
+import os
+import signal
+import socket
+import subprocess
+import sys
+import time
+import urllib.error
+import urllib.request
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import pytest
+
+CHROMIUM = Path("/usr/bin/chromium")
+# These work as root on a machine with no network (see the design notes).
+CHROMIUM_ARGS = [
+    "--no-sandbox", "--disable-gpu", "--disable-background-networking",
+    "--disable-component-update", "--disable-sync", "--no-first-run",
+]
+REPO_ROOT = Path(__file__).resolve().parents[2]
+ARTIFACTS = REPO_ROOT / "test-artifacts"
+KERNEL_NAME = "python3"
+SERVER_START_TIMEOUT_S = 90.0
+NOTEBOOK_RUN_TIMEOUT_S = 120.0
+WIDGET_TIMEOUT_S = 60.0
+
+
+# ---------------------------------------------------------------------------- environment
+def require_chromium() -> None:
+    """Skip when Chromium is missing on a developer machine; fail in CI, which installs it."""
+    if CHROMIUM.is_file():
+        return
+    message = f"headless Chromium is not installed at {CHROMIUM} (Debian package 'chromium')"
+    if os.environ.get("CI", "").lower() in {"1", "true", "yes"}:
+        pytest.fail(f"{message}; .ci/run should have installed it", pytrace=False)
+    pytest.skip(f"{message}; install it to run the browser tests")
+
+
+def free_port() -> int:
+    """A localhost port nothing listens on right now (the OS picks it when binding port 0)."""
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as sock:
+        sock.bind(("127.0.0.1", 0))
+        return int(sock.getsockname()[1])
+
+
+def jupyter_environment(base: Path) -> dict[str, str]:
+    """Environment for a test server: this interpreter's kernel, scratch config and data folders.
+
+    The kernelspec names ``sys.executable`` outright, so the kernel that runs the notebook
+    is the test environment's Python whatever other kernels the machine has.
+    """
+    kernel_dir = base / "data" / "kernels" / KERNEL_NAME
+    kernel_dir.mkdir(parents=True, exist_ok=True)
+    spec = {
+        "argv": [sys.executable, "-m", "ipykernel_launcher", "-f", "{connection_file}"],
+        "display_name": "Python 3 (jostle tests)",
+        "language": "python",
+    }
+    (kernel_dir / "kernel.json").write_text(json.dumps(spec), encoding="utf-8")
+    (base / "config").mkdir(exist_ok=True)
+    (base / "runtime").mkdir(exist_ok=True)
+    env = dict(os.environ)
+    env.update(
+        JUPYTER_PATH=str(base / "data"),
+        JUPYTER_CONFIG_DIR=str(base / "config"),
+        JUPYTER_RUNTIME_DIR=str(base / "runtime"),
+        JUPYTER_PLATFORM_DIRS="1",
+        PYTHONUNBUFFERED="1",
+        OMP_NUM_THREADS=env.get("OMP_NUM_THREADS", "2"),
+    )
+    env.pop("JUPYTERLAB_SETTINGS_DIR", None)
+    env.pop("JUPYTERLAB_WORKSPACES_DIR", None)
+    return env
+
+
+def write_lab_settings(settings_dir: Path) -> None:
+    """User settings: every notebook output stays in the DOM (windowing off), and no
+    notification toast (the news prompt) sits over the widgets a test clicks."""
+    settings = {
+        ("notebook-extension", "tracker"): {"windowingMode": "none"},
+        ("apputils-extension", "notification"): {"fetchNews": "false", "checkForUpdates": False,
+                                                 "doNotDisturbMode": True},
+    }
+    for (plugin, name), values in settings.items():
+        path = settings_dir / "@jupyterlab" / plugin / f"{name}.jupyterlab-settings"
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_text(json.dumps(values), encoding="utf-8")
+
+
+def write_notebook(path: Path, cells: list[str | tuple[str, str]]) -> Path:
+    """Write an nbformat v4 notebook whose kernelspec names the test kernel.
+
+    ``cells`` holds code strings, or ``("markdown", text)`` / ``("code", text)`` pairs.
+    """
+    import nbformat
+
+    nb = nbformat.v4.new_notebook()
+    nb.metadata["kernelspec"] = {"name": KERNEL_NAME, "display_name": "Python 3", "language": "python"}
+    nb.metadata["language_info"] = {"name": "python"}
+    for cell in cells:
+        kind, source = ("code", cell) if isinstance(cell, str) else cell
+        maker = nbformat.v4.new_code_cell if kind == "code" else nbformat.v4.new_markdown_cell
+        nb.cells.append(maker(source))
+    nbformat.validate(nb)
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    nbformat.write(nb, str(path))
+    return path
+
+
+# ---------------------------------------------------------------------------- servers
+@dataclass
+class Server:
+    """A server process started by a test, with its log and base URL."""
+
+    name: str
+    process: subprocess.Popen
+    url: str
+    log_path: Path
+    token: str = ""
+    root: Path | None = None
+    extra: dict[str, Any] = field(default_factory=dict)
+
+    def log_tail(self, chars: int = 4000) -> str:
+        try:
+            return self.log_path.read_text(encoding="utf-8", errors="replace")[-chars:]
+        except OSError:
+            return "(no log)"
+
+    def stop(self, timeout: float = 15.0) -> int | None:
+        """Terminate (SIGTERM to the process group), then kill whatever is left."""
+        return stop_process_group(self.process, timeout)
+
+
+def start_server(name: str, command: list[str], cwd: Path, env: dict[str, str], log_path: Path,
+                 ready_url: str, url: str, token: str = "", root: Path | None = None,
+                 timeout: float = SERVER_START_TIMEOUT_S, any_status: bool = False) -> Server:
+    """Start ``command`` in its own process group and wait until ``ready_url`` answers.
+
+    ``any_status`` counts any HTTP answer as ready (for servers with no cheap 200 page).
+    """
+    log = open(log_path, "wb")
+    process = subprocess.Popen(command, cwd=cwd, env=env, stdout=log, stderr=subprocess.STDOUT,
+                               stdin=subprocess.DEVNULL, start_new_session=True)
+    log.close()
+    server = Server(name, process, url, log_path, token, root)
+    try:
+        wait_for_http(ready_url, timeout, process=process, what=name, log=server.log_tail, any_status=any_status)
+    except BaseException:
+        server.stop()
+        raise
+    return server
+
+
+def wait_for_http(url: str, timeout: float, process: subprocess.Popen | None = None, what: str = "server",
+                  log=None, any_status: bool = False) -> str:
+    """Poll ``url`` until it answers 200 (or anything, with ``any_status``); return the body.
+
+    Fails naming the URL, the time waited, the last answer and the server's log.
+    """
+    deadline = time.monotonic() + timeout
+    last = "no answer yet"
+    while time.monotonic() < deadline:
+        if process is not None and process.poll() is not None:
+            tail = log() if log else ""
+            raise AssertionError(f"{what} exited with code {process.returncode} before {url} answered\n{tail}")
+        try:
+            with urllib.request.urlopen(url, timeout=5) as response:
+                if response.status == 200:
+                    return response.read().decode("utf-8", errors="replace")
+                last = f"HTTP {response.status}"
+        except urllib.error.HTTPError as err:
+            if any_status:
+                return ""
+            last = f"HTTP {err.code}"
+        except (urllib.error.URLError, OSError) as err:
+            last = str(err)
+        time.sleep(0.25)
+    tail = log() if log else ""
+    raise AssertionError(f"timed out after {timeout:.0f} s waiting for {what} at {url} ({last})\n{tail}")
+
+
+def stop_process_group(process: subprocess.Popen, timeout: float = 15.0) -> int | None:
+    """SIGTERM the group ``process`` leads, wait up to ``timeout``, then SIGKILL the group."""
+    try:
+        pgid = os.getpgid(process.pid)
+    except ProcessLookupError:
+        pgid = None
+    if process.poll() is None and pgid is not None:
+        _signal_group(pgid, signal.SIGTERM)
+        try:
+            process.wait(timeout)
+        except subprocess.TimeoutExpired:
+            pass
+    if pgid is not None:
+        # Kernels started by the server are in its group; none may outlive the test.
+        _signal_group(pgid, signal.SIGKILL)
+    try:
+        return process.wait(5)
+    except subprocess.TimeoutExpired:
+        return None
+
+
+def _signal_group(pgid: int, sig: int) -> None:
+    try:
+        os.killpg(pgid, sig)
+    except (ProcessLookupError, PermissionError):
+        pass
+
+
+def lab_command(port: int, token: str, root: Path, settings_dir: Path, workspaces_dir: Path) -> list[str]:
+    """The JupyterLab command line that browser tests rely on (see the design notes)."""
+    return [
+        sys.executable, "-m", "jupyter", "lab", "--no-browser", "--allow-root", "--ip=127.0.0.1",
+        f"--port={port}", "--ServerApp.port_retries=0", f"--IdentityProvider.token={token}",
+        "--LabApp.expose_app_in_browser=True", "--LabApp.news_url=",
+        "--LabApp.check_for_updates_class=jupyterlab.NeverCheckForUpdate",
+        f"--ServerApp.root_dir={root}", f"--LabApp.user_settings_dir={settings_dir}",
+        f"--LabApp.workspaces_dir={workspaces_dir}",
+    ]
+
+
+def voila_command(notebook: Path, port: int) -> list[str]:
+    return [
+        sys.executable, "-m", "voila", str(notebook), "--no-browser", f"--port={port}",
+        "--Voila.ip=127.0.0.1", "--show_tracebacks=True",
+    ]
+
+
+# ---------------------------------------------------------------------------- pages
+class PageErrors:
+    """Collects the page's uncaught errors (``pageerror`` events) so a test can fail on them."""
+
+    def __init__(self, page):
+        self.errors: list[str] = []
+        page.on("pageerror", lambda err: self.errors.append(f"pageerror: {err}"))
+
+    def check(self) -> None:
+        if self.errors:
+            raise AssertionError("the page reported errors:\n" + "\n".join(self.errors))
+
+
+def block_outside_traffic(page) -> None:
+    """Abort every request that is not for 127.0.0.1 (no network is available anyway)."""
+    def route(r):
+        url = r.request.url
+        if url.startswith(("http://127.0.0.1", "ws://127.0.0.1", "data:", "blob:", "about:")):
+            r.continue_()
+        else:
+            r.abort()
+    page.route("**/*", route)
+
+
+def wait_for(scope, testid: str, timeout: float = WIDGET_TIMEOUT_S, state: str = "visible"):
+    """The first element with ``data-testid=testid`` inside ``scope`` once it is ``state``."""
+    from playwright.sync_api import TimeoutError as PlaywrightTimeout
+
+    locator = scope.get_by_test_id(testid).first
+    try:
+        locator.wait_for(state=state, timeout=timeout * 1000)
+    except PlaywrightTimeout:
+        raise AssertionError(f"timed out after {timeout:.0f} s waiting for data-testid={testid!r} to be {state}") from None
+    return locator
+
+
+def wait_until(page, expression: str, arg: Any = None, timeout: float = WIDGET_TIMEOUT_S, what: str = ""):
+    """Wait until the JavaScript ``expression`` (a function of ``arg``) is truthy; return its value."""
+    from playwright.sync_api import TimeoutError as PlaywrightTimeout
+
+    try:
+        return page.wait_for_function(expression, arg=arg, timeout=timeout * 1000, polling=50).json_value()
+    except PlaywrightTimeout:
+        raise AssertionError(f"timed out after {timeout:.0f} s waiting for {what or expression}") from None
+
+
+_NOTEBOOK_READY = """() => {
+  const app = window.jupyterapp;
+  const panel = app && app.shell.currentWidget;
+  return !!(panel && panel.context && panel.context.isReady && panel.sessionContext
+            && panel.sessionContext.session && panel.sessionContext.session.kernel);
+}"""
+
+_NOTEBOOK_DONE = """() => {
+  const panel = window.jupyterapp.shell.currentWidget;
+  const kernel = panel.sessionContext.session && panel.sessionContext.session.kernel;
+  const cells = panel.content.widgets.filter(c => c.model.type === 'code');
+  const errors = [];
+  for (const cell of cells) {
+    for (const out of cell.model.outputs.toJSON()) {
+      if (out.output_type === 'error') errors.push(out.ename + ': ' + out.evalue + '\\n' + (out.traceback || []).join('\\n'));
+    }
+  }
+  if (errors.length) return {errors};
+  const done = cells.every(c => c.model.executionCount !== null);
+  return done && kernel && kernel.status === 'idle' ? {errors: []} : false;
+}"""
+
+
+def open_and_run(page, lab: Server, name: str, timeout: float = NOTEBOOK_RUN_TIMEOUT_S) -> None:
+    """Open ``name`` (relative to the lab root) in JupyterLab, run every cell, wait until done.
+
+    Fails with the traceback if a cell raised.
+    """
+    page.goto(f"{lab.url}/lab/tree/{name}?token={lab.token}", wait_until="domcontentloaded")
+    wait_until(page, _NOTEBOOK_READY, timeout=timeout, what=f"JupyterLab to open {name} with a kernel")
+    page.evaluate("() => window.jupyterapp.commands.execute('notebook:run-all-cells')")
+    result = wait_until(page, _NOTEBOOK_DONE, timeout=timeout, what=f"every cell of {name} to finish")
+    if result["errors"]:
+        raise AssertionError(f"a cell of {name} raised:\n" + "\n\n".join(result["errors"]))
+
+
+def close_all_tabs(page) -> None:
+    """Close notebooks (shutting their kernels down) so the next test starts clean."""
+    page.evaluate("""async () => {
+      const app = window.jupyterapp;
+      if (!app) return;
+      for (const w of Array.from(app.shell.widgets('main'))) {
+        if (w.sessionContext) { await w.sessionContext.shutdown(); }
+        if (w.context) { w.context.model.dirty = false; }
+        w.dispose();
+      }
+    }""")
+
+
+def open_voila(page, voila: Server, timeout: float = NOTEBOOK_RUN_TIMEOUT_S) -> None:
+    """Load the Voila page; Voila runs the notebook while it streams the page."""
+    page.goto(voila.url + "/", wait_until="domcontentloaded", timeout=timeout * 1000)
+
+
+def screenshot(target, name: str) -> Path:
+    """Save a PNG of a page or element as test-artifacts/<name>.png."""
+    ARTIFACTS.mkdir(exist_ok=True)
+    path = ARTIFACTS / f"{name}.png"
+    target.screenshot(path=str(path))
+    return path
