@@ -1,0 +1,77 @@
+// jostle attack controls: native range inputs and selects, so keyboard and screen readers work.
+
+/** @typedef {{key: string, label: string, kind: "range"|"select", max?: string, step?: (m: any) => number,
+ *             min?: number, options?: string, testid: string, format?: (v: number) => string}} Control */
+
+/** @type {Control[]} */
+const CONTROLS = [
+  { key: "budget", label: "budget eps", kind: "range", max: "budget_max", min: 0,
+    step: (m) => m.get("budget_max") / 200, testid: "budget-slider", format: (v) => v.toFixed(3) },
+  { key: "samples", label: "attacker samples", kind: "range", max: "samples_max", min: 1, step: () => 1,
+    testid: "samples-slider", format: (v) => String(v) },
+  { key: "steps", label: "steps", kind: "range", max: "steps_max", min: 1, step: () => 1,
+    testid: "steps-slider", format: (v) => String(v) },
+  { key: "method", label: "method", kind: "select", options: "methods", testid: "method-select" },
+  { key: "norm", label: "norm", kind: "select", testid: "norm-select" },
+  { key: "objective", label: "objective", kind: "select", options: "objectives", testid: "objective-select" },
+];
+const NORM_LABELS = { inf: "L-inf", 2: "L2" };
+
+function fillOptions(model, control, select) {
+  const values = control.options ? model.get(control.options) : ["inf", "2"];
+  select.replaceChildren();
+  for (const value of values) {
+    const option = document.createElement("option");
+    option.value = value;
+    option.textContent = control.key === "norm" ? NORM_LABELS[value] : String(value).replace("_", " ");
+    select.append(option);
+  }
+  select.value = model.get(control.key);
+}
+
+function render({ model, el }) {
+  const root = document.createElement("div");
+  root.className = "jostle-root jostle-controls";
+  root.dataset.testid = "attack-controls";
+  const listeners = [];
+  for (const control of CONTROLS) {
+    const id = `jostle-${control.key}-${Math.random().toString(36).slice(2, 9)}`;
+    const label = document.createElement("label");
+    label.htmlFor = id; label.textContent = control.label;
+    const output = document.createElement("output");
+    output.htmlFor = id;
+    let input;
+    if (control.kind === "range") {
+      input = document.createElement("input");
+      input.type = "range";
+      const sync = () => {
+        input.min = String(control.min); input.max = String(model.get(control.max));
+        input.step = String(control.step(model));
+        const v = model.get(control.key);
+        input.value = String(v); input.dataset.value = String(v); output.textContent = control.format(v);
+      };
+      input.addEventListener("input", () => {
+        const v = Number(input.value);
+        output.textContent = control.format(v);
+        model.set(control.key, control.key === "budget" ? v : Math.round(v));
+        model.save_changes();
+      });
+      sync();
+      const events = `change:${control.key} change:${control.max}`;
+      model.on(events, sync); listeners.push([events, sync]);
+    } else {
+      input = document.createElement("select");
+      const sync = () => { fillOptions(model, control, input); input.dataset.value = model.get(control.key); };
+      input.addEventListener("change", () => { model.set(control.key, input.value); model.save_changes(); });
+      sync();
+      const events = `change:${control.key}` + (control.options ? ` change:${control.options}` : "");
+      model.on(events, sync); listeners.push([events, sync]);
+    }
+    input.id = id; input.dataset.testid = control.testid;
+    root.append(label, input, output);
+  }
+  el.append(root);
+  return () => { for (const [events, fn] of listeners) model.off(events, fn); };
+}
+
+export default { render };

@@ -1,0 +1,169 @@
+"""The bqplot charts linked to an explorer: predictive, spread, attack path, fading gradient.
+
+Each builder returns a figure plus a function that writes one :class:`jostle.live.ViewData`
+into its marks. Class names reach bqplot only as tick labels, which it draws as SVG text.
+"""
+from __future__ import annotations
+
+from typing import Any, Callable
+
+import bqplot as bq
+import ipywidgets as w
+import numpy as np
+
+from ._palette import ATTACK_COLOUR, INPUT_COLOUR
+
+INK = "var(--jp-ui-font-color1, #333333)"
+MUTED = "var(--jp-ui-font-color2, #777777)"
+_MARGIN = dict(top=28, bottom=40, left=52, right=48)
+_BAR_WIDTH = 12
+_OFFSET = 0.18
+
+
+def _figure(testid: str, title: str, marks: list, axes: list, height: str = "210px") -> bq.Figure:
+    figure = bq.Figure(marks=marks, axes=axes, title=title, fig_margin=dict(_MARGIN),
+                       layout=w.Layout(width="100%", min_width="240px", height=height),
+                       animation_duration=0)
+    figure.add_class(f"jostle-tid-{testid}")
+    return figure
+
+
+def predictive_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
+    """Bars of the posterior predictive at the input and at the attacked input, 5-95% whiskers."""
+    xs, ys = bq.LinearScale(min=-0.6, max=1.6), bq.LinearScale(min=0.0, max=1.0)
+    scales = {"x": xs, "y": ys}
+    bars = [bq.Lines(x=[[0.0, 0.0]], y=[[0.0, 0.0]], scales=scales, stroke_width=_BAR_WIDTH, colors=[colour],
+                     labels=[name], display_legend=True) for name, colour in
+            (("input", INPUT_COLOUR), ("attacked", ATTACK_COLOUR))]
+    whiskers = [bq.Lines(x=[[0.0, 0.0]], y=[[0.0, 0.0]], scales=scales, stroke_width=1.5, colors=[INK])
+                for _ in range(2)]
+    x_axis = bq.Axis(scale=xs, tick_values=np.array([0, 1]), tick_labels={"0": "0", "1": "1"},
+                     grid_lines="none", label="class")
+    y_axis = bq.Axis(scale=ys, orientation="vertical", label="probability", tick_format=".1f")
+    figure = _figure("predictive-chart", "posterior predictive (bars: mean, whiskers: 5-95% of members)",
+                     bars + whiskers, [x_axis, y_axis])
+    figure.legend_location = "top-right"
+
+    def update(view: Any) -> None:
+        classes = list(view.classes)
+        positions = np.arange(len(classes), dtype=float)
+        with xs.hold_sync(), x_axis.hold_sync():
+            xs.min, xs.max = -0.6, len(classes) - 0.4
+            x_axis.tick_values = positions
+            x_axis.tick_labels = {str(int(c)): str(name) for c, name in zip(positions, classes)}
+        for k, point in enumerate((view.before, view.after)):
+            at = positions + (2 * k - 1) * _OFFSET
+            if point is None:
+                bars[k].visible = whiskers[k].visible = False
+                continue
+            with bars[k].hold_sync():
+                bars[k].x, bars[k].y = np.stack([at, at], 1), np.stack([np.zeros_like(at), point.probs], 1)
+                bars[k].colors = [bars[k].colors[0]] * len(classes)
+                bars[k].visible = True
+            with whiskers[k].hold_sync():
+                whiskers[k].x, whiskers[k].y = np.stack([at, at], 1), np.stack([point.lower, point.upper], 1)
+                whiskers[k].colors = [INK] * len(classes)
+                whiskers[k].visible = True
+
+    return figure, update
+
+
+def spread_chart() -> tuple[bq.Figure, w.Label, Callable[[Any], None]]:
+    """Histogram over members of the predicted class's probability, with the uncertainty split."""
+    xs, ys = bq.LinearScale(min=0.0, max=1.0), bq.LinearScale(min=0.0)
+    scales = {"x": xs, "y": ys}
+    bars = [bq.Bars(x=[0.5], y=[0.0], scales=scales, colors=[colour], opacities=[0.75], padding=0.05,
+                    labels=[name], display_legend=True, align="center")
+            for name, colour in (("input", INPUT_COLOUR), ("attacked", ATTACK_COLOUR))]
+    x_axis = bq.Axis(scale=xs, label="member probability of the predicted class", tick_format=".1f")
+    y_axis = bq.Axis(scale=ys, orientation="vertical", label="members", tick_format="d")
+    figure = _figure("spread-chart", "spread across posterior samples", bars, [x_axis, y_axis])
+    figure.legend_location = "top-left"
+    text = w.Label("")
+    text.add_class("jostle-tid-uncertainty-text")
+
+    def update(view: Any) -> None:
+        spread = view.spread
+        centres = (spread.edges[:-1] + spread.edges[1:]) / 2
+        for k, counts in enumerate((spread.before, spread.after)):
+            with bars[k].hold_sync():
+                bars[k].visible = counts is not None
+                if counts is not None:
+                    bars[k].x, bars[k].y = centres, counts
+        parts = [_split("input", view.before)]
+        if view.after is not None:
+            parts.append(_split("attacked", view.after))
+        text.value = " | ".join(parts)
+
+    return figure, text, update
+
+
+def path_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
+    """Loss (left axis) and the attacked label's probability (right axis) along the attack path."""
+    xs, loss_scale, prob_scale = bq.LinearScale(), bq.LinearScale(), bq.LinearScale(min=0.0, max=1.0)
+    loss = bq.Lines(x=[0.0], y=[0.0], scales={"x": xs, "y": loss_scale}, colors=[ATTACK_COLOUR], stroke_width=2,
+                    labels=["loss"], display_legend=True)
+    prob = bq.Lines(x=[0.0], y=[0.0], scales={"x": xs, "y": prob_scale}, colors=[INK], line_style="dashed",
+                    stroke_width=1.5, labels=["p(label)"], display_legend=True)
+    axes = [bq.Axis(scale=xs, label="attack step", tick_format="d"),
+            bq.Axis(scale=loss_scale, orientation="vertical", label="loss", tick_format=".2f"),
+            bq.Axis(scale=prob_scale, orientation="vertical", side="right", label="p(label)", tick_format=".1f")]
+    figure = _figure("path-chart", "along the attack path", [loss, prob], axes)
+    figure.legend_location = "top-right"
+
+    def update(view: Any) -> None:
+        attack = view.attack
+        for mark in (loss, prob):
+            mark.visible = attack is not None
+        if attack is None:
+            return
+        steps = np.arange(attack.loss.shape[0], dtype=float)
+        with loss.hold_sync():
+            loss.x, loss.y = steps, attack.loss
+        with prob.hold_sync():
+            prob.x, prob.y = steps, attack.label_prob
+
+    return figure, update
+
+
+def fade_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
+    """Expected-gradient norm against the number of samples (log-log), 1/sqrt(S) reference."""
+    xs, ys = bq.LogScale(), bq.LogScale()
+    scales = {"x": xs, "y": ys}
+    band = bq.Lines(x=[1.0], y=[[1.0], [1.0]], scales=scales, fill="between", colors=[MUTED, MUTED],
+                    fill_colors=[MUTED], fill_opacities=[0.2], stroke_width=0.5)
+    mean = bq.Lines(x=[1.0], y=[1.0], scales=scales, colors=[ATTACK_COLOUR], stroke_width=2, marker="circle",
+                    labels=["|mean gradient|"], display_legend=True)
+    reference = bq.Lines(x=[1.0], y=[1.0], scales=scales, colors=[INK], line_style="dashed", stroke_width=1,
+                         labels=["1/sqrt(S)"], display_legend=True)
+    current = bq.Lines(x=[1.0, 1.0], y=[1.0, 1.0], scales=scales, colors=[INK], stroke_width=1, line_style="dotted",
+                       labels=["attacker S"], display_legend=True)
+    axes = [bq.Axis(scale=xs, label="posterior samples S"),
+            bq.Axis(scale=ys, orientation="vertical", label="gradient norm", tick_format=".1e")]
+    figure = _figure("fade-chart", "expected gradient against samples", [band, mean, reference, current], axes)
+    figure.legend_location = "bottom-left"
+
+    def update(view: Any) -> None:
+        fade = view.fade
+        for mark in (band, mean, reference, current):
+            mark.visible = fade is not None
+        if fade is None:
+            return
+        counts = fade.counts.astype(float)
+        positive = np.maximum(np.concatenate([fade.norm_low, fade.norm_high, fade.reference]), 1e-12)
+        with band.hold_sync():
+            band.x, band.y = counts, np.maximum(np.stack([fade.norm_low, fade.norm_high]), 1e-12)
+        with mean.hold_sync():
+            mean.x, mean.y = counts, np.maximum(fade.norm_mean, 1e-12)
+        with reference.hold_sync():
+            reference.x, reference.y = counts, np.maximum(fade.reference, 1e-12)
+        with current.hold_sync():
+            s = float(view.state.samples)
+            current.x, current.y = np.array([s, s]), np.array([positive.min(), positive.max()])
+
+    return figure, update
+
+
+def _split(name: str, point: Any) -> str:
+    return (f"{name}: total {point.total:.3f}, aleatoric {point.aleatoric:.3f}, "
+            f"epistemic {point.epistemic:.3f} nats")

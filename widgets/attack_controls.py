@@ -1,0 +1,30 @@
+"""Native range inputs and selects for the attack settings (keyboard-usable, with data-testids)."""
+from __future__ import annotations
+
+import anywidget
+import traitlets as t
+
+from ._assets import asset_path
+
+
+class AttackControls(anywidget.AnyWidget):
+    """Budget, samples, steps, method, norm and objective controls.
+
+    The owning explorer validates every value and writes the accepted one back, so a
+    rejected value snaps the control back to the last good setting.
+    """
+
+    _esm = asset_path("attack_controls.js")
+    _css = asset_path("theme.css")
+
+    budget = t.Float(0.1, help="attack budget eps").tag(sync=True)
+    budget_max = t.Float(1.0, help="right end of the budget slider").tag(sync=True)
+    samples = t.Int(1, help="posterior samples the attacker averages over").tag(sync=True)
+    samples_max = t.Int(1, help="number of posterior samples in the ensemble").tag(sync=True)
+    steps = t.Int(40, help="attack iterations").tag(sync=True)
+    steps_max = t.Int(200, help="right end of the steps slider").tag(sync=True)
+    method = t.Unicode("pgd", help="attack method").tag(sync=True)
+    methods = t.List(t.Unicode(), [], help="methods offered").tag(sync=True)
+    norm = t.Unicode("inf", help="perturbation norm: inf or 2").tag(sync=True)
+    objective = t.Unicode("expected_loss", help="what the attacker ascends").tag(sync=True)
+    objectives = t.List(t.Unicode(), [], help="objectives offered").tag(sync=True)

@@ -1,0 +1,144 @@
+"""The 2-D explorer: pick an input, see the posterior predictive, attack it, all live."""
+from __future__ import annotations
+
+from typing import Any
+
+import ipywidgets as w
+import numpy as np
+import traitlets as t
+
+from jostle import live
+
+from . import _charts
+from ._live_box import LiveBox
+from ._wire import empty_wire, to_wire
+from .explorer_map import ExplorerMap
+
+
+class Explorer(LiveBox):
+    """Linked live views of one posterior ensemble on 2-D data.
+
+    Layout follows the data flow: input map, then the posterior predictive at the picked
+    input, then the attack from it. Every control is a trait, so code can drive it and
+    ``traitlets.link`` / ``ipywidgets.jslink`` can tie explorers together.
+
+    Parameters
+    ----------
+    ens : jostle.Ensemble
+        A posterior over a classifier of 2 input features.
+    data : jostle.Dataset
+        Its training points are drawn; ``data.bounds`` sets the map's box.
+    point : sequence of 2 floats, optional
+        Starting input; defaults to the first test point.
+    budget, samples, method, norm, steps, objective
+        Attack settings (``samples=None`` uses every member).
+    layer : str
+        Background layer: ``predictive``, ``epistemic`` or ``entropy``.
+    grid : int
+        Background resolution per axis.
+    boundaries : int
+        Members whose decision boundaries are drawn.
+    seed : int
+        Seed of the attack's random start and of the fading-gradient subsets.
+
+    Examples
+    --------
+    >>> ex = Explorer(ens, data)          # doctest: +SKIP
+    >>> ex.budget = 0.3; ex.wait(); ex.result.attack.success   # doctest: +SKIP
+    """
+
+    point = t.List([0.0, 0.0], help="picked input (x, y) in data units").tag(sync=True)
+    layer = t.Unicode("predictive", help="background layer: predictive, epistemic or entropy").tag(sync=True)
+
+    def __init__(self, ens: Any, data: Any, point: Any = None, budget: float = 0.1, samples: int | None = None,
+                 method: str = "pgd", norm: str = "inf", steps: int = 40, objective: str = "expected_loss",
+                 layer: str = "predictive", grid: int = 64, boundaries: int = 6, seed: int = 0, **kwargs: Any):
+        if data.n_features != 2:
+            raise ValueError(f"data must have 2 features for Explorer; got {data.n_features} "
+                             f"(use ImageExplorer for images)")
+        lo, hi = (np.asarray(b, dtype=float) for b in data.bounds)
+        self._bounds = (lo.tolist(), hi.tolist())
+        self._fixed = {"grid": live.check_field(ens, "grid", grid),
+                       "boundaries": live.check_field(ens, "boundaries", boundaries),
+                       "seed": live.check_field(ens, "seed", seed)}
+        self._setup_live(ens, {"steps": steps}, budget_max=round(0.5 * float(np.min(hi - lo)), 3))
+        self._map = ExplorerMap(bounds=[lo[0], hi[0], lo[1], hi[1]], classes=[str(c) for c in data.classes],
+                                train_points=to_wire(data.x_train.numpy()),
+                                train_labels=to_wire(data.y_train.numpy(), "uint8"))
+        self._last_grid = None
+        predictive, self._draw_predictive = _charts.predictive_chart()
+        spread, spread_text, self._draw_spread = _charts.spread_chart()
+        path, self._draw_path = _charts.path_chart()
+        fade, self._draw_fade = _charts.fade_chart()
+        start = data.x_test[0].tolist() if point is None else point
+        super().__init__(children=_layout(data, ens, self._map, [predictive, spread, spread_text],
+                                          [self._controls, path, fade], self._status), **kwargs)
+        self.add_class("jostle-root")
+        for name in ("jostle-explorer", "jostle-tag-scope", "jostle-tid-explorer"):
+            self.add_class(name)
+        with self.hold_trait_notifications():
+            self.point, self.layer, self.budget, self.method = start, layer, budget, method
+            self.samples = len(ens) if samples is None else samples
+            self.norm, self.steps, self.objective = norm, steps, objective
+        self._mirror(self._map, "point")
+        self._mirror(self._map, "layer")
+        self._map.observe(self._from_control, names=["point", "layer"])
+        self._start_live()
+
+    @t.validate("point")
+    def _validate_point(self, proposal: Any) -> Any:
+        return self._check(proposal, n_features=2)
+
+    @t.validate("layer")
+    def _validate_layer(self, proposal: Any) -> Any:
+        return self._check(proposal)
+
+    @t.observe("point", "layer")
+    def _on_view_control(self, change: Any) -> None:
+        self._mirror(self._map, change.name)
+        self._request()
+
+    def _state(self) -> live.ExplorerState:
+        return live.ExplorerState(point=tuple(self.point), budget=self.budget, samples=self.samples,
+                                  method=self.method, norm=self.norm, steps=self.steps, objective=self.objective,
+                                  layer=self.layer, **self._fixed)
+
+    def close(self) -> None:
+        self._map.close()
+        super().close()
+
+    def _apply(self, view: live.ViewData) -> None:
+        state = view.state
+        with self._map.hold_sync():
+            if view.grid is not None and view.grid is not self._last_grid:
+                grid = view.grid
+                self._map.background = to_wire(grid.probs)
+                self._map.layer_values = to_wire(grid.values)
+                self._map.layer_shown, self._map.layer_max = grid.layer, grid.value_max
+                self._map.segments = to_wire(grid.segments)
+                self._map.members_drawn = len(grid.members_drawn)
+                self._last_grid = grid
+            self._map.path = to_wire(view.attack.path) if view.attack is not None else empty_wire(2)
+            self._map.success = bool(view.attack is not None and view.attack.success)
+            self._map.ball_budget, self._map.ball_norm = state.budget, state.norm
+            self._map.ball_centre = list(state.point)
+            self._map.view_revision += 1
+        self._draw_predictive(view)
+        self._draw_spread(view)
+        self._draw_path(view)
+        self._draw_fade(view)
+
+
+def _layout(data: Any, ens: Any, map_view: w.Widget, predictive: list, attack: list, status: w.Widget) -> list:
+    method = ens.meta.get("method", "posterior")
+    title = w.Label(f"{data.name}: {method}, S = {len(ens)} posterior samples")
+    title.add_class("jostle-column-title")
+    columns = []
+    for heading, children in (("1 - input", [map_view]), ("2 - posterior predictive", predictive),
+                              ("3 - attack", attack)):
+        label = w.Label(heading)
+        label.add_class("jostle-column-title")
+        columns.append(w.VBox([label, *children], layout=w.Layout(flex="1 1 300px", min_width="260px",
+                                                                    padding="0 6px")))
+    row = w.HBox(columns, layout=w.Layout(flex_flow="row wrap", width="100%", align_items="flex-start"))
+    return [title, row, status]
