@@ -10,7 +10,7 @@ import importlib
 import sys
 
 # Modules that add subcommands; each has register(subparsers).
-COMMAND_MODULES: list[str] = []
+COMMAND_MODULES: list[str] = ["cli_sweep"]
 
 
 class CommandError(Exception):
