@@ -7,7 +7,10 @@ from .ensemble import DEFAULT_MEMORY_BUDGET, Ensemble
 from .models import build_architecture, init_parameters, mlp, register_architecture
 from .prediction import Prediction, entropy
 from .storage import FormatError, load
+from .dropout import fit_dropout
 from .training import fit_deep_ensemble, fit_map
+from .sweep import Sweep, SweepSummary
+from .sweep_config import SweepConfigError
 
 __version__ = "0.1.0"
 
@@ -21,10 +24,14 @@ __all__ = [
     "datasets",
     "entropy",
     "fit_deep_ensemble",
+    "fit_dropout",
     "fit_map",
     "init_parameters",
     "load",
     "metrics",
     "mlp",
     "register_architecture",
+    "Sweep",
+    "SweepConfigError",
+    "SweepSummary",
 ]

@@ -93,7 +93,8 @@ def load(path: str | os.PathLike, module: nn.Module | None = None, device: str |
                 f"{path} holds a custom architecture; pass the module it was made from as module="
             )
         try:
-            module = build_architecture(arch["builder"], **arch["kwargs"])
+            # Members are fixed networks: a rebuilt Dropout layer must not stay in training mode.
+            module = build_architecture(arch["builder"], **arch["kwargs"]).eval()
         except (ValueError, TypeError, KeyError) as err:
             raise FormatError(f"{path} names an architecture jostle cannot rebuild: {err}") from None
     _check_fits(module, params, path)

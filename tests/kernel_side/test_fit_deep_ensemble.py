@@ -99,11 +99,13 @@ def test_progress_bar_shows_loss(moons, capsys):
     assert capsys.readouterr().err == ""
 
 
-def test_dropout_layers_are_off_in_map_training(moons):
+def test_dropout_layers_are_off_in_map_training(moons, tmp_path):
     with_dropout = jostle.mlp(2, 2, hidden=(8,), dropout=0.5)
     a = fit_map(with_dropout, moons, epochs=2, seed=0, progress=False)
     b = fit_map(jostle.mlp(2, 2, hidden=(8,)), moons, epochs=2, seed=0, progress=False)
     torch.testing.assert_close(a.params["3.weight"], b.params["2.weight"])
+    a.save(tmp_path / "map.safetensors")  # the rebuilt dropout layer must come back switched off
+    torch.testing.assert_close(jostle.load(tmp_path / "map.safetensors").logits(moons.x_test), a.logits(moons.x_test))
 
 
 class _Wide(nn.Module):
