@@ -39,7 +39,7 @@ DETERMINISTIC_METHODS = ("map",)
 ATTACK_METHODS = ("fgsm", "pgd", "cw", "spsa", "square")
 DATASETS = ("moons", "circles", "spirals", "digits")
 _TARGETS = ("predicted", "true")
-_OBJECTIVES = ("expected_loss", "predictive")
+_OBJECTIVES = ("expected_loss", "predictive", "margin")
 # Arguments the sweep sets itself and so may not appear among a method's hyper-parameters.
 _RESERVED_FIT_ARGS = ("net", "model", "module", "data", "dataset", "seed", "device", "progress")
 _SWEEP_KEYS = ("name", "datasets", "architectures", "methods", "train_sizes", "seeds", "evaluation")

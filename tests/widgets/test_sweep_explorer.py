@@ -1,0 +1,147 @@
+"""SweepExplorer model: filters, per-family correlations against scipy.stats, run selection."""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import traitlets
+from scipy import stats
+
+import jostle
+from jostle.store import RunStore
+from jostle.sweep_config import run_key
+from jostle.widgets.sweep_explorer import SweepExplorer
+from jostle.widgets._wire import from_wire
+
+BUDGETS = [0.1, 0.2]
+SWEEP = jostle.Sweep(
+    datasets=[{"name": "moons", "n_test": 20}], methods=["map", "deep_ensemble", "vi"],
+    architectures=[{"depth": 1, "width": 4}], train_sizes=[20], seeds=list(range(5)),
+    evaluation={"budgets": BUDGETS, "points": 5,
+                "attacks": [{"method": "fgsm"}, {"method": "pgd", "steps": 3}]},
+)
+
+
+def _fake_record(config, rng):
+    """A finished-run record with seeded made-up scores (demo data for the chart only)."""
+    accuracy = float(rng.uniform(0.6, 1.0))
+    attacks = [{"attack": a["label"], "method": a["method"], "norm": a["norm"], "steps": a["steps"],
+                "samples": a["samples"], "budget": b, "success_rate": float(rng.uniform()),
+                "robustness": float(np.clip(accuracy - b + rng.normal(0, 0.05), 0, 1))}
+               for a in config["evaluation"]["attacks"] for b in config["evaluation"]["budgets"]]
+    return {"key": run_key(config), "config": config, "status": "ok", "error": None, "traceback": None,
+            "metrics": {"accuracy": accuracy, "nll": 0.4, "ece": 0.05, "members": 1, "attacks": attacks},
+            "versions": {}, "ensemble_bytes": None}
+
+
+@pytest.fixture(scope="module")
+def store(tmp_path_factory):
+    path = tmp_path_factory.mktemp("sweep") / "runs.sqlite"
+    rng = np.random.default_rng(7)
+    with RunStore(path) as db:
+        for config in SWEEP.runs():
+            db.record(_fake_record(config, rng))
+    return path
+
+
+def _expected(store, methods, attack, budget, family, measure="robustness"):
+    with RunStore(store, readonly=True) as db:
+        frame = db.results()
+    rows = frame[(frame.attack == attack) & (frame.budget == budget) & frame.method.isin(methods)
+                 & (frame.family == family)]
+    y = rows.robustness if measure == "robustness" else 1 - rows.success_rate
+    return rows.accuracy.to_numpy(), y.to_numpy()
+
+
+def test_starts_with_every_method_and_the_first_attack_and_budget(store):
+    w = SweepExplorer(store)
+    assert w.methods == ["deep_ensemble", "map", "vi"]
+    assert (w.attack, w.budget) == ("fgsm-inf", 0.1)
+    assert len(w.chart.point_keys) == 15
+    family = from_wire(w.chart.family)
+    assert family.sum() == 10  # deep_ensemble and vi are Bayesian, map deterministic
+    assert w.chart.budget_options == BUDGETS
+
+
+def test_correlations_match_scipy(store):
+    w = SweepExplorer(store)
+    w.attack, w.budget = "pgd-inf", 0.2
+    by_family = {c.family: c for c in w.correlations}
+    for family in ("deterministic", "Bayesian"):
+        x, y = _expected(store, w.methods, "pgd-inf", 0.2, family)
+        ref_p, ref_s = stats.pearsonr(x, y), stats.spearmanr(x, y)  # scipy.stats as the reference
+        got = by_family[family]
+        assert got.n == len(x)
+        np.testing.assert_allclose([got.pearson_r, got.pearson_p], [ref_p.statistic, ref_p.pvalue], rtol=1e-12)
+        np.testing.assert_allclose([got.spearman_rho, got.spearman_p], [ref_s.statistic, ref_s.pvalue], rtol=1e-12)
+    assert w.chart.correlations[1][:2] == ["Bayesian", "10"]
+
+
+def test_method_filter_and_measure(store):
+    w = SweepExplorer(store)
+    w.methods = ["vi", "map"]
+    assert w.methods == ["map", "vi"]
+    assert len(w.points.keys) == 10 and set(w.points.methods) == {"map", "vi"}
+    w.measure = "unflipped"
+    x, y = _expected(store, ["vi"], "fgsm-inf", 0.1, "Bayesian", measure="unflipped")
+    bayes = w.points.family == 1
+    np.testing.assert_allclose(np.sort(w.points.value[bayes]), np.sort(y))
+    np.testing.assert_allclose(np.sort(from_wire(w.chart.value)[bayes]), np.sort(y))
+    assert w.chart.y_title.startswith("share of points")
+
+
+def test_too_few_runs_give_no_correlation(store):
+    w = SweepExplorer(store)
+    w.methods = ["map"]
+    bayes = [c for c in w.correlations if c.family == "Bayesian"][0]
+    assert bayes.n == 0 and np.isnan(bayes.pearson_r)
+    assert w.chart.correlations[1][2] == "n/a"
+
+
+def test_bad_choices_are_refused(store):
+    w = SweepExplorer(store)
+    with pytest.raises(traitlets.TraitError, match=r"budget must be one of \[0.1, 0.2\].*got 0.5"):
+        w.budget = 0.5
+    with pytest.raises(traitlets.TraitError, match=r"methods must be among .*got 'hmc'"):
+        w.methods = ["hmc"]
+    with pytest.raises(traitlets.TraitError, match=r"attack must be one of .*got 'cw-inf'"):
+        w.attack = "cw-inf"
+    with pytest.raises(traitlets.TraitError, match=r"measure must be one of .*got 'speed'"):
+        w.measure = "speed"
+    with pytest.raises(traitlets.TraitError, match=r"selected_key must be '' or the key of a stored run"):
+        w.selected_key = "abc"
+
+
+def test_a_bad_choice_from_the_view_snaps_back(store):
+    w = SweepExplorer(store)
+    w.chart.budget = 0.7  # as if the browser sent it
+    assert w.budget == 0.1 and w.chart.budget == 0.1
+    assert "budget must be one of" in w.chart.note
+    w.chart.methods = ["map"]
+    assert w.methods == ["map"] and len(w.chart.point_keys) == 5
+
+
+def test_hover_notes_describe_the_configuration(store):
+    w = SweepExplorer(store)
+    note = w.chart.point_notes[0]
+    config = SWEEP.runs()[0]
+    assert w.chart.point_keys[0] == run_key(config)
+    assert "map" in note and "moons n_train=20" in note and "seed 0" in note and "fgsm-inf eps=0.1" in note
+
+
+def test_clicking_a_run_without_a_saved_ensemble_says_so(store):
+    w = SweepExplorer(store)
+    key = w.chart.point_keys[3]
+    w.chart.selected_key = key  # a click in the view
+    assert w.selected_key == key
+    assert "not saved" in w.detail_title.value and w.opened is None
+    w.selected_key = ""
+    assert w.detail.children == (w.detail_title,)
+
+
+def test_sweep_source_limits_to_its_runs(store):
+    subset = jostle.Sweep(
+        datasets=[{"name": "moons", "n_test": 20}], methods=["map"], architectures=[{"depth": 1, "width": 4}],
+        train_sizes=[20], seeds=[0, 1], evaluation=SWEEP.runs()[0]["evaluation"], store=store,
+    )
+    w = SweepExplorer(subset)
+    assert len(w.chart.point_keys) == 2

@@ -1,0 +1,232 @@
+"""Robustness against accuracy across the runs of a sweep, linked to an explorer per run."""
+from __future__ import annotations
+
+import math
+from pathlib import Path
+from typing import Any
+
+import ipywidgets as ipw
+import traitlets as t
+
+from jostle.store import RunStore
+from jostle.sweep_view import ROBUSTNESS_MEASURES, family_correlations, sweep_points
+
+from ._wire import to_wire
+from .sweep_chart import SweepChart
+
+_SYNCED = ("methods", "budget", "attack", "measure", "selected_key")
+
+
+class SweepExplorer(ipw.HBox):
+    """Every finished run of a sweep as one mark: test accuracy against robustness.
+
+    Deterministic runs are rose triangles, Bayesian runs indigo circles. Filters choose
+    the methods, the attack and the budget; a table gives Pearson and Spearman
+    correlations of robustness with accuracy per family, with the number of runs n.
+    Hovering a mark shows the run's configuration; clicking a run whose ensemble was
+    saved (``save_ensembles=True``) opens it in an Explorer, or an ImageExplorer for
+    image data, beside the chart.
+
+    Parameters
+    ----------
+    source : str, Path, RunStore or Sweep
+        The store file, an open store, or a sweep whose store to read (only its runs).
+
+    Examples
+    --------
+    >>> SweepExplorer("runs.sqlite")  # doctest: +SKIP
+    """
+
+    methods = t.List(t.Unicode(), help="posterior methods shown (a subset of those in the results)")
+    budget = t.Float(0.0, help="attack budget eps whose results are shown")
+    attack = t.Unicode("", help="label of the attack whose results are shown")
+    measure = t.Unicode("robustness", help="y axis: 'robustness' (softmax robustness) or 'unflipped' (1 - success rate)")
+    selected_key = t.Unicode("", help="key of the run opened beside the chart ('' for none)")
+
+    def __init__(self, source: Any, **kwargs: Any):
+        self._store_path, self._configs, self._frame = _read_source(source)
+        self.chart = SweepChart(layout=ipw.Layout(flex="1 1 auto"))
+        self.detail = ipw.VBox(layout=ipw.Layout(flex="1 1 auto", min_width="0"))
+        self.detail.add_class("jostle-tid-sweep-detail")
+        self.detail_title = ipw.Label("Click a run to open it here.")
+        self.detail.children = (self.detail_title,)
+        self.opened = None
+        frame = self._frame
+        self._method_options = sorted(frame["method"].unique().tolist()) if len(frame) else []
+        self._attack_options = list(dict.fromkeys(frame["attack"].tolist())) if len(frame) else []
+        super().__init__(children=(self.chart, self.detail), **kwargs)
+        self.add_class("jostle-sweep-explorer")
+        self.add_class("jostle-tid-sweep-explorer")
+        with self.hold_trait_notifications():
+            self.methods = list(self._method_options)
+            self.attack = self._attack_options[0] if self._attack_options else ""
+            options = self._budget_options()
+            self.budget = options[0] if options else 0.0
+        self.chart.observe(self._from_view, names=list(_SYNCED))
+        self._refresh()
+
+    # ------------------------------------------------------------------ validation
+    @t.validate("methods")
+    def _check_methods(self, proposal):
+        unknown = [m for m in proposal["value"] if m not in self._method_options]
+        if unknown:
+            raise t.TraitError(f"methods must be among {self._method_options}; got {unknown[0]!r}")
+        return [m for m in self._method_options if m in proposal["value"]]
+
+    @t.validate("attack")
+    def _check_attack(self, proposal):
+        if self._attack_options and proposal["value"] not in self._attack_options:
+            raise t.TraitError(f"attack must be one of {self._attack_options}; got {proposal['value']!r}")
+        return proposal["value"]
+
+    @t.validate("budget")
+    def _check_budget(self, proposal):
+        options = self._budget_options()
+        value = float(proposal["value"])
+        if options and not any(abs(value - b) < 1e-12 for b in options):
+            raise t.TraitError(f"budget must be one of {options} (the budgets of attack {self.attack!r}); got {value:g}")
+        return value
+
+    @t.validate("measure")
+    def _check_measure(self, proposal):
+        if proposal["value"] not in ROBUSTNESS_MEASURES:
+            raise t.TraitError(f"measure must be one of {list(ROBUSTNESS_MEASURES)}; got {proposal['value']!r}")
+        return proposal["value"]
+
+    @t.validate("selected_key")
+    def _check_selected(self, proposal):
+        key = proposal["value"]
+        if key and key not in self._configs:
+            raise t.TraitError(f"selected_key must be '' or the key of a stored run; got {key!r}")
+        return key
+
+    # ------------------------------------------------------------------ reactions
+    @t.observe("methods", "budget", "attack", "measure")
+    def _on_filter(self, change) -> None:
+        if change["name"] == "attack":
+            options = self._budget_options()
+            if options and not any(abs(self.budget - b) < 1e-12 for b in options):
+                self.budget = options[0]
+        self._refresh()
+
+    @t.observe("selected_key")
+    def _on_select(self, change) -> None:
+        self.chart.selected_key = change["new"]
+        self._open(change["new"])
+
+    def _from_view(self, change) -> None:
+        name, value = change["name"], change["new"]
+        if value == getattr(self, name):
+            return
+        try:
+            setattr(self, name, value)
+        except t.TraitError as err:
+            with self.chart.hold_sync():
+                setattr(self.chart, name, getattr(self, name))
+                self.chart.note = str(err)
+
+    # ------------------------------------------------------------------ view data
+    def _refresh(self) -> None:
+        self.points = sweep_points(self._frame, self.methods, self.budget, self.attack, self.measure) \
+            if len(self._frame) else None
+        self.correlations = family_correlations(self.points) if self.points is not None else []
+        with self.chart.hold_sync():
+            for name in ("methods", "budget", "attack", "measure"):
+                setattr(self.chart, name, getattr(self, name))
+            self.chart.method_options = self._method_options
+            self.chart.attack_options = self._attack_options
+            self.chart.budget_options = self._budget_options()
+            self.chart.measure_options = list(ROBUSTNESS_MEASURES)
+            self.chart.measure_titles = list(ROBUSTNESS_MEASURES.values())
+            self.chart.y_title = ROBUSTNESS_MEASURES[self.measure]
+            points = self.points
+            self.chart.accuracy = to_wire(points.accuracy if points else [], "float64")
+            self.chart.value = to_wire(points.value if points else [], "float64")
+            self.chart.family = to_wire(points.family if points else [], "uint8")
+            self.chart.point_keys = points.keys if points else []
+            self.chart.point_notes = points.descriptions if points else []
+            self.chart.correlations = [_correlation_row(c) for c in self.correlations]
+            self.chart.note = _summary(points)
+            self.chart.revision += 1
+
+    def _budget_options(self) -> list[float]:
+        frame = self._frame
+        if not len(frame):
+            return []
+        rows = frame[frame["attack"] == self.attack] if self.attack else frame
+        return sorted({float(b) for b in rows["budget"].dropna()})
+
+    def _open(self, key: str) -> None:
+        self.opened = None
+        if not key:
+            self.detail_title.value = "Click a run to open it here."
+            self.detail.children = (self.detail_title,)
+            return
+        path = self._ensemble_path(key)
+        config = self._configs[key]
+        label = f"{config['method']['name']}, seed {config['seed']}, run {key[:12]}"
+        if path is None or not path.is_file():
+            self.detail_title.value = f"{label}: its ensemble was not saved (run the sweep with save_ensembles=True)."
+            self.detail.children = (self.detail_title,)
+            return
+        explorer = _explorer_for(path, config)
+        if isinstance(explorer, str):
+            self.detail_title.value = f"{label}: {explorer}"
+            self.detail.children = (self.detail_title,)
+            return
+        self.opened = explorer
+        self.detail_title.value = label
+        self.detail.children = (self.detail_title, explorer)
+
+    def _ensemble_path(self, key: str) -> Path | None:
+        if self._store_path is None:
+            return None
+        with RunStore(self._store_path, readonly=True) as db:
+            return db.ensemble_file(key)
+
+
+def _read_source(source: Any):
+    from jostle.sweep import Sweep
+
+    keys = None
+    if isinstance(source, Sweep):
+        keys = source.keys()
+        source = source.store
+        if source is None:
+            raise ValueError("source must be a sweep that has a store; run it first or pass store= to Sweep")
+    if isinstance(source, RunStore):
+        source = source.path
+    if not isinstance(source, (str, Path)):
+        raise TypeError(f"source must be a store path, a RunStore or a Sweep; got {type(source).__name__}")
+    with RunStore(source, readonly=True) as db:
+        configs = {r["key"]: r["config"] for r in db.runs(keys)}
+        frame = db.results(keys)
+    return Path(source), configs, frame
+
+
+def _explorer_for(path: Path, config: dict):
+    """An Explorer (ImageExplorer for image data) over the saved run, or a reason why not."""
+    import jostle
+    import jostle.widgets as widgets
+    from jostle.sweep_run import load_run_data
+
+    data = load_run_data(config["data"])
+    name = "ImageExplorer" if data.image_shape else "Explorer"
+    widget = getattr(widgets, name, None)
+    if widget is None:
+        return f"jostle.widgets.{name} is not available in this installation."
+    return widget(jostle.load(path), data)
+
+
+def _correlation_row(c) -> list[str]:
+    def show(v: float) -> str:
+        return "n/a" if math.isnan(v) else f"{v:.3f}"
+
+    return [c.family, str(c.n), show(c.pearson_r), show(c.pearson_p), show(c.spearman_rho), show(c.spearman_p)]
+
+
+def _summary(points) -> str:
+    if points is None:
+        return "No finished runs in this store yet."
+    saved = int(points.saved.sum())
+    return f"{len(points.keys)} runs shown; {saved} with a saved ensemble (click to open)."
