@@ -39,7 +39,7 @@ def predictive_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
                 for _ in range(2)]
     x_axis = bq.Axis(scale=xs, tick_values=np.array([0, 1]), tick_labels={"0": "0", "1": "1"},
                      grid_lines="none", label="class")
-    y_axis = bq.Axis(scale=ys, orientation="vertical", label="probability", tick_format=".1f")
+    y_axis = bq.Axis(scale=ys, side="left", label="probability", tick_format=".1f")
     figure = _figure("predictive-chart", "posterior predictive (bars: mean, whiskers: 5-95% of members)",
                      bars + whiskers, [x_axis, y_axis])
     figure.legend_location = "top-right"
@@ -76,7 +76,7 @@ def spread_chart() -> tuple[bq.Figure, w.Label, Callable[[Any], None]]:
                     labels=[name], display_legend=True, align="center")
             for name, colour in (("input", INPUT_COLOUR), ("attacked", ATTACK_COLOUR))]
     x_axis = bq.Axis(scale=xs, label="member probability of the predicted class", tick_format=".1f")
-    y_axis = bq.Axis(scale=ys, orientation="vertical", label="members", tick_format="d")
+    y_axis = bq.Axis(scale=ys, side="left", label="members", tick_format="d")
     figure = _figure("spread-chart", "spread across posterior samples", bars, [x_axis, y_axis])
     figure.legend_location = "top-left"
     text = w.Label("")
@@ -106,8 +106,8 @@ def path_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
     prob = bq.Lines(x=[0.0], y=[0.0], scales={"x": xs, "y": prob_scale}, colors=[INK], line_style="dashed",
                     stroke_width=1.5, labels=["p(label)"], display_legend=True)
     axes = [bq.Axis(scale=xs, label="attack step", tick_format="d"),
-            bq.Axis(scale=loss_scale, orientation="vertical", label="loss", tick_format=".2f"),
-            bq.Axis(scale=prob_scale, orientation="vertical", side="right", label="p(label)", tick_format=".1f")]
+            bq.Axis(scale=loss_scale, side="left", label="loss", tick_format=".2f"),
+            bq.Axis(scale=prob_scale, side="right", label="p(label)", tick_format=".1f")]
     figure = _figure("path-chart", "along the attack path", [loss, prob], axes)
     figure.legend_location = "top-right"
 
@@ -139,7 +139,7 @@ def fade_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
     current = bq.Lines(x=[1.0, 1.0], y=[1.0, 1.0], scales=scales, colors=[INK], stroke_width=1, line_style="dotted",
                        labels=["attacker S"], display_legend=True)
     axes = [bq.Axis(scale=xs, label="posterior samples S"),
-            bq.Axis(scale=ys, orientation="vertical", label="gradient norm", tick_format=".1e")]
+            bq.Axis(scale=ys, side="left", label="gradient norm", tick_format=".1e")]
     figure = _figure("fade-chart", "expected gradient against samples", [band, mean, reference, current], axes)
     figure.legend_location = "bottom-left"
 

@@ -39,6 +39,7 @@ class LiveBox(w.VBox):
         self._last_state: live.ExplorerState | None = None
         self._syncing = False
         self._ready = False
+        self._accepted: dict[str, Any] = {}
         self._controls = AttackControls(budget_max=budget_max, samples_max=len(ens), methods=list(live.METHODS),
                                         objectives=list(live.OBJECTIVES),
                                         steps_max=max(200, int(settings.get("steps", 40))))
@@ -74,9 +75,10 @@ class LiveBox(w.VBox):
         return self._worker.wait(timeout)
 
     def close(self) -> None:
-        self._worker.close()
-        for child in (self._controls, self._status):
-            child.close()
+        if hasattr(self, "_worker"):
+            self._worker.close()
+            self._controls.close()
+            self._status.close()
         super().close()
 
     # ---------------------------------------------------------------- main thread
@@ -103,8 +105,12 @@ class LiveBox(w.VBox):
             value = live.check_field(self._ens, name, proposal.value, n_features=n_features)
         except ValueError as err:
             self._worker.notify(err)
-            return getattr(self, name)
-        return list(value) if isinstance(value, tuple) else value
+            # Not getattr(self, name): inside hold_trait_notifications (as in set_state) the
+            # trait already holds the rejected value when cross-validation runs.
+            return self._accepted.get(name, proposal.trait.default_value)
+        value = list(value) if isinstance(value, tuple) else value
+        self._accepted[name] = value
+        return value
 
     def _from_control(self, change: Any) -> None:
         if self._syncing:

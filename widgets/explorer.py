@@ -104,7 +104,8 @@ class Explorer(LiveBox):
                                   layer=self.layer, **self._fixed)
 
     def close(self) -> None:
-        self._map.close()
+        if hasattr(self, "_map"):
+            self._map.close()
         super().close()
 
     def _apply(self, view: live.ViewData) -> None:
