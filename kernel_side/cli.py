@@ -10,7 +10,7 @@ import importlib
 import sys
 
 # Modules that add subcommands; each has register(subparsers).
-COMMAND_MODULES: list[str] = ["cli_sweep"]
+COMMAND_MODULES: list[str] = ["cli_sweep", "cli_demo"]
 
 
 class CommandError(Exception):
@@ -46,4 +46,8 @@ def main(argv: list[str] | None = None) -> int:
 
 
 if __name__ == "__main__":
-    raise SystemExit(main())
+    # Under `python -m jostle.cli` this file is __main__; subcommand modules raise the
+    # CommandError of jostle.cli, so dispatch through that module.
+    from jostle.cli import main as _main
+
+    raise SystemExit(_main())

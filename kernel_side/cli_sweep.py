@@ -37,12 +37,12 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     run.add_argument("--save-ensembles", action="store_true", help="save each fitted posterior beside the store")
     run.add_argument("--skip-failed", action="store_true", help="do not retry runs stored as failed")
     run.add_argument("--quiet", action="store_true", help="no progress bar")
-    run.set_defaults(handler=_sweep_run)
+    run.set_defaults(handler=_sweep_run, command="sweep run")
     show = actions.add_parser("show", help="print a store's runs as a table",
                               description="Print one line per run: configuration, metrics, attack results.")
     show.add_argument("store", help="SQLite file written by 'jostle sweep run'")
     show.add_argument("--failed", action="store_true", help="list failed runs with their errors instead")
-    show.set_defaults(handler=_sweep_show)
+    show.set_defaults(handler=_sweep_show, command="sweep show")
 
     inspect = subparsers.add_parser("inspect", help="print a saved posterior's metadata and diagnostics",
                                     description="Print the metadata of a .safetensors posterior without loading its tensors.")

@@ -1,0 +1,210 @@
+"""`jostle fit`, `jostle sweep run/show` and `jostle inspect`, driven through a subprocess."""
+from __future__ import annotations
+
+import os
+import signal
+import sqlite3
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+
+import jostle
+from jostle.store import RunStore
+
+needs_attacks = pytest.mark.skipif(
+    not all(hasattr(jostle, n) for n in ("attack", "softmax_robustness")),
+    reason="needs jostle.attack and jostle.softmax_robustness",
+)
+
+FIT = """
+seed = 1
+[data]
+name = "moons"
+n_train = 40
+n_test = 40
+[architecture]
+depth = 1
+width = 8
+[method]
+name = "deep_ensemble"
+members = 2
+epochs = 3
+"""
+
+SWEEP = """
+[sweep]
+name = "cli"
+seeds = [0, 1]
+train_sizes = [40]
+[[sweep.datasets]]
+name = "moons"
+n_test = 40
+[[sweep.architectures]]
+depth = 1
+width = 8
+[[sweep.methods]]
+name = "map"
+epochs = {epochs}
+[[sweep.methods]]
+name = "map"
+epochs = 2
+lr = -1.0
+[sweep.evaluation]
+budgets = [0.1, 0.2]
+points = 10
+[[sweep.evaluation.attacks]]
+method = "fgsm"
+[[sweep.evaluation.attacks]]
+method = "pgd"
+steps = 3
+"""
+
+
+def jostle_cli(*args: str, cwd: Path) -> subprocess.CompletedProcess:
+    return subprocess.run([sys.executable, "-m", "jostle.cli", *args], cwd=cwd, capture_output=True,
+                          text=True, timeout=240, env={**os.environ, "OMP_NUM_THREADS": "1"})
+
+
+def in_process(argv: list[str], capsys, cwd: Path, monkeypatch) -> subprocess.CompletedProcess:
+    """The same entry point in this process (no interpreter start-up), for the many error cases."""
+    from jostle.cli import main
+
+    monkeypatch.chdir(cwd)
+    try:
+        code = main(argv)
+    except SystemExit as exit_:  # argparse's --help and usage errors
+        code = exit_.code
+    out, err = capsys.readouterr()
+    return subprocess.CompletedProcess(argv, code, out, err)
+
+
+def one_line_error(result: subprocess.CompletedProcess) -> str:
+    lines = result.stderr.strip().splitlines()
+    assert len(lines) == 1, result.stderr
+    return lines[0]
+
+
+def test_help_everywhere(tmp_path, capsys, monkeypatch):
+    assert "sweep" in jostle_cli("--help", cwd=tmp_path).stdout
+    for args in (["fit"], ["sweep"], ["sweep", "run"], ["sweep", "show"], ["inspect"]):
+        result = in_process([*args, "--help"], capsys, tmp_path, monkeypatch)
+        assert result.returncode == 0 and "usage: jostle" in result.stdout, args
+    assert "--save-ensembles" in in_process(["sweep", "run", "--help"], capsys, tmp_path, monkeypatch).stdout
+
+
+def test_fit_then_inspect(tmp_path):
+    (tmp_path / "fit.toml").write_text(FIT)
+    result = jostle_cli("fit", "fit.toml", "--out", "post.safetensors", cwd=tmp_path)
+    assert result.returncode == 0, result.stderr
+    assert "wrote post.safetensors: 2 member(s), method deep_ensemble" in result.stdout
+    ens = jostle.load(tmp_path / "post.safetensors")
+    assert len(ens) == 2 and ens.meta["run"]["config"]["seed"] == 1
+    shown = jostle_cli("inspect", "post.safetensors", cwd=tmp_path)
+    assert shown.returncode == 0, shown.stderr
+    assert "members: 2" in shown.stdout and 'method: "deep_ensemble"' in shown.stdout
+    assert "diagnostics:" in shown.stdout
+
+
+@pytest.mark.parametrize("text, message", [
+    (FIT.replace("width = 8", "width = 8\nheight = 3"), r"fit\.toml\.architecture: unknown key 'height'"),
+    (FIT.replace("depth = 1", "depth = -1"), r"fit\.toml\.architecture\.depth: must be an integer >= 0; got -1"),
+    (FIT.replace('name = "deep_ensemble"', 'name = "mcmc"'), r"fit\.toml\.method: unknown method 'mcmc'"),
+    ("seed = [\n", r"fit\.toml is not valid TOML"),
+])
+def test_fit_refuses_bad_configs_in_one_line(tmp_path, text, message, capsys, monkeypatch):
+    (tmp_path / "fit.toml").write_text(text)
+    result = in_process(["fit", "fit.toml", "--out", "post.safetensors"], capsys, tmp_path, monkeypatch)
+    assert result.returncode == 1
+    assert __import__("re").search(r"^jostle fit: " + message, one_line_error(result))
+    assert not (tmp_path / "post.safetensors").exists()
+
+
+def test_bad_config_through_a_subprocess(tmp_path):
+    (tmp_path / "fit.toml").write_text(FIT.replace("width = 8", "width = 8\nheight = 3"))
+    result = jostle_cli("fit", "fit.toml", "--out", "post.safetensors", cwd=tmp_path)
+    assert result.returncode == 1 and result.stdout == ""
+    assert one_line_error(result).startswith("jostle fit: fit.toml.architecture: unknown key 'height'")
+    missing = jostle_cli("sweep", "run", "nowhere.toml", "--store", "s.sqlite", cwd=tmp_path)
+    assert missing.returncode == 1
+    assert one_line_error(missing) == "jostle sweep run: config file does not exist: nowhere.toml"
+
+
+def test_bad_arguments_fail_in_one_line(tmp_path, capsys, monkeypatch):
+    def cli(*argv):
+        return in_process(list(argv), capsys, tmp_path, monkeypatch)
+
+    missing = cli("fit", "nowhere.toml", "--out", "p.safetensors")
+    assert missing.returncode == 1 and one_line_error(missing) == "jostle fit: config file does not exist: nowhere.toml"
+    (tmp_path / "fit.toml").write_text(FIT)
+    suffix = cli("fit", "fit.toml", "--out", "post.pt")
+    assert one_line_error(suffix) == "jostle fit: --out must end in .safetensors; got 'post.pt'"
+    nothing = cli("inspect", "nothing.safetensors")
+    assert nothing.returncode == 1 and "path does not exist" in one_line_error(nothing)
+    (tmp_path / "junk.safetensors").write_bytes(b"\x80\x04junk")  # pickle protocol 4 opening bytes
+    junk = cli("inspect", "junk.safetensors")
+    assert junk.returncode == 1 and "never unpickles" in one_line_error(junk)
+    store = cli("sweep", "show", "nowhere.sqlite")
+    assert store.returncode == 1 and one_line_error(store) == "jostle sweep show: store does not exist: nowhere.sqlite"
+    (tmp_path / "bad.toml").write_text(SWEEP.format(epochs=2).replace('name = "map"', 'name = "mcmc"', 1))
+    bad = cli("sweep", "run", "bad.toml", "--store", "s.sqlite")
+    assert bad.returncode == 1
+    assert one_line_error(bad).startswith("jostle sweep run: sweep.methods[0]: unknown method 'mcmc'")
+    no_action = cli("sweep")
+    assert no_action.returncode == 1 and no_action.stderr.strip().endswith("jostle sweep: choose an action: run or show")
+    wrong_kind = cli("sweep", "run", "fit.toml", "--store", "s.sqlite")
+    assert one_line_error(wrong_kind).startswith("jostle sweep run: unknown key 'seed' at the top")
+    no_out = cli("fit", "fit.toml")
+    assert no_out.returncode == 2 and "--out" in no_out.stderr  # argparse usage error
+
+
+@needs_attacks
+def test_sweep_run_and_show(tmp_path):
+    (tmp_path / "sweep.toml").write_text(SWEEP.format(epochs=2))
+    result = jostle_cli("sweep", "run", "sweep.toml", "--store", "runs.sqlite", "--save-ensembles", "--quiet",
+                        cwd=tmp_path)
+    assert result.returncode == 3, result.stderr  # some runs failed: lr = -1 is refused on purpose
+    assert "cli: 4 runs, 0 already stored, 2 finished, 2 failed -> runs.sqlite" in result.stdout
+    again = jostle_cli("sweep", "run", "sweep.toml", "--store", "runs.sqlite", "--skip-failed", "--quiet", cwd=tmp_path)
+    assert again.returncode == 0 and "4 already stored, 0 finished, 0 failed" in again.stdout
+    shown = jostle_cli("sweep", "show", "runs.sqlite", cwd=tmp_path)
+    assert shown.returncode == 0, shown.stderr
+    assert "robustness[pgd-inf@0.2]" in shown.stdout and "2 finished run(s), 2 failed" in shown.stdout
+    failed = jostle_cli("sweep", "show", "runs.sqlite", "--failed", cwd=tmp_path)
+    assert "lr" in failed.stdout and "2 failed run(s)" in failed.stdout
+    assert len(list((tmp_path / "runs.ensembles").glob("*.safetensors"))) == 2
+
+
+@needs_attacks
+def test_unreachable_scheduler(tmp_path, capsys, monkeypatch):
+    (tmp_path / "sweep.toml").write_text(SWEEP.format(epochs=2))
+    result = in_process(["sweep", "run", "sweep.toml", "--store", "runs.sqlite", "--scheduler", "tcp://127.0.0.1:9"],
+                        capsys, tmp_path, monkeypatch)
+    assert result.returncode == 1
+    assert one_line_error(result).startswith("jostle sweep run: cannot reach the scheduler at tcp://127.0.0.1:9")
+
+
+@needs_attacks
+@pytest.mark.slow
+def test_sigint_then_rerun_executes_only_the_missing_runs(tmp_path):
+    (tmp_path / "sweep.toml").write_text(SWEEP.format(epochs=400).replace("seeds = [0, 1]", "seeds = [0, 1, 2, 3]"))
+    command = [sys.executable, "-m", "jostle.cli", "sweep", "run", "sweep.toml", "--store", "runs.sqlite", "--quiet"]
+    process = subprocess.Popen(command, cwd=tmp_path, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    deadline = time.time() + 120
+    stored = 0
+    while time.time() < deadline and stored < 5:  # the 4 failing runs are quick, then a slow one
+        time.sleep(0.2)
+        if (tmp_path / "runs.sqlite").exists():
+            with RunStore(tmp_path / "runs.sqlite", readonly=True) as db:
+                stored = len(db.statuses())
+    process.send_signal(signal.SIGINT)
+    _, err = process.communicate(timeout=60)
+    assert process.returncode == 130 and err.strip().endswith("jostle sweep run: interrupted")
+    with RunStore(tmp_path / "runs.sqlite", readonly=True) as db:
+        before = db.statuses()
+    assert 5 <= len(before) < 8
+    assert sqlite3.connect(tmp_path / "runs.sqlite").execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+    rerun = jostle_cli("sweep", "run", "sweep.toml", "--store", "runs.sqlite", "--skip-failed", "--quiet", cwd=tmp_path)
+    assert f"8 runs, {len(before)} already stored, {8 - len(before)} finished" in rerun.stdout

@@ -1,0 +1,188 @@
+"""Sweeps end to end: in-process against a Dask LocalCluster, worker kills, interrupts, failures."""
+from __future__ import annotations
+
+import logging
+import os
+import signal
+import sqlite3
+
+import numpy as np
+import pytest
+
+import jostle
+from jostle.store import RunStore
+from jostle.sweep_config import run_key
+
+distributed = pytest.importorskip("distributed")
+
+pytestmark = pytest.mark.skipif(
+    not all(hasattr(jostle, n) for n in ("attack", "softmax_robustness", "fit_map", "fit_deep_ensemble")),
+    reason="needs jostle.attack, jostle.softmax_robustness, fit_map and fit_deep_ensemble",
+)
+
+TINY = dict(
+    datasets=[{"name": "moons", "n_test": 40, "noise": 0.2}],
+    methods=[{"name": "map", "epochs": 3, "batch_size": 20},
+             {"name": "deep_ensemble", "members": 2, "epochs": 3, "batch_size": 20}],
+    architectures=[{"depth": 1, "width": 8}],
+    train_sizes=[40],
+    seeds=[0, 1],
+    evaluation={"budgets": [0.1, 0.3], "points": 20,
+                "attacks": [{"method": "fgsm"}, {"method": "pgd", "steps": 5}]},
+    name="tiny",
+)
+METRICS = ["accuracy", "nll", "ece", "success_rate", "robustness"]
+
+
+@pytest.fixture(scope="module")
+def client():
+    cluster = distributed.LocalCluster(n_workers=2, processes=True, threads_per_worker=1,
+                                       dashboard_address=None, silence_logs=logging.ERROR)
+    with cluster, distributed.Client(cluster) as c:
+        yield c
+
+
+def _sorted(frame):
+    return frame.sort_values(["key", "attack", "budget"]).reset_index(drop=True)
+
+
+def _integrity(path) -> str:
+    # sqlite3's own PRAGMA integrity_check, through a fresh connection
+    return sqlite3.connect(path).execute("PRAGMA integrity_check").fetchone()[0]
+
+
+@pytest.fixture(scope="module")
+def in_process(tmp_path_factory):
+    path = tmp_path_factory.mktemp("local") / "runs.sqlite"
+    sweep = jostle.Sweep(**TINY)
+    summary = sweep.run(store=path)  # with the tqdm bar, as a user would see it
+    return sweep, path, summary
+
+
+def test_in_process_runs_every_run_once(in_process):
+    sweep, path, summary = in_process
+    assert (summary.total, summary.finished, summary.failed, summary.skipped) == (8, 8, 0, 0)
+    frame = sweep.results()
+    assert len(frame) == 8 * 2 * 2  # runs x attacks x budgets
+    assert frame.groupby("key").size().eq(4).all()
+    assert set(frame["family"]) == {"deterministic", "Bayesian"}
+    assert frame[METRICS].notna().all().all()
+    assert _integrity(path) == "ok"
+
+
+def test_cluster_gives_the_same_rows(in_process, client, tmp_path):
+    sweep, _, _ = in_process
+    summary = jostle.Sweep(**TINY).run(store=tmp_path / "runs.sqlite", client=client, progress_bar=False)
+    assert (summary.finished, summary.failed) == (8, 0)
+    local = _sorted(sweep.results())
+    remote = _sorted(jostle.Sweep(**TINY).results(store=tmp_path / "runs.sqlite"))
+    assert local[["key", "attack", "budget", "seed", "method"]].equals(remote[["key", "attack", "budget", "seed", "method"]])
+    np.testing.assert_allclose(remote[METRICS].to_numpy(float), local[METRICS].to_numpy(float), atol=1e-6, rtol=0)
+    with RunStore(tmp_path / "runs.sqlite", readonly=True) as db:
+        workers = {r["worker"] for r in db.runs()}
+        versions = db.runs()[0]["versions"]
+    assert all(int(w.split(":")[1]) != os.getpid() for w in workers)  # really ran elsewhere
+    assert set(versions) == {"jostle", "torch", "numpy", "python"}
+    assert _integrity(tmp_path / "runs.sqlite") == "ok"
+
+
+def test_rerun_skips_stored_runs(in_process):
+    sweep, path, _ = in_process
+    seen = []
+    summary = sweep.run(store=path, progress=lambda record, s: seen.append(record), progress_bar=False)
+    assert (summary.skipped, summary.finished, seen) == (8, 0, [])
+
+
+@pytest.mark.parametrize("where", ["in_process", "cluster"])
+def test_interrupted_sweep_resumes_with_only_the_missing_runs(where, client, tmp_path):
+    path = tmp_path / "runs.sqlite"
+    use = client if where == "cluster" else None
+    done = []
+
+    def stop_after_three(record, summary):
+        done.append(record["key"])
+        if len(done) == 3:
+            raise KeyboardInterrupt
+
+    with pytest.raises(KeyboardInterrupt):
+        jostle.Sweep(**TINY).run(store=path, client=use, progress=stop_after_three, progress_bar=False)
+    assert _integrity(path) == "ok"
+    with RunStore(path, readonly=True) as db:
+        assert set(db.statuses()) == set(done)
+    again = []
+    summary = jostle.Sweep(**TINY).run(store=path, client=use, progress=lambda r, s: again.append(r["key"]),
+                                       progress_bar=False)
+    keys = jostle.Sweep(**TINY).keys()
+    assert summary.skipped == 3 and sorted(again) == sorted(set(keys) - set(done))
+    with RunStore(path, readonly=True) as db:
+        rows = db.runs()
+    assert sorted(r["key"] for r in rows) == sorted(keys) and all(r["attempts"] == 1 for r in rows)
+    assert _integrity(path) == "ok"
+
+
+def test_failing_run_is_stored_and_the_sweep_completes(client, tmp_path):
+    path = tmp_path / "runs.sqlite"
+    spec = dict(TINY, methods=TINY["methods"] + [{"name": "map", "epochs": 3, "lr": -1.0}])  # lr < 0 is refused
+    sweep = jostle.Sweep(**spec)
+    summary = sweep.run(store=path, client=client, progress_bar=False)
+    assert (summary.total, summary.finished, summary.failed) == (12, 8, 4)
+    with RunStore(path, readonly=True) as db:
+        failed = [r for r in db.runs() if r["status"] == "failed"]
+    assert len(failed) == 4
+    assert all(r["config"]["method"].get("lr") == -1.0 for r in failed)
+    assert all("lr" in r["error"] and "Traceback" in r["traceback"] for r in failed)
+    kept = sweep.run(store=path, retry_failed=False, progress_bar=False)
+    assert (kept.skipped, kept.failed) == (12, 0)
+    retried = sweep.run(store=path, progress_bar=False)
+    assert (retried.skipped, retried.failed) == (8, 4)
+    with RunStore(path, readonly=True) as db:
+        rows = db.runs()
+    assert len(rows) == 12 and sorted(r["attempts"] for r in rows) == [1] * 8 + [2] * 4
+    assert len(sweep.results(include_failed=True)) == 8 * 4 + 4
+    assert _integrity(path) == "ok"
+
+
+def test_saved_ensembles_reload_with_the_same_predictions(tmp_path):
+    path = tmp_path / "runs.sqlite"
+    spec = dict(TINY, methods=TINY["methods"][1:], seeds=[0])
+    sweep = jostle.Sweep(**spec)
+    sweep.run(store=path, save_ensembles=True, progress_bar=False)
+    key = sweep.keys()[0]
+    with RunStore(path, readonly=True) as db:
+        saved = db.ensemble_file(key)
+        accuracy = db.runs()[0]["accuracy"]
+    assert saved == path.parent / "runs.ensembles" / f"{key}.safetensors"
+    ens = jostle.load(saved)
+    assert len(ens) == 2 and ens.meta["run"]["key"] == key
+    data = jostle.datasets.moons(n_train=40, n_test=40, noise=0.2, seed=0)
+    assert jostle.metrics.accuracy(ens.predict(data.x_test), data.y_test) == pytest.approx(accuracy, abs=1e-12)
+
+
+@pytest.mark.slow
+def test_killing_a_worker_mid_sweep_loses_no_run(client, tmp_path):
+    path = tmp_path / "runs.sqlite"
+    spec = dict(TINY, seeds=[0, 1, 2, 3], methods=[dict(m, epochs=20) for m in TINY["methods"]])
+    pids = client.run(os.getpid)
+    killed = {}
+
+    def kill_a_busy_worker(record, summary):
+        if killed:
+            return
+        busy = [address for address, keys in client.processing().items() if keys]
+        if busy:
+            killed[busy[0]] = client.processing()[busy[0]]
+            os.kill(pids[busy[0]], signal.SIGKILL)
+
+    seen = []
+    summary = jostle.Sweep(**spec).run(
+        store=path, client=client, progress_bar=False,
+        progress=lambda r, s: (seen.append(r["key"]), kill_a_busy_worker(r, s)),
+    )
+    assert killed, "no worker was busy when the first run finished"
+    assert (summary.finished, summary.failed) == (16, 0)
+    assert sorted(seen) == sorted(jostle.Sweep(**spec).keys())  # each run committed exactly once
+    with RunStore(path, readonly=True) as db:
+        rows = db.runs()
+    assert len(rows) == 16 and all(r["status"] == "ok" and r["attempts"] == 1 for r in rows)
+    assert _integrity(path) == "ok"
+    client.wait_for_workers(2, timeout=60)
