@@ -1,0 +1,81 @@
+// jostle image strip: choose a test image by click, or Enter / Space on a focused thumbnail.
+// Arrow keys move the focus along the strip. Captions are text only.
+
+/** @typedef {{shape: number[], dtype: string, buffer: DataView}} WireArray */
+
+/** @param {WireArray} w */
+function floats(w) {
+  if (!w || !w.buffer) return new Float32Array(0);
+  const b = w.buffer;
+  return new Float32Array(b.buffer.slice(b.byteOffset, b.byteOffset + b.byteLength));
+}
+
+/** @param {string} hex */
+function rgb(hex) {
+  const n = parseInt((hex || "#888888").trim().replace("#", "").slice(0, 6), 16);
+  return Number.isNaN(n) ? [136, 136, 136] : [(n >> 16) & 255, (n >> 8) & 255, n & 255];
+}
+
+/** Grey ramp from the theme's surface (low) to its ink (high). */
+function paintImage(canvas, values, offset, height, width, range, root) {
+  const css = getComputedStyle(root);
+  const light = rgb(css.getPropertyValue("--jostle-surface")), dark = rgb(css.getPropertyValue("--jostle-ink"));
+  canvas.width = width; canvas.height = height;
+  const ctx = canvas.getContext("2d"), img = ctx.createImageData(width, height);
+  const [lo, hi] = range;
+  for (let k = 0; k < width * height; k++) {
+    const t = Math.min(1, Math.max(0, (values[offset + k] - lo) / (hi - lo || 1)));
+    for (let c = 0; c < 3; c++) img.data[4 * k + c] = Math.round(light[c] + t * (dark[c] - light[c]));
+    img.data[4 * k + 3] = 255;
+  }
+  ctx.putImageData(img, 0, 0);
+}
+
+function render({ model, el }) {
+  const root = document.createElement("div");
+  root.className = "jostle-root jostle-strip"; root.dataset.testid = "image-strip";
+  root.setAttribute("role", "listbox"); root.setAttribute("aria-label", "test images");
+  el.append(root);
+  /** @type {HTMLCanvasElement[]} */
+  let items = [];
+  const choose = (k) => { model.set("selected", k); model.save_changes(); };
+  const build = () => {
+    const w = model.get("images"), values = floats(w), captions = model.get("captions");
+    root.replaceChildren(); items = [];
+    if (!w || w.shape.length !== 3) return;
+    const [n, height, width] = w.shape;
+    for (let k = 0; k < n; k++) {
+      const canvas = document.createElement("canvas");
+      canvas.dataset.testid = "image-strip-item"; canvas.dataset.index = String(k);
+      canvas.tabIndex = 0; canvas.setAttribute("role", "option");
+      const caption = captions[k] === undefined ? `image ${k}` : String(captions[k]);
+      canvas.setAttribute("aria-label", caption); canvas.title = caption;
+      paintImage(canvas, values, k * height * width, height, width, model.get("value_range"), root);
+      canvas.addEventListener("click", () => choose(k));
+      canvas.addEventListener("keydown", (ev) => {
+        if (ev.key === "Enter" || ev.key === " ") { ev.preventDefault(); choose(k); }
+        if (ev.key === "ArrowRight" || ev.key === "ArrowLeft") {
+          ev.preventDefault();
+          const next = items[Math.min(n - 1, Math.max(0, k + (ev.key === "ArrowRight" ? 1 : -1)))];
+          if (next) next.focus();
+        }
+      });
+      items.push(canvas); root.append(canvas);
+    }
+    mark();
+  };
+  const mark = () => {
+    const selected = model.get("selected");
+    items.forEach((c, k) => c.setAttribute("aria-selected", String(k === selected)));
+    root.dataset.selected = String(selected); root.dataset.count = String(items.length);
+  };
+  model.on("change:images change:captions change:value_range", build);
+  model.on("change:selected", mark);
+  build();
+  return () => {
+    model.off("change:images change:captions change:value_range", build);
+    model.off("change:selected", mark);
+  };
+}
+
+export default { render };

@@ -1,0 +1,97 @@
+"""ImageExplorer on the 8x8 digits and Comparison of two posteriors, driven through traits."""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import torch
+
+import jostle
+from jostle.widgets import Comparison, ImageExplorer
+from jostle.widgets._wire import from_wire
+
+from .conftest import has_attacks, tiny_ensemble
+
+
+@pytest.fixture(scope="module")
+def digits():
+    return jostle.datasets.digits(seed=0)
+
+
+@pytest.fixture
+def image_explorer(digits):
+    ens = tiny_ensemble(members=4, in_features=64, classes=10, hidden=(8,), class_names=digits.classes)
+    ex = ImageExplorer(ens, digits, strip=6, steps=4, budget=0.1)
+    assert ex.wait(20)
+    yield ex
+    ex.close()
+
+
+def test_image_explorer_shows_the_chosen_test_image(image_explorer, digits):
+    ex = image_explorer
+    strip = from_wire(ex._strip.get_state()["images"])
+    np.testing.assert_allclose(strip, digits.x_test[:6].reshape(6, 8, 8).numpy(), rtol=1e-6)
+    assert ex._strip.captions[0] == f"test image 0: class {digits.classes[int(digits.y_test[0])]}"
+    ex._strip.set_state({"selected": 3})  # a click on the fourth thumbnail
+    assert ex.wait(20)
+    assert ex.index == 3
+    np.testing.assert_allclose(from_wire(ex._panels.original), digits.x_test[3].reshape(8, 8).numpy(), rtol=1e-6)
+    expected = ex._ens.predict(digits.x_test[3:4])
+    np.testing.assert_allclose(ex.result.before.probs, expected.probs[0].numpy(), rtol=1e-6)
+
+
+def test_image_explorer_bad_index_and_budget_reach_the_status(image_explorer):
+    ex = image_explorer
+    ex._strip.set_state({"selected": 6})
+    assert ex.wait(20)
+    assert ex.status[0] == "error" and "index must be an integer in [0, 5]; got 6" in ex.status[1]
+    assert ex.index == 0 and ex._strip.selected == 0
+    ex.set_state({"budget": float("nan")})
+    assert ex.wait(20) and "budget must be a finite float >= 0; got nan" in ex.status[1]
+    ex.set_state({"budget": 0.2, "index": 1})
+    assert ex.wait(20) and ex.status[0] == "idle" and ex.result.state.budget == 0.2
+
+
+def test_image_explorer_refuses_data_without_images(moons, ens):
+    with pytest.raises(ValueError, match="data must have a 2-d image_shape for ImageExplorer; got None"):
+        ImageExplorer(ens, moons)
+
+
+@has_attacks
+def test_image_panels_hold_the_attack_from_jostle_attack(image_explorer, digits):
+    ex = image_explorer
+    view = ex.result
+    x = digits.x_test[:1]
+    adv = jostle.attack(ex._ens, x, y=torch.tensor([view.label]), method="pgd", eps=0.1, norm="inf", steps=4,
+                        samples=4, objective="expected_loss", seed=0)
+    delta = (adv.x_adv - x)[0].reshape(8, 8).numpy()
+    np.testing.assert_allclose(from_wire(ex._panels.perturbation), delta, atol=1e-6)
+    assert np.abs(delta).max() <= 0.1 + 1e-6
+    assert ex._panels.max_abs == pytest.approx(float(np.abs(delta).max()), abs=1e-6)
+
+
+def test_comparison_shares_input_budget_and_clipped_sample_count(moons):
+    deterministic = tiny_ensemble(members=1, seed=3)
+    posterior = tiny_ensemble(members=5, seed=4)
+    comparison = Comparison([posterior, deterministic], moons, labels=["five samples", "one net"],
+                            grid=8, steps=2, boundaries=2)
+    try:
+        assert comparison.wait(20)
+        first, second = comparison.explorers
+        first._map.set_state({"point": [0.4, -0.3]})
+        first.budget = 0.12
+        first.samples = 4
+        assert comparison.wait(20)
+        assert second.result.state.point == (0.4, -0.3) and second.result.state.budget == 0.12
+        assert second.samples == 1 and first.samples == 4  # clipped to the deterministic net's S = 1
+        np.testing.assert_allclose(second.result.before.probs,
+                                   deterministic.predict(torch.tensor([[0.4, -0.3]])).probs[0].numpy(), rtol=1e-6)
+        assert second.status[0] == "idle"
+    finally:
+        comparison.close()
+
+
+def test_comparison_checks_its_arguments(moons, ens):
+    with pytest.raises(ValueError, match="ensembles must hold at least 2 posteriors to compare; got 1"):
+        Comparison([ens], moons)
+    with pytest.raises(ValueError, match="labels must name each of the 2 ensembles; got 1"):
+        Comparison([ens, ens], moons, labels=["a"])

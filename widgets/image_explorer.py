@@ -1,0 +1,145 @@
+"""The image explorer: choose a test image, attack it, see the perturbation and the predictive."""
+from __future__ import annotations
+
+from typing import Any
+
+import ipywidgets as w
+import numpy as np
+import traitlets as t
+
+from jostle import live
+from jostle._checks import check_int
+
+from . import _charts
+from ._live_box import LiveBox
+from ._wire import empty_wire, to_wire
+from .image_panels import ImagePanels
+from .image_strip import ImageStrip
+
+
+class ImageExplorer(LiveBox):
+    """Linked live views of a posterior ensemble on image data (e.g. the 8x8 digits).
+
+    Parameters
+    ----------
+    ens : jostle.Ensemble
+        A classifier of flattened images, ``data.n_features`` inputs.
+    data : jostle.Dataset
+        Needs ``data.image_shape``; the first ``strip`` test images are offered.
+    index : int
+        Position of the starting image in the strip.
+    budget, samples, method, norm, steps, objective, seed
+        Attack settings, as in :class:`Explorer`.
+    strip : int
+        How many test images the strip shows.
+    """
+
+    index = t.Int(0, help="position in the strip of the chosen test image").tag(sync=True)
+
+    def __init__(self, ens: Any, data: Any, index: int = 0, budget: float = 0.1, samples: int | None = None,
+                 method: str = "pgd", norm: str = "inf", steps: int = 40, objective: str = "expected_loss",
+                 strip: int = 24, seed: int = 0, **kwargs: Any):
+        if not data.image_shape or len(data.image_shape) != 2:
+            raise ValueError(f"data must have a 2-d image_shape for ImageExplorer; got {data.image_shape!r}")
+        count = check_int("strip", strip, low=1)
+        self._images = data.x_test[: min(count, data.x_test.shape[0])].numpy().astype(np.float64)
+        self._shape = tuple(int(s) for s in data.image_shape)
+        lo, hi = (np.asarray(b, dtype=float) for b in data.bounds)
+        self._bounds = (lo.tolist(), hi.tolist())
+        self._value_range = [float(lo.min()), float(hi.max())]
+        self._classes = [str(c) for c in data.classes]
+        self._fixed = {"grid": 0, "boundaries": 0, "seed": live.check_field(ens, "seed", seed)}
+        self._setup_live(ens, {"steps": steps}, budget_max=round(0.5 * (self._value_range[1] - self._value_range[0]), 3))
+        truth = data.y_test[: self._images.shape[0]].tolist()
+        self._strip = ImageStrip(images=to_wire(self._images.reshape((-1,) + self._shape)),
+                                 captions=[f"test image {k}: class {self._classes[y]}" for k, y in enumerate(truth)],
+                                 value_range=self._value_range)
+        self._panels = ImagePanels(value_range=self._value_range)
+        predictive, self._draw_predictive = _charts.predictive_chart()
+        fade, self._draw_fade = _charts.fade_chart()
+        super().__init__(children=_layout(data, ens, self._strip, self._panels, predictive,
+                                          [self._controls, fade], self._status), **kwargs)
+        self.add_class("jostle-root")
+        for name in ("jostle-image-explorer", "jostle-tag-scope", "jostle-tid-image-explorer"):
+            self.add_class(name)
+        with self.hold_trait_notifications():
+            self.index, self.budget, self.method, self.norm = index, budget, method, norm
+            self.samples = len(ens) if samples is None else samples
+            self.steps, self.objective = steps, objective
+        self._strip.selected = self.index
+        self._strip.observe(self._from_strip, names=["selected"])
+        self._start_live()
+
+    @t.validate("index")
+    def _validate_index(self, proposal: Any) -> Any:
+        value = proposal.value
+        if isinstance(value, bool) or not isinstance(value, int) or not 0 <= value < self._images.shape[0]:
+            self._worker.notify(ValueError(f"index must be an integer in [0, {self._images.shape[0] - 1}]; "
+                                           f"got {value!r}"))
+            return self._accepted.get("index", 0)
+        self._accepted["index"] = value
+        return value
+
+    @t.observe("index")
+    def _on_index(self, change: Any) -> None:
+        self._syncing = True
+        try:
+            self._strip.selected = self.index
+        finally:
+            self._syncing = False
+        self._request()
+
+    def close(self) -> None:
+        for child in ("_strip", "_panels"):
+            if hasattr(self, child):
+                getattr(self, child).close()
+        super().close()
+
+    def _from_strip(self, change: Any) -> None:
+        if not self._syncing:
+            self.index = change.new
+            if self.index != change.new:
+                self._strip.selected = self.index
+
+    def _state(self) -> live.ExplorerState:
+        return live.ExplorerState(point=tuple(self._images[self.index].tolist()), budget=self.budget,
+                                  samples=self.samples, method=self.method, norm=self.norm, steps=self.steps,
+                                  objective=self.objective, **self._fixed)
+
+    def _apply(self, view: live.ViewData) -> None:
+        original = np.asarray(view.state.point).reshape(self._shape)
+        names = view.classes
+        first = f"original: {names[view.label]} ({view.before.probs[view.label]:.2f})"
+        with self._panels.hold_sync():
+            self._panels.original = to_wire(original)
+            if view.attack is None:
+                self._panels.perturbation = self._panels.attacked = empty_wire(None)
+                self._panels.captions = [first, "perturbation: attacks unavailable", "attacked: -"]
+            else:
+                attacked = view.attack.x_adv.reshape(self._shape)
+                delta = attacked - original
+                top = int(np.argmax(view.after.probs))
+                self._panels.perturbation, self._panels.attacked = to_wire(delta), to_wire(attacked)
+                self._panels.max_abs = float(np.abs(delta).max())
+                self._panels.scale = max(float(np.abs(delta).max()), view.state.budget, 1e-6)
+                verdict = "flipped" if view.attack.success else "held"
+                self._panels.captions = [first, f"perturbation (max |delta| {np.abs(delta).max():.3f})",
+                                         f"attacked: {names[top]} ({view.after.probs[top]:.2f}), {verdict}"]
+        self._draw_predictive(view)
+        self._draw_fade(view)
+
+
+def _layout(data: Any, ens: Any, strip: w.Widget, panels: w.Widget, predictive: w.Widget, attack: list,
+            status: w.Widget) -> list:
+    method = ens.meta.get("method", "posterior")
+    title = w.Label(f"{data.name}: {method}, S = {len(ens)} posterior samples")
+    title.add_class("jostle-column-title")
+    columns = []
+    for heading, children in (("1 - input", [panels]), ("2 - posterior predictive", [predictive]),
+                              ("3 - attack", attack)):
+        label = w.Label(heading)
+        label.add_class("jostle-column-title")
+        columns.append(w.VBox([label, *children], layout=w.Layout(flex="1 1 300px", min_width="260px",
+                                                                    padding="0 6px")))
+    row = w.HBox(columns, layout=w.Layout(flex_flow="row wrap", width="100%", align_items="flex-start"))
+    return [title, strip, row, status]
