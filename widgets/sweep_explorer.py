@@ -157,6 +157,8 @@ class SweepExplorer(ipw.HBox):
         return sorted({float(b) for b in rows["budget"].dropna()})
 
     def _open(self, key: str) -> None:
+        if self.opened is not None:
+            self.opened.close()  # stops its background computation
         self.opened = None
         if not key:
             self.detail_title.value = "Click a run to open it here."
@@ -169,7 +171,7 @@ class SweepExplorer(ipw.HBox):
             self.detail_title.value = f"{label}: its ensemble was not saved (run the sweep with save_ensembles=True)."
             self.detail.children = (self.detail_title,)
             return
-        explorer = _explorer_for(path, config)
+        explorer = _explorer_for(path, config, self._attack_settings(config))
         if isinstance(explorer, str):
             self.detail_title.value = f"{label}: {explorer}"
             self.detail.children = (self.detail_title,)
@@ -177,6 +179,17 @@ class SweepExplorer(ipw.HBox):
         self.opened = explorer
         self.detail_title.value = label
         self.detail.children = (self.detail_title, explorer)
+
+    def _attack_settings(self, config: dict) -> dict:
+        """The chart's attack and budget, to open the run's explorer where the chart points."""
+        for attack in config["evaluation"]["attacks"]:
+            if attack["label"] == self.attack:
+                settings = {"budget": self.budget, "norm": attack["norm"], "steps": attack["steps"],
+                            "objective": attack["objective"], "method": attack["method"]}
+                if attack["samples"] is not None:
+                    settings["samples"] = attack["samples"]
+                return settings
+        return {}
 
     def _ensemble_path(self, key: str) -> Path | None:
         if self._store_path is None:
@@ -204,8 +217,12 @@ def _read_source(source: Any):
     return Path(source), configs, frame
 
 
-def _explorer_for(path: Path, config: dict):
-    """An Explorer (ImageExplorer for image data) over the saved run, or a reason why not."""
+def _explorer_for(path: Path, config: dict, settings: dict):
+    """An Explorer (ImageExplorer for image data) over the saved run, or a reason why not.
+
+    It opens on the chart's attack and budget; settings it refuses (a budget beyond its
+    slider, say) fall back to its own defaults.
+    """
     import jostle
     import jostle.widgets as widgets
     from jostle.sweep_run import load_run_data
@@ -215,7 +232,13 @@ def _explorer_for(path: Path, config: dict):
     widget = getattr(widgets, name, None)
     if widget is None:
         return f"jostle.widgets.{name} is not available in this installation."
-    return widget(jostle.load(path), data)
+    ens = jostle.load(path)
+    if settings.get("samples", 0) > len(ens):
+        settings.pop("samples")
+    try:
+        return widget(ens, data, **settings)
+    except (ValueError, t.TraitError):
+        return widget(ens, data)
 
 
 def _correlation_row(c) -> list[str]:

@@ -145,3 +145,37 @@ def test_sweep_source_limits_to_its_runs(store):
     )
     w = SweepExplorer(subset)
     assert len(w.chart.point_keys) == 2
+
+
+def test_clicking_a_saved_run_opens_an_explorer_beside_the_chart(tmp_path):
+    from jostle.sweep_run import fit_run
+
+    explorer_class = pytest.importorskip("jostle.widgets").Explorer
+    small = jostle.Sweep(
+        datasets=[{"name": "moons", "n_test": 20}], methods=[{"name": "map", "epochs": 2}],
+        architectures=[{"depth": 1, "width": 4}], train_sizes=[20], seeds=[0, 1],
+        evaluation={"budgets": [0.2], "points": 5, "attacks": [{"method": "pgd", "steps": 3}]},
+    )
+    path = tmp_path / "runs.sqlite"
+    rng = np.random.default_rng(0)
+    with RunStore(path) as db:
+        for i, config in enumerate(small.runs()):
+            record = _fake_record(config, rng)
+            if i == 0:  # only the first run keeps its fitted ensemble
+                ens, _ = fit_run(config)
+                ens.save(str(tmp_path / "post.safetensors"))
+                record["ensemble_bytes"] = (tmp_path / "post.safetensors").read_bytes()
+            db.record(record)
+    w = SweepExplorer(path)
+    saved, unsaved = small.keys()
+    w.chart.selected_key = saved
+    try:
+        assert isinstance(w.opened, explorer_class)
+        assert w.detail.children == (w.detail_title, w.opened)
+        assert (w.opened.budget, w.opened.method, w.opened.steps) == (0.2, "pgd", 3)  # the chart's attack
+        first = w.opened
+        w.selected_key = unsaved
+        assert w.opened is None and "not saved" in w.detail_title.value
+        assert first.comm is None  # the replaced explorer was closed
+    finally:
+        w.selected_key = ""
