@@ -12,7 +12,7 @@ PYTEST_ARGS ?=
 .PHONY: demo test bench venv clean
 
 demo: $(VENV)/.stamp-demo
-	$(VENV)/bin/jupyter lab demo_notebooks/01_first_tour.ipynb
+	$(VENV)/bin/jostle demo
 
 test: $(VENV)/.stamp-test
 	$(PY) -m pytest $(PYTEST_ARGS)

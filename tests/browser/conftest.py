@@ -7,39 +7,11 @@ from pathlib import Path
 import pytest
 
 from .harness import (
-    CHROMIUM, CHROMIUM_ARGS, PageErrors, Server, block_outside_traffic, free_port, jupyter_environment,
-    lab_command, open_and_run, require_chromium, start_server, voila_command, wait_for, write_lab_settings,
-    write_notebook,
+    Server, chromium_browser, free_port, jupyter_environment, lab_command, page, require_chromium,
+    start_server, voila_command, write_lab_settings,
 )
 
-__all__ = ["open_and_run", "wait_for", "write_notebook"]
-
-
-@pytest.fixture(scope="session")
-def chromium_browser():
-    """Headless Debian Chromium (no browser download is possible here)."""
-    require_chromium()
-    from playwright.sync_api import sync_playwright
-
-    with sync_playwright() as playwright:
-        browser = playwright.chromium.launch(executable_path=str(CHROMIUM), args=CHROMIUM_ARGS, headless=True)
-        try:
-            yield browser
-        finally:
-            browser.close()
-
-
-@pytest.fixture
-def page(chromium_browser):
-    """A fresh browser context and page that fails the test on uncaught page errors."""
-    context = chromium_browser.new_context(viewport={"width": 1400, "height": 1000})
-    page = context.new_page()
-    block_outside_traffic(page)
-    errors = PageErrors(page)
-    page.jostle_errors = errors
-    yield page
-    context.close()
-    errors.check()
+__all__ = ["chromium_browser", "page"]
 
 
 @pytest.fixture(scope="session")

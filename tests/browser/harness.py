@@ -1,8 +1,8 @@
 """Real-browser test harness: JupyterLab, Voila and headless Chromium driven by Playwright.
 
 Servers listen on 127.0.0.1 only, on ports the OS reports free; each runs in its own
-process group so that stopping it also stops the kernels it started. Every wait is
-bounded and says what it waited for when it gives up.
+process group, is asked to stop with SIGTERM (which shuts its kernels down) and is then
+killed with its group. Every wait is bounded and says what it waited for when it gives up.
 """
 from __future__ import annotations
 
@@ -203,7 +203,9 @@ def stop_process_group(process: subprocess.Popen, timeout: float = 15.0) -> int 
         except subprocess.TimeoutExpired:
             pass
     if pgid is not None:
-        # Kernels started by the server are in its group; none may outlive the test.
+        # Whatever the server left in its group goes too. Kernels run in sessions of their
+        # own: the server shuts them down on SIGTERM, and an orphaned kernel exits by itself
+        # when its parent process is gone.
         _signal_group(pgid, signal.SIGKILL)
     try:
         return process.wait(5)
@@ -235,6 +237,34 @@ def voila_command(notebook: Path, port: int) -> list[str]:
         sys.executable, "-m", "voila", str(notebook), "--no-browser", f"--port={port}",
         "--Voila.ip=127.0.0.1", "--show_tracebacks=True",
     ]
+
+
+# ---------------------------------------------------------------------------- browser fixtures
+# Defined here rather than in conftest so that tests in other folders can import them.
+@pytest.fixture(scope="session")
+def chromium_browser():
+    """Headless Debian Chromium (no browser download is possible here)."""
+    require_chromium()
+    from playwright.sync_api import sync_playwright
+
+    with sync_playwright() as playwright:
+        browser = playwright.chromium.launch(executable_path=str(CHROMIUM), args=CHROMIUM_ARGS, headless=True)
+        try:
+            yield browser
+        finally:
+            browser.close()
+
+
+@pytest.fixture
+def page(chromium_browser):
+    """A fresh browser context and page that fails the test on uncaught page errors."""
+    context = chromium_browser.new_context(viewport={"width": 1400, "height": 1000})
+    page = context.new_page()
+    block_outside_traffic(page)
+    errors = PageErrors(page)
+    yield page
+    context.close()
+    errors.check()
 
 
 # ---------------------------------------------------------------------------- pages
