@@ -7,6 +7,8 @@ from .ensemble import DEFAULT_MEMORY_BUDGET, Ensemble
 from .models import build_architecture, init_parameters, mlp, register_architecture
 from .prediction import Prediction, entropy
 from .storage import FormatError, load
+from .attack_core import AttackResult
+from .attack_gradient import attack
 from .dropout import fit_dropout
 from .training import fit_deep_ensemble, fit_map
 from .sweep import Sweep, SweepSummary
@@ -15,6 +17,8 @@ from .sweep_config import SweepConfigError
 __version__ = "0.1.0"
 
 __all__ = [
+    "AttackResult",
+    "attack",
     "DEFAULT_MEMORY_BUDGET",
     "Dataset",
     "Ensemble",

@@ -1,0 +1,199 @@
+"""Gradient-free attacks: SPSA and Square. They only query the predictive, so a model
+that hides or breaks its gradients cannot fool them the way it fools PGD.
+
+SPSA (Spall 1992), used against gradient masking by Uesato et al. (2018), estimates the
+gradient from paired evaluations along random Rademacher directions and then takes the
+same projected steps as PGD. Square Attack (Andriushchenko et al. 2020) is a random
+search over the corners of the L-inf ball that accepts a proposal only when the margin
+falls.
+"""
+from __future__ import annotations
+
+from typing import Any, Callable
+
+import numpy as np
+import torch
+from torch import Tensor
+
+from ._checks import _show, check_float, check_int
+from .attack_core import AttackProblem, AttackResult
+from .attack_gradient import finish
+
+__all__ = ["spsa", "square", "spsa_gradient", "square_fraction"]
+
+
+def spsa_gradient(fn: Callable[[Tensor], Tensor], x: Tensor, delta: float, directions: int,
+                  generator: torch.Generator) -> Tensor:
+    """SPSA estimate of the gradient of ``fn`` [m, ...] -> [m] at each point of ``x``.
+
+    For Rademacher directions ``v`` (entries +-1), the estimate is the mean over
+    ``directions`` draws of ``(fn(x + delta v) - fn(x - delta v)) / (2 delta) * v``.
+    All ``2 * directions`` evaluations go through ``fn`` in one batch.
+
+    Parameters
+    ----------
+    fn : callable
+        Evaluates a batch of inputs [m, *input_shape] -> [m]. Batch item ``i`` belongs to
+        point ``i % n_points``.
+    x : Tensor of shape (n_points, *input_shape)
+    delta : float
+        Finite-difference radius.
+    directions : int
+        Number of random directions (each costs two evaluations per point).
+    generator : torch.Generator
+
+    Returns
+    -------
+    Tensor of shape (n_points, *input_shape)
+    """
+    signs = torch.randint(0, 2, (directions,) + tuple(x.shape), generator=generator)
+    v = (signs * 2 - 1).to(device=x.device, dtype=x.dtype)
+    batch = torch.cat([x + delta * v, x - delta * v]).flatten(0, 1)
+    values = fn(batch).view(2, directions, x.shape[0])
+    slope = (values[0] - values[1]) / (2 * delta)
+    return (slope.view(slope.shape + (1,) * (x.ndim - 1)) * v).mean(0)
+
+
+def spsa(problem: AttackProblem, steps: int = 40, step_size: Any = None, delta: float = 0.01,
+         directions: int = 32, random_start: bool = False, record_path: bool = True) -> AttackResult:
+    """Projected ascent on SPSA gradient estimates: PGD's steps with queries only.
+
+    Each step costs ``2 * directions`` queries per point, plus one to record the objective.
+    With ``resample=True`` each step's paired evaluations share one member draw.
+    """
+    delta = check_float("delta", delta, low=0.0, low_open=True)
+    directions = check_int("directions", directions, low=1)
+    if not isinstance(random_start, bool):
+        raise ValueError(f"random_start must be True or False; got {_show(random_start)}")
+    if step_size is None:
+        step_b = 2.5 * problem.eps_b / steps
+    else:
+        step_b = torch.full_like(problem.eps_b, check_float("step_size", step_size, low=0.0, low_open=True))
+    repeat_index = torch.arange(problem.points, device=problem.x.device).repeat(2 * directions)
+    x_t = problem.random_start() if random_start else problem.x.clone()
+    path, values = [x_t], []
+    with torch.no_grad():
+        for _ in range(steps):
+            values.append(problem.objective(x_t))
+            grad = spsa_gradient(lambda z: problem.objective(z, index=repeat_index), x_t, delta, directions,
+                                 problem.generator)
+            x_t = problem.project(x_t + step_b * problem.step_direction(grad))
+            if record_path:
+                path.append(x_t)
+        values.append(problem.objective(x_t))
+    queries = torch.full((problem.points,), steps * (2 * directions + 1) + 1, dtype=torch.long)
+    result = finish(problem, x_t, torch.stack(path) if record_path else None, torch.stack(values), queries, "spsa")
+    result.info.update(delta=delta, directions=directions)
+    return result
+
+
+def square(problem: AttackProblem, steps: int = 40, p_init: float = 0.05, image_shape: Any = None,
+           record_path: bool = True) -> AttackResult:
+    """Square Attack, L-inf (Andriushchenko et al. 2020): random search over ball corners.
+
+    Every coordinate of the perturbation sits at +-eps (before clipping to the bounds).
+    Each iteration re-draws the signs inside one window (an h x h square of an image), or
+    flips a random set of ``round(p * D)`` features of a plain vector, and keeps the proposal
+    only if the attacker's margin falls, so the margin never increases. A point stops
+    being queried once its margin is negative. One query per active point per iteration.
+    ``loss`` is the negative margin; ``margin`` holds the margin itself.
+    """
+    p_init = check_float("p_init", p_init, low=0.0, high=1.0, low_open=True)
+    shape = _image_shape(problem, image_shape)
+    with torch.no_grad():
+        delta = problem.eps_b * _initial_signs(problem, shape)
+        x_best = problem.project(problem.x + delta)
+        margin = problem.margin(x_best)
+        queries = torch.ones(problem.points, dtype=torch.long, device=problem.x.device)
+        path, margins = [x_best], [margin]
+        for i in range(steps):
+            active = (margin >= 0).nonzero().flatten()
+            if active.numel():
+                fraction = square_fraction(p_init, i, steps)
+                proposal = _propose(problem, delta[active], active, shape, fraction)
+                x_new = problem.project(problem.x[active] + proposal, problem.eps_b[active], problem.x[active])
+                new_margin = problem.margin(x_new, index=active)
+                better = new_margin < margin[active]
+                chosen = active[better]
+                delta[chosen] = proposal[better]
+                x_best = x_best.clone()
+                x_best[chosen] = x_new[better]
+                margin = margin.clone()
+                margin[chosen] = new_margin[better]
+                queries[active] += 1
+            margins.append(margin)
+            if record_path:
+                path.append(x_best)
+    margins_t = torch.stack(margins)
+    result = finish(problem, x_best, torch.stack(path) if record_path else None, -margins_t, queries.cpu(),
+                    "square")
+    result.margin = margins_t
+    result.info.update(p_init=p_init, image_shape=list(shape) if shape else None)
+    return result
+
+
+def square_fraction(p_init: float, iteration: int, steps: int) -> float:
+    """Share of features re-drawn at ``iteration``: ``p_init`` halved on the published
+    schedule (iterations 10, 50, 200, 500, 1000, 2000, 4000, 6000, 8000 of 10,000),
+    stretched to ``steps`` iterations."""
+    scaled = int(iteration / max(steps, 1) * 10_000)
+    halvings = sum(scaled > mark for mark in (10, 50, 200, 500, 1000, 2000, 4000, 6000, 8000))
+    return p_init / 2 ** halvings
+
+
+# ------------------------------------------------------------------ private helpers
+def _image_shape(problem: AttackProblem, image_shape: Any) -> tuple[int, ...] | None:
+    if image_shape is None:
+        image_shape = problem.ens.meta.get("image_shape")
+    if image_shape is None:
+        return None
+    try:
+        shape = tuple(int(s) for s in image_shape)
+    except (TypeError, ValueError):
+        raise ValueError(f"image_shape must be (H, W) or (C, H, W); got {_show(image_shape)}") from None
+    features = int(problem.x[0].numel())
+    if len(shape) not in (2, 3) or int(np.prod(shape)) != features:
+        raise ValueError(f"image_shape must be (H, W) or (C, H, W) multiplying to {features} features; "
+                         f"got {shape}")
+    return shape if len(shape) == 3 else (1,) + shape
+
+
+def _rademacher(shape: tuple[int, ...], problem: AttackProblem) -> Tensor:
+    signs = torch.randint(0, 2, shape, generator=problem.generator) * 2 - 1
+    return signs.to(device=problem.x.device, dtype=problem.x.dtype)
+
+
+def _initial_signs(problem: AttackProblem, shape: tuple[int, ...] | None) -> Tensor:
+    """Vertical stripes for images (one sign per channel and column), else one per feature."""
+    n = problem.points
+    if shape is None:
+        return _rademacher(tuple(problem.x.shape), problem)
+    channels, height, width = shape
+    stripes = _rademacher((n, channels, 1, width), problem).expand(n, channels, height, width)
+    return stripes.reshape(problem.x.shape)
+
+
+def _propose(problem: AttackProblem, delta: Tensor, active: Tensor, shape, fraction: float) -> Tensor:
+    """``delta`` with one window per point re-drawn at +-eps."""
+    n = int(active.numel())
+    eps_b = problem.eps_b[active]
+    if shape is None:
+        features = int(delta[0].numel())
+        count = max(1, min(features, int(round(fraction * features))))
+        order = torch.rand((n, features), generator=problem.generator).argsort(dim=1)[:, :count]
+        mask = torch.zeros((n, features), dtype=torch.bool).scatter_(1, order, True)
+        mask = mask.to(delta.device).view_as(delta)
+        # Flipping the chosen corners (rather than re-drawing them) guarantees that every
+        # query tries a new corner; for plain vectors a window has no spatial meaning.
+        return torch.where(mask, -delta, delta)
+    channels, height, width = shape
+    side = max(1, min(height - 1, int(round((fraction * height * width) ** 0.5))))
+    top = torch.randint(0, height - side + 1, (n, 1), generator=problem.generator)
+    left = torch.randint(0, width - side + 1, (n, 1), generator=problem.generator)
+    rows = (torch.arange(height) >= top) & (torch.arange(height) < top + side)
+    cols = (torch.arange(width) >= left) & (torch.arange(width) < left + side)
+    window = (rows[:, :, None] & cols[:, None, :]).unsqueeze(1).to(delta.device)
+    signs = _rademacher((n, channels, 1, 1), problem)
+    image = delta.reshape(n, channels, height, width)
+    scale = eps_b.reshape(n, 1, 1, 1)
+    return torch.where(window, scale * signs, image).reshape(delta.shape)
