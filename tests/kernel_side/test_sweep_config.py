@@ -157,3 +157,19 @@ def test_single_run_config():
         check_run({"data": {"name": "moons"}, "method": {"name": "map", "grid": {"epochs": [1, 2]}}})
     with pytest.raises(SweepConfigError, match=r"^run: unknown key 'seeds'"):
         check_run({"data": {"name": "moons"}, "method": "map", "seeds": [1]})
+
+
+EXAMPLES = sorted((__import__("pathlib").Path(__file__).parents[2] / "examples").glob("*_sweep.toml"))
+
+
+@pytest.mark.parametrize("path", EXAMPLES, ids=lambda p: p.name)
+def test_example_sweeps_parse(path):
+    sweep = jostle.Sweep.from_toml(path)
+    assert len(sweep.runs()) >= 2
+
+
+def test_example_fit_config_parses():
+    from jostle.sweep_config import read_toml
+
+    path = EXAMPLES[0].parent / "leak_alarm_fit.toml"
+    assert check_run(read_toml(path), need_evaluation=False)["method"]["name"] == "map"
