@@ -13,9 +13,13 @@ import inspect
 import itertools
 import json
 import math
-import tomllib
 from pathlib import Path
 from typing import Any
+
+try:
+    import tomllib
+except ImportError:  # Python 3.10: the same parser, published as tomli
+    import tomli as tomllib
 
 from . import datasets as _datasets
 from .models import ACTIVATIONS
