@@ -147,7 +147,7 @@ def grid_part(prediction: tuple, layer: str, boundaries: int) -> GridView:
 
 
 def attack_part(ens: Ensemble, state: Any, label: int) -> tuple[AttackView, PointView]:
-    attack, _ = _attack_api()
+    attack = _api("attack")
     x = torch.as_tensor(np.asarray(state.point, dtype=np.float64)[None], dtype=ens.dtype)
     adv = attack(ens, x, y=torch.tensor([label]), method=state.method, eps=state.budget, norm=state.norm,
                  steps=state.steps, samples=state.samples, objective=state.objective, seed=state.seed)
@@ -163,7 +163,7 @@ def attack_part(ens: Ensemble, state: Any, label: int) -> tuple[AttackView, Poin
 
 
 def fade_part(ens: Ensemble, point: Any, label: int, repeats: int, seed: int) -> FadeView:
-    _, expected_gradient = _attack_api()
+    expected_gradient = _api("expected_gradient")
     x = torch.as_tensor(np.asarray(point, dtype=np.float64)[None], dtype=ens.dtype)
     y = torch.tensor([label])
     size = len(ens)
@@ -181,15 +181,13 @@ def fade_part(ens: Ensemble, point: Any, label: int, repeats: int, seed: int) ->
                     norm_high=np.array([max(r) for r in rows]), reference=mean[0] / np.sqrt(counts_arr))
 
 
-def _attack_api() -> tuple[Any, Any]:
+def _api(name: str) -> Any:
     import jostle
 
-    attack = getattr(jostle, "attack", None)
-    expected_gradient = getattr(jostle, "expected_gradient", None)
-    if attack is None or expected_gradient is None:
-        raise AttacksUnavailable("attack panels are empty: jostle.attack / jostle.expected_gradient "
-                                 "are not available in this install")
-    return attack, expected_gradient
+    found = getattr(jostle, name, None)
+    if found is None:
+        raise AttacksUnavailable(f"jostle.{name} is not available in this install, so its panel is empty")
+    return found
 
 
 def _summary(pred: Prediction) -> PointView:

@@ -103,6 +103,9 @@ class ViewData:
         Seconds spent per recomputed part.
     notes : list of str
         Readable notes, e.g. why a part is missing.
+    errors : list of str
+        Why a part was refused (e.g. an attack that does not support the chosen norm); the
+        other parts are still computed.
     """
 
     state: ExplorerState
@@ -117,6 +120,7 @@ class ViewData:
     recomputed: tuple[str, ...] = ()
     timings: dict[str, float] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
+    errors: list[str] = field(default_factory=list)
 
     @property
     def elapsed(self) -> float:
@@ -182,6 +186,7 @@ def compute_view(ens: Ensemble, state: ExplorerState, bounds: Any = None, cache:
     recomputed: list[str] = []
     timings: dict[str, float] = {}
     notes: list[str] = []
+    errors: list[str] = []
     s = state
 
     def get(part, key, make):
@@ -200,6 +205,11 @@ def compute_view(ens: Ensemble, state: ExplorerState, bounds: Any = None, cache:
         attack, after = get("attack", (s.point, label, s.budget, s.samples, s.method, s.norm, s.steps,
                                        s.objective, s.seed),
                             lambda: attack_part(ens, s, label))
+    except AttacksUnavailable as missing:
+        notes.append(str(missing))
+    except ValueError as refused:  # settings the attack refuses (e.g. cw with norm inf): keep the rest
+        errors.append(str(refused))
+    try:
         fade = get("fade", (s.point, label, s.fade_repeats, s.seed),
                    lambda: fade_part(ens, s.point, label, s.fade_repeats, s.seed))
     except AttacksUnavailable as missing:
@@ -207,7 +217,7 @@ def compute_view(ens: Ensemble, state: ExplorerState, bounds: Any = None, cache:
     return ViewData(state=s, label=label, classes=_classes(ens, before), before=before, after=after,
                     attack=attack, grid=grid, fade=fade, spread=spread_part(before, after, label),
                     recomputed=tuple(recomputed), timings=timings,
-                    notes=notes)
+                    notes=notes, errors=errors)
 
 
 def check_field(ens: Ensemble, name: str, value: Any, n_features: int | None = None) -> Any:

@@ -145,6 +145,11 @@ class LiveBox(w.VBox):
         self._apply(view)
         self._result = view
         self._last_state = view.state
+        if view.errors:
+            self._error = "; ".join(view.errors)
+            self._error_generation = outcome.generation
+            self._show(outcome.generation, "error", self._error)
+            return
         parts = ", ".join(view.recomputed) if view.recomputed else "nothing new"
         text = f"updated in {outcome.elapsed * 1000:.0f} ms (computed: {parts})"
         self._show(outcome.generation, "idle", "; ".join([text] + view.notes))

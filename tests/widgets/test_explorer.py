@@ -171,3 +171,19 @@ def _figures(explorer):
             found.extend(node.axes)
         stack.extend(getattr(node, "children", ()))
     return found
+
+
+@has_attacks
+def test_settings_the_attack_refuses_show_in_the_status_while_other_panels_update(explorer, ens):
+    explorer.set_state({"method": "cw", "norm": "inf"})
+    assert explorer.wait(30)
+    state, text = explorer.status
+    assert state == "error" and "norm must be '2'" in text
+    explorer._map.set_state({"point": [-0.3, 0.6]})
+    assert explorer.wait(30)
+    np.testing.assert_allclose(explorer.result.before.probs,
+                               ens.predict(torch.tensor([[-0.3, 0.6]])).probs[0].numpy(), rtol=1e-6)
+    assert explorer.result.attack is None and explorer.status[0] == "error"
+    explorer.norm = "2"
+    assert explorer.wait(30)
+    assert explorer.status[0] == "idle" and explorer.result.attack is not None

@@ -11,7 +11,7 @@ import torch
 import jostle
 from jostle import live
 
-from .conftest import has_attacks, tiny_ensemble
+from .conftest import has_attacks, has_expected_gradient, tiny_ensemble
 
 BOUNDS = ([-2.0, -1.5], [2.5, 2.0])
 
@@ -139,7 +139,7 @@ def test_attack_panel_matches_jostle_attack(ens, state):
     assert view.attack.distance <= state.budget + 1e-6  # PGD stays in the eps-ball (Madry et al. 2018)
 
 
-@has_attacks
+@has_expected_gradient
 def test_fade_panel_matches_expected_gradient(ens, state):
     view = live.compute_view(ens, state, bounds=BOUNDS)
     fade = view.fade
