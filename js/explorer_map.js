@@ -4,7 +4,7 @@
 /** @typedef {{shape: number[], dtype: string, buffer: DataView}} WireArray */
 
 const TYPED = { float32: Float32Array, float64: Float64Array, int32: Int32Array, uint8: Uint8Array };
-const VIEW_KEYS = ["background", "layer_values", "layer_shown", "layer_max", "segments", "path", "ball_budget",
+const VIEW_KEYS = ["view_revision", "background", "layer_values", "layer_shown", "layer_max", "segments", "path", "ball_budget",
   "ball_norm", "ball_centre", "success", "train_points", "train_labels", "bounds", "point"];
 
 /** @param {WireArray} w */
@@ -85,7 +85,9 @@ function draw(model, canvas, root, state) {
   const ctx = canvas.getContext("2d");
   ctx.setTransform(dpr, 0, 0, dpr, 0, 0);
   ctx.clearRect(0, 0, width, height);
-  if (state.layerDirty) { state.layer = paintLayer(model, colours); state.layerDirty = false; }
+  if (state.layerDirty) {
+    state.layer = paintLayer(model, colours); state.layerDirty = false; state.layerRevision += 1;
+  }
   if (state.layer) { ctx.imageSmoothingEnabled = true; ctx.drawImage(state.layer, 0, 0, width, height); }
   const seg = typed(model.get("segments"));
   ctx.strokeStyle = colours.ink; ctx.globalAlpha = 0.4; ctx.lineWidth = 1; ctx.beginPath();
@@ -131,6 +133,9 @@ function draw(model, canvas, root, state) {
   root.dataset.layer = model.get("layer_shown");
   root.dataset.boundaries = String(model.get("members_drawn"));
   root.dataset.success = String(model.get("success"));
+  root.dataset.viewRevision = String(model.get("view_revision"));
+  root.dataset.layerRevision = String(state.layerRevision);
+  root.dataset.pathEnd = steps > 0 ? `${path[2 * steps - 2]},${path[2 * steps - 1]}` : "";
 }
 
 /** Legend and layer picker; every class name goes in as textContent. */
@@ -169,7 +174,7 @@ function render({ model, el }) {
   select.setAttribute("aria-label", "background layer");
   const legend = document.createElement("div"); legend.className = "jostle-legend"; legend.dataset.testid = "map-legend";
   bar.append(select, legend); root.append(canvas, bar); el.append(root);
-  const state = { revision: 0, layer: null, layerDirty: true, toData: null, localPoint: null, frame: 0, dragging: false };
+  const state = { revision: 0, layerRevision: 0, layer: null, layerDirty: true, toData: null, localPoint: null, frame: 0, dragging: false };
   const redraw = () => { if (!state.frame) state.frame = requestAnimationFrame(() => { state.frame = 0; draw(model, canvas, root, state); }); };
   const send = (p) => { state.localPoint = p; model.set("point", p); model.save_changes(); redraw(); };
   const clampPoint = (p) => { const [x0, x1, y0, y1] = model.get("bounds"); return [Math.min(x1, Math.max(x0, p[0])), Math.min(y1, Math.max(y0, p[1]))]; };
