@@ -11,6 +11,8 @@ from .attack_core import AttackResult
 from .attack_gradient import attack
 from .dropout import fit_dropout
 from .training import fit_deep_ensemble, fit_map
+from .bayes_by_backprop import VariationalPosterior, fit_vi
+from .variational import fit_mean_field
 from .sweep import Sweep, SweepSummary
 from .sweep_config import SweepConfigError
 
@@ -24,12 +26,15 @@ __all__ = [
     "Ensemble",
     "FormatError",
     "Prediction",
+    "VariationalPosterior",
     "build_architecture",
     "datasets",
     "entropy",
     "fit_deep_ensemble",
     "fit_dropout",
     "fit_map",
+    "fit_mean_field",
+    "fit_vi",
     "init_parameters",
     "load",
     "metrics",
