@@ -13,6 +13,7 @@ from .dropout import fit_dropout
 from .training import fit_deep_ensemble, fit_map
 from .bayes_by_backprop import VariationalPosterior, fit_vi
 from .variational import fit_mean_field
+from .laplace import LastLayerLaplace, fit_laplace
 from .sweep import Sweep, SweepSummary
 from .sweep_config import SweepConfigError
 
@@ -25,6 +26,7 @@ __all__ = [
     "Dataset",
     "Ensemble",
     "FormatError",
+    "LastLayerLaplace",
     "Prediction",
     "VariationalPosterior",
     "build_architecture",
@@ -32,6 +34,7 @@ __all__ = [
     "entropy",
     "fit_deep_ensemble",
     "fit_dropout",
+    "fit_laplace",
     "fit_map",
     "fit_mean_field",
     "fit_vi",
