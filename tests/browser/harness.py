@@ -303,14 +303,25 @@ def wait_for(scope, testid: str, timeout: float = WIDGET_TIMEOUT_S, state: str =
     return locator
 
 
-def wait_until(page, expression: str, arg: Any = None, timeout: float = WIDGET_TIMEOUT_S, what: str = ""):
-    """Wait until the JavaScript ``expression`` (a function of ``arg``) is truthy; return its value."""
+def wait_until(page, expression: str, arg: Any = None, timeout: float = WIDGET_TIMEOUT_S, what: str = "",
+               describe: str | None = None):
+    """Wait until the JavaScript ``expression`` (a function of ``arg``) is truthy; return its value.
+
+    On timeout the error names ``what`` and, when given, the value of the JavaScript
+    function ``describe(arg)`` at that moment (what the page showed instead).
+    """
     from playwright.sync_api import TimeoutError as PlaywrightTimeout
 
     try:
         return page.wait_for_function(expression, arg=arg, timeout=timeout * 1000, polling=50).json_value()
     except PlaywrightTimeout:
-        raise AssertionError(f"timed out after {timeout:.0f} s waiting for {what or expression}") from None
+        seen = ""
+        if describe:
+            try:
+                seen = f"; the page showed {page.evaluate(describe, arg)!r}"[:2000]
+            except Exception as err:  # the page may be gone; the timeout is the finding
+                seen = f"; (could not read the page: {err})"
+        raise AssertionError(f"timed out after {timeout:.0f} s waiting for {what or expression}{seen}") from None
 
 
 _NOTEBOOK_READY = """() => {
