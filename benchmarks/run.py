@@ -12,6 +12,7 @@ from pathlib import Path
 
 BENCHMARKS = [
     "bench_ensemble",
+    "bench_posteriors",
     "bench_sweep",
 ]
 
