@@ -14,6 +14,7 @@ BENCHMARKS = [
     "bench_ensemble",
     "bench_posteriors",
     "bench_sweep",
+    "bench_widgets",
 ]
 
 

@@ -77,10 +77,11 @@ class AttackView:
 
 @dataclass
 class FadeView:
-    """Norm of the expected gradient of the loss at the input against the samples used.
+    """L2 norm of the expected input gradient of the loss against the samples averaged.
 
-    counts : (n_counts,) int; norm_mean, norm_low, norm_high : (n_counts,) mean, min and max over
-    random member subsets; reference : (n_counts,) ``norm_mean[0] / sqrt(counts)``.
+    From :func:`jostle.gradient_fade`. counts : (n_counts,) int; norm_mean, norm_low, norm_high :
+    (n_counts,) mean, min and max over random member subsets; reference : (n_counts,)
+    ``norm_mean[0] * sqrt(counts[0] / counts)`` (the 1/sqrt(S) Monte Carlo rate).
     """
 
     counts: np.ndarray
@@ -163,22 +164,15 @@ def attack_part(ens: Ensemble, state: Any, label: int) -> tuple[AttackView, Poin
 
 
 def fade_part(ens: Ensemble, point: Any, label: int, repeats: int, seed: int) -> FadeView:
-    expected_gradient = _api("expected_gradient")
+    gradient_fade = _api("gradient_fade")
     x = torch.as_tensor(np.asarray(point, dtype=np.float64)[None], dtype=ens.dtype)
-    y = torch.tensor([label])
     size = len(ens)
     counts = sorted({2**k for k in range(int(math.log2(size)) + 1)} | {size})
-    generator = torch.Generator().manual_seed(seed)
-    rows = []
-    for k in counts:
-        subsets = [torch.arange(size)] if k == size else [torch.randperm(size, generator=generator)[:k]
-                                                          for _ in range(repeats)]
-        rows.append([float(torch.linalg.vector_norm(expected_gradient(ens, x, y, samples=idx)[0]))
-                     for idx in subsets])
-    mean = np.array([np.mean(r) for r in rows])
-    counts_arr = np.array(counts, dtype=np.int64)
-    return FadeView(counts=counts_arr, norm_mean=mean, norm_low=np.array([min(r) for r in rows]),
-                    norm_high=np.array([max(r) for r in rows]), reference=mean[0] / np.sqrt(counts_arr))
+    fade = gradient_fade(ens, x, torch.tensor([label]), sample_counts=counts, repeats=repeats, seed=seed)
+    norms = np.asarray(fade.norms["l2"], dtype=np.float64)[..., 0]  # (counts, repeats)
+    return FadeView(counts=np.asarray(fade.sample_counts, dtype=np.int64),
+                    norm_mean=np.asarray(fade.norm_mean["l2"], dtype=np.float64), norm_low=norms.min(axis=1),
+                    norm_high=norms.max(axis=1), reference=np.asarray(fade.reference["l2"], dtype=np.float64))
 
 
 def _api(name: str) -> Any:

@@ -72,7 +72,7 @@ class ExplorerState:
     layer: str = "predictive"
     grid: int = 64
     boundaries: int = 6
-    fade_repeats: int = 4
+    fade_repeats: int = 16
 
 
 @dataclass
