@@ -16,12 +16,18 @@ function typed(w) {
   return new T(b.buffer, b.byteOffset, b.byteLength / T.BYTES_PER_ELEMENT);
 }
 
-/** @param {string} hex @returns {number[]} */
-function rgb(hex) {
-  const h = (hex || "#888888").trim().replace("#", "");
-  const full = h.length === 3 ? h.split("").map((c) => c + c).join("") : h;
-  const n = parseInt(full.slice(0, 6), 16);
-  return Number.isNaN(n) ? [136, 136, 136] : [(n >> 16) & 255, (n >> 8) & 255, n & 255];
+/** Any CSS colour (hex, rgb(), names) as [r, g, b], resolved by the canvas itself. */
+const probe = document.createElement("canvas").getContext("2d");
+function rgb(colour) {
+  probe.fillStyle = "#888888";
+  probe.fillStyle = (colour || "").trim() || "#888888";
+  const value = String(probe.fillStyle);
+  if (value.startsWith("#")) {
+    const n = parseInt(value.slice(1, 7), 16);
+    return [(n >> 16) & 255, (n >> 8) & 255, n & 255];
+  }
+  const parts = value.match(/[\d.]+/g) || [];
+  return parts.length >= 3 ? parts.slice(0, 3).map(Number) : [136, 136, 136];
 }
 
 /** @param {HTMLElement} root */
@@ -57,7 +63,7 @@ function paintLayer(model, colours) {
           const p = probs[cell * nc + c], col = colours.classes[c % colours.classes.length];
           r += p * col[0]; g += p * col[1]; b += p * col[2]; best = Math.max(best, p);
         }
-        a = 0.12 + 0.6 * Math.max(0, (best - 1 / nc) / (1 - 1 / nc));
+        a = 0.1 + 0.45 * Math.max(0, (best - 1 / nc) / (1 - 1 / nc));
       } else {
         [r, g, b] = colours.uncertain;
         a = 0.85 * Math.min(1, Math.max(0, values[cell] / top));
@@ -70,6 +76,7 @@ function paintLayer(model, colours) {
 }
 
 function draw(model, canvas, root, state) {
+  if (!root.isConnected) return; // theme colours resolve only in the page; the resize observer calls again
   const [x0, x1, y0, y1] = model.get("bounds");
   const dpr = window.devicePixelRatio || 1;
   const width = Math.max(200, root.clientWidth || 360);
@@ -94,7 +101,7 @@ function draw(model, canvas, root, state) {
   for (let k = 0; k + 3 < seg.length; k += 4) { ctx.moveTo(px(seg[k]), py(seg[k + 1])); ctx.lineTo(px(seg[k + 2]), py(seg[k + 3])); }
   ctx.stroke(); ctx.globalAlpha = 1;
   const pts = typed(model.get("train_points")), labels = typed(model.get("train_labels"));
-  ctx.lineWidth = 0.8; ctx.strokeStyle = colours.surface;
+  ctx.lineWidth = 0.8; ctx.strokeStyle = colours.ink;
   for (let n = 0; 2 * n + 1 < pts.length; n++) {
     const col = colours.classes[(labels[n] || 0) % colours.classes.length];
     ctx.fillStyle = `rgb(${col[0]},${col[1]},${col[2]})`;
@@ -142,16 +149,16 @@ function draw(model, canvas, root, state) {
 function buildBar(model, bar, select) {
   const legend = bar.querySelector(".jostle-legend");
   legend.replaceChildren();
-  const css = getComputedStyle(bar);
+  // var() strings, not computed values: the view may not be in the page yet when this runs
   model.get("classes").forEach((name, c) => {
     const item = document.createElement("span"), dot = document.createElement("i");
-    dot.className = "jostle-swatch"; dot.style.background = css.getPropertyValue(`--jostle-class-${c % 10}`);
+    dot.className = "jostle-swatch"; dot.style.background = `var(--jostle-class-${c % 10})`;
     item.append(dot, document.createTextNode(String(name)));
     legend.append(item);
   });
   for (const [cls, text] of [["--jostle-attack", "attack path / eps-ball"], ["--jostle-ink", "member boundaries"]]) {
     const item = document.createElement("span"), line = document.createElement("i");
-    line.className = "jostle-swatch jostle-line"; line.style.background = css.getPropertyValue(cls);
+    line.className = "jostle-swatch jostle-line"; line.style.background = `var(${cls})`;
     item.append(line, document.createTextNode(text)); legend.append(item);
   }
   select.replaceChildren();

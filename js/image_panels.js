@@ -9,10 +9,18 @@ function floats(w) {
   return new Float32Array(b.buffer.slice(b.byteOffset, b.byteOffset + b.byteLength));
 }
 
-/** @param {string} hex */
-function rgb(hex) {
-  const n = parseInt((hex || "#888888").trim().replace("#", "").slice(0, 6), 16);
-  return Number.isNaN(n) ? [136, 136, 136] : [(n >> 16) & 255, (n >> 8) & 255, n & 255];
+/** Any CSS colour (hex, rgb(), names) as [r, g, b], resolved by the canvas itself. */
+const probe = document.createElement("canvas").getContext("2d");
+function rgb(colour) {
+  probe.fillStyle = "#888888";
+  probe.fillStyle = (colour || "").trim() || "#888888";
+  const value = String(probe.fillStyle);
+  if (value.startsWith("#")) {
+    const n = parseInt(value.slice(1, 7), 16);
+    return [(n >> 16) & 255, (n >> 8) & 255, n & 255];
+  }
+  const parts = value.match(/[\d.]+/g) || [];
+  return parts.length >= 3 ? parts.slice(0, 3).map(Number) : [136, 136, 136];
 }
 
 /** @param {HTMLCanvasElement} canvas @param {WireArray} w @param {(v: number) => number[]} colour */
@@ -44,6 +52,7 @@ function render({ model, el }) {
   el.append(root);
   let revision = 0;
   const draw = () => {
+    if (!root.isConnected) return; // theme colours resolve only in the page; the observer calls again
     const css = getComputedStyle(root);
     const light = rgb(css.getPropertyValue("--jostle-surface")), dark = rgb(css.getPropertyValue("--jostle-ink"));
     const low = rgb(css.getPropertyValue("--jostle-diverge-low")), high = rgb(css.getPropertyValue("--jostle-diverge-high"));
@@ -67,8 +76,10 @@ function render({ model, el }) {
   };
   const events = "change:original change:perturbation change:attacked change:value_range change:scale change:captions change:max_abs";
   model.on(events, draw);
+  const attached = new ResizeObserver(() => draw());
+  attached.observe(root);
   draw();
-  return () => model.off(events, draw);
+  return () => { attached.disconnect(); model.off(events, draw); };
 }
 
 export default { render };

@@ -10,10 +10,18 @@ function floats(w) {
   return new Float32Array(b.buffer.slice(b.byteOffset, b.byteOffset + b.byteLength));
 }
 
-/** @param {string} hex */
-function rgb(hex) {
-  const n = parseInt((hex || "#888888").trim().replace("#", "").slice(0, 6), 16);
-  return Number.isNaN(n) ? [136, 136, 136] : [(n >> 16) & 255, (n >> 8) & 255, n & 255];
+/** Any CSS colour (hex, rgb(), names) as [r, g, b], resolved by the canvas itself. */
+const probe = document.createElement("canvas").getContext("2d");
+function rgb(colour) {
+  probe.fillStyle = "#888888";
+  probe.fillStyle = (colour || "").trim() || "#888888";
+  const value = String(probe.fillStyle);
+  if (value.startsWith("#")) {
+    const n = parseInt(value.slice(1, 7), 16);
+    return [(n >> 16) & 255, (n >> 8) & 255, n & 255];
+  }
+  const parts = value.match(/[\d.]+/g) || [];
+  return parts.length >= 3 ? parts.slice(0, 3).map(Number) : [136, 136, 136];
 }
 
 /** Grey ramp from the theme's surface (low) to its ink (high). */
@@ -40,6 +48,7 @@ function render({ model, el }) {
   let items = [];
   const choose = (k) => { model.set("selected", k); model.save_changes(); };
   const build = () => {
+    if (!root.isConnected) return; // theme colours resolve only in the page; the observer calls again
     const w = model.get("images"), values = floats(w), captions = model.get("captions");
     root.replaceChildren(); items = [];
     if (!w || w.shape.length !== 3) return;
@@ -71,8 +80,13 @@ function render({ model, el }) {
   };
   model.on("change:images change:captions change:value_range", build);
   model.on("change:selected", mark);
+  let built = false;
+  const attached = new ResizeObserver(() => { if (!built && root.isConnected) { built = true; build(); } });
+  attached.observe(root);
   build();
+  built = root.isConnected;
   return () => {
+    attached.disconnect();
     model.off("change:images change:captions change:value_range", build);
     model.off("change:selected", mark);
   };

@@ -6,7 +6,7 @@ const PREFIX = "jostle-tid-";
 
 /** @param {Element} scope */
 function tag(scope) {
-  for (const node of scope.querySelectorAll(`[class*="${PREFIX}"]`)) {
+  for (const node of [scope, ...scope.querySelectorAll(`[class*="${PREFIX}"]`)]) {
     const cls = [...node.classList].find((c) => c.startsWith(PREFIX));
     if (cls && node.getAttribute("data-testid") !== cls.slice(PREFIX.length)) {
       node.setAttribute("data-testid", cls.slice(PREFIX.length));

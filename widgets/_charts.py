@@ -32,17 +32,14 @@ def predictive_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
     """Bars of the posterior predictive at the input and at the attacked input, 5-95% whiskers."""
     xs, ys = bq.LinearScale(min=-0.6, max=1.6), bq.LinearScale(min=0.0, max=1.0)
     scales = {"x": xs, "y": ys}
-    bars = [bq.Lines(x=[[0.0, 0.0]], y=[[0.0, 0.0]], scales=scales, stroke_width=_BAR_WIDTH, colors=[colour],
-                     labels=[name], display_legend=True) for name, colour in
-            (("input", INPUT_COLOUR), ("attacked", ATTACK_COLOUR))]
+    bars = [bq.Lines(x=[[0.0, 0.0]], y=[[0.0, 0.0]], scales=scales, stroke_width=_BAR_WIDTH, colors=[colour])
+            for colour in (INPUT_COLOUR, ATTACK_COLOUR)]
     whiskers = [bq.Lines(x=[[0.0, 0.0]], y=[[0.0, 0.0]], scales=scales, stroke_width=1.5, colors=[INK])
                 for _ in range(2)]
     x_axis = bq.Axis(scale=xs, tick_values=np.array([0, 1]), tick_labels={"0": "0", "1": "1"},
-                     grid_lines="none", label="class")
-    y_axis = bq.Axis(scale=ys, side="left", label="probability", tick_format=".1f")
-    figure = _figure("predictive-chart", "posterior predictive (bars: mean, whiskers: 5-95% of members)",
-                     bars + whiskers, [x_axis, y_axis])
-    figure.legend_location = "top-right"
+                     grid_lines="none", label="class (whiskers: 5-95% of members)")
+    y_axis = bq.Axis(scale=ys, side="left", label="probability", tick_format=".1f", num_ticks=5)
+    figure = _figure("predictive-chart", "input (left), attacked (right)", bars + whiskers, [x_axis, y_axis])
 
     def update(view: Any) -> None:
         classes = list(view.classes)
@@ -51,6 +48,7 @@ def predictive_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
             xs.min, xs.max = -0.6, len(classes) - 0.4
             x_axis.tick_values = positions
             x_axis.tick_labels = {str(int(c)): str(name) for c, name in zip(positions, classes)}
+        width = float(max(3, min(_BAR_WIDTH, 100 // max(1, len(classes)))))
         for k, point in enumerate((view.before, view.after)):
             at = positions + (2 * k - 1) * _OFFSET
             if point is None:
@@ -59,6 +57,7 @@ def predictive_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
             with bars[k].hold_sync():
                 bars[k].x, bars[k].y = np.stack([at, at], 1), np.stack([np.zeros_like(at), point.probs], 1)
                 bars[k].colors = [bars[k].colors[0]] * len(classes)
+                bars[k].stroke_width = width
                 bars[k].visible = True
             with whiskers[k].hold_sync():
                 whiskers[k].x, whiskers[k].y = np.stack([at, at], 1), np.stack([point.lower, point.upper], 1)
@@ -72,28 +71,27 @@ def spread_chart() -> tuple[bq.Figure, w.Label, Callable[[Any], None]]:
     """Histogram over members of the predicted class's probability, with the uncertainty split."""
     xs, ys = bq.LinearScale(min=0.0, max=1.0), bq.LinearScale(min=0.0)
     scales = {"x": xs, "y": ys}
-    bars = [bq.Bars(x=[0.5], y=[0.0], scales=scales, colors=[colour], opacities=[0.75], padding=0.05,
-                    labels=[name], display_legend=True, align="center")
-            for name, colour in (("input", INPUT_COLOUR), ("attacked", ATTACK_COLOUR))]
-    x_axis = bq.Axis(scale=xs, label="member probability of the predicted class", tick_format=".1f")
-    y_axis = bq.Axis(scale=ys, side="left", label="members", tick_format="d")
-    figure = _figure("spread-chart", "spread across posterior samples", bars, [x_axis, y_axis])
-    figure.legend_location = "top-left"
-    text = w.Label("")
+    bars = [bq.Lines(x=[0.0, 1.0], y=[0.0, 0.0], scales=scales, colors=[colour], fill="bottom",
+                     fill_colors=[colour], fill_opacities=[0.45], stroke_width=1.5, line_style=style)
+            for colour, style in ((INPUT_COLOUR, "solid"), (ATTACK_COLOUR, "dashed"))]
+    x_axis = bq.Axis(scale=xs, label="member probability of the predicted class", tick_format=".1f", num_ticks=5)
+    y_axis = bq.Axis(scale=ys, side="left", label="members", tick_format="d", num_ticks=4)
+    figure = _figure("spread-chart", "spread: input (grey) / attacked (dashed)", bars, [x_axis, y_axis])
+    lines = [w.Label(""), w.Label("")]
+    for line in lines:
+        line.add_class("jostle-wrap")
+    text = w.VBox(lines, layout=w.Layout(width="100%"))
     text.add_class("jostle-tid-uncertainty-text")
 
     def update(view: Any) -> None:
         spread = view.spread
-        centres = (spread.edges[:-1] + spread.edges[1:]) / 2
         for k, counts in enumerate((spread.before, spread.after)):
             with bars[k].hold_sync():
                 bars[k].visible = counts is not None
                 if counts is not None:
-                    bars[k].x, bars[k].y = centres, counts
-        parts = [_split("input", view.before)]
-        if view.after is not None:
-            parts.append(_split("attacked", view.after))
-        text.value = " | ".join(parts)
+                    bars[k].x, bars[k].y = np.repeat(spread.edges, 2)[1:-1], np.repeat(counts, 2)
+        lines[0].value = _split("input", view.before)
+        lines[1].value = "" if view.after is None else _split("attacked", view.after)
 
     return figure, text, update
 
@@ -101,15 +99,13 @@ def spread_chart() -> tuple[bq.Figure, w.Label, Callable[[Any], None]]:
 def path_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
     """Loss (left axis) and the attacked label's probability (right axis) along the attack path."""
     xs, loss_scale, prob_scale = bq.LinearScale(), bq.LinearScale(), bq.LinearScale(min=0.0, max=1.0)
-    loss = bq.Lines(x=[0.0], y=[0.0], scales={"x": xs, "y": loss_scale}, colors=[ATTACK_COLOUR], stroke_width=2,
-                    labels=["loss"], display_legend=True)
+    loss = bq.Lines(x=[0.0], y=[0.0], scales={"x": xs, "y": loss_scale}, colors=[ATTACK_COLOUR], stroke_width=2)
     prob = bq.Lines(x=[0.0], y=[0.0], scales={"x": xs, "y": prob_scale}, colors=[INK], line_style="dashed",
-                    stroke_width=1.5, labels=["p(label)"], display_legend=True)
-    axes = [bq.Axis(scale=xs, label="attack step", tick_format="d"),
-            bq.Axis(scale=loss_scale, side="left", label="loss", tick_format=".2f"),
-            bq.Axis(scale=prob_scale, side="right", label="p(label)", tick_format=".1f")]
+                    stroke_width=1.5)
+    axes = [bq.Axis(scale=xs, label="attack step", tick_format="d", num_ticks=5),
+            bq.Axis(scale=loss_scale, side="left", label="loss (solid)", num_ticks=4),
+            bq.Axis(scale=prob_scale, side="right", label="p(label) (dashed)", tick_format=".1f", num_ticks=5)]
     figure = _figure("path-chart", "along the attack path", [loss, prob], axes)
-    figure.legend_location = "top-right"
 
     def update(view: Any) -> None:
         attack = view.attack
@@ -126,6 +122,10 @@ def path_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
     return figure, update
 
 
+FADE_CAPTION = ("solid: norm of the mean input gradient over S random members (band: min to max); "
+                "dashed: 1/sqrt(S) from S = 1; dotted: the attacker's S")
+
+
 def fade_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
     """Expected-gradient norm against the number of samples (log-log), 1/sqrt(S) reference."""
     xs, ys = bq.LogScale(), bq.LogScale()
@@ -133,15 +133,13 @@ def fade_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
     band = bq.Lines(x=[1.0], y=[[1.0], [1.0]], scales=scales, fill="between", colors=[MUTED, MUTED],
                     fill_colors=[MUTED], fill_opacities=[0.2], stroke_width=0.5)
     mean = bq.Lines(x=[1.0], y=[1.0], scales=scales, colors=[ATTACK_COLOUR], stroke_width=2, marker="circle",
-                    labels=["|mean gradient|"], display_legend=True)
-    reference = bq.Lines(x=[1.0], y=[1.0], scales=scales, colors=[INK], line_style="dashed", stroke_width=1,
-                         labels=["1/sqrt(S)"], display_legend=True)
-    current = bq.Lines(x=[1.0, 1.0], y=[1.0, 1.0], scales=scales, colors=[INK], stroke_width=1, line_style="dotted",
-                       labels=["attacker S"], display_legend=True)
-    axes = [bq.Axis(scale=xs, label="posterior samples S"),
-            bq.Axis(scale=ys, side="left", label="gradient norm", tick_format=".1e")]
-    figure = _figure("fade-chart", "expected gradient against samples", [band, mean, reference, current], axes)
-    figure.legend_location = "bottom-left"
+                    marker_size=16)
+    reference = bq.Lines(x=[1.0], y=[1.0], scales=scales, colors=[INK], line_style="dashed", stroke_width=1)
+    current = bq.Lines(x=[1.0, 1.0], y=[1.0, 1.0], scales=scales, colors=[INK], stroke_width=1, line_style="dotted")
+    x_axis = bq.Axis(scale=xs, label="posterior samples S", tick_format="d", tick_values=np.array([1, 10]))
+    y_axis = bq.Axis(scale=ys, side="left", label="gradient norm", tick_format=".0e", num_ticks=3)
+    figure = _figure("fade-chart", "expected gradient against samples", [band, mean, reference, current],
+                     [x_axis, y_axis])
 
     def update(view: Any) -> None:
         fade = view.fade
@@ -160,6 +158,7 @@ def fade_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
         with current.hold_sync():
             s = float(view.state.samples)
             current.x, current.y = np.array([s, s]), np.array([positive.min(), positive.max()])
+        x_axis.tick_values = counts[np.unique(np.round(np.linspace(0, len(counts) - 1, min(4, len(counts)))).astype(int))]
 
     return figure, update
 
@@ -167,3 +166,11 @@ def fade_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
 def _split(name: str, point: Any) -> str:
     return (f"{name}: total {point.total:.3f}, aleatoric {point.aleatoric:.3f}, "
             f"epistemic {point.epistemic:.3f} nats")
+
+
+def caption(text: str) -> w.Label:
+    """A wrapping plain-text note under a chart."""
+    label = w.Label(text, layout=w.Layout(width="100%"))
+    label.add_class("jostle-wrap")
+    label.add_class("jostle-caption")
+    return label

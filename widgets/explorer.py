@@ -72,7 +72,8 @@ class Explorer(LiveBox):
         fade, self._draw_fade = _charts.fade_chart()
         start = data.x_test[0].tolist() if point is None else point
         super().__init__(children=_layout(data, ens, self._map, [predictive, spread, spread_text],
-                                          [self._controls, path, fade], self._status), **kwargs)
+                                          [self._controls, path, fade, _charts.caption(_charts.FADE_CAPTION)],
+                                          self._status), **kwargs)
         self.add_class("jostle-root")
         for name in ("jostle-explorer", "jostle-tag-scope", "jostle-tid-explorer"):
             self.add_class(name)

@@ -58,7 +58,7 @@ class ImageExplorer(LiveBox):
         predictive, self._draw_predictive = _charts.predictive_chart()
         fade, self._draw_fade = _charts.fade_chart()
         super().__init__(children=_layout(data, ens, self._strip, self._panels, predictive,
-                                          [self._controls, fade], self._status), **kwargs)
+                                          [self._controls, fade, _charts.caption(_charts.FADE_CAPTION)], self._status), **kwargs)
         self.add_class("jostle-root")
         for name in ("jostle-image-explorer", "jostle-tag-scope", "jostle-tid-image-explorer"):
             self.add_class(name)
