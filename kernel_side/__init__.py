@@ -9,6 +9,9 @@ from .prediction import Prediction, entropy
 from .storage import FormatError, load
 from .attack_core import AttackResult
 from .attack_gradient import attack
+from .masking import MaskingReport, masking_check
+from .robustness import (GradientFade, MinimalBudget, expected_gradient, gradient_fade, minimal_budget,
+                         softmax_robustness)
 from .dropout import fit_dropout
 from .training import fit_deep_ensemble, fit_map
 from .bayes_by_backprop import VariationalPosterior, fit_vi
@@ -22,6 +25,14 @@ __version__ = "0.1.0"
 __all__ = [
     "AttackResult",
     "attack",
+    "expected_gradient",
+    "gradient_fade",
+    "GradientFade",
+    "masking_check",
+    "MaskingReport",
+    "minimal_budget",
+    "MinimalBudget",
+    "softmax_robustness",
     "DEFAULT_MEMORY_BUDGET",
     "Dataset",
     "Ensemble",

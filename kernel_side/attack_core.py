@@ -23,6 +23,7 @@ target label: it pulls the target's probability up.
 """
 from __future__ import annotations
 
+import copy
 import math
 from dataclasses import dataclass, field
 from typing import Any
@@ -146,6 +147,13 @@ class AttackProblem:
     def points(self) -> int:
         return int(self.x.shape[0])
 
+    def with_eps(self, eps: Tensor) -> "AttackProblem":
+        """The same problem (sharing its generator) with per-point budgets ``eps`` [n]."""
+        clone = copy.copy(self)
+        clone.eps = eps
+        clone.eps_b = eps.view((-1,) + tuple(self.eps_b.shape[1:]))
+        return clone
+
     # -------------------------------------------------------------- attacker's objective
     def members(self) -> Any:
         """The attacker's member selection for one evaluation (fresh when resampling)."""
@@ -247,7 +255,7 @@ def norm_of(delta: Tensor, norm: str) -> Tensor:
 
 def build_problem(ens, x: Any, y: Any, *, eps: Any, norm: str, objective: str, samples: Any,
                   resample: bool, target: Any, bounds: Any, seed: int, judge: str = "ensemble",
-                  per_point_eps: bool = False) -> AttackProblem:
+                  per_point_eps: bool = False, use_bounds: bool = True) -> AttackProblem:
     """Validate an attack call and gather what every attack needs."""
     from .ensemble import Ensemble
 
@@ -263,7 +271,7 @@ def build_problem(ens, x: Any, y: Any, *, eps: Any, norm: str, objective: str, s
     n = int(x.shape[0])
     eps_t = _as_eps(eps, n, x, per_point_eps)
     samples = _check_samples(ens, samples, resample)
-    box = _resolve_bounds(ens, bounds, x)
+    box = _resolve_bounds(ens, bounds, x) if use_bounds else None
     if box is not None:
         # Points within rounding slack of the box are moved onto it, so that clipping an
         # iterate never moves it farther from x than the budget allows.

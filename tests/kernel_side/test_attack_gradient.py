@@ -22,7 +22,7 @@ def affine_ensemble(members: int = 1, bounds=None) -> jostle.Ensemble:
         layer.weight.copy_(torch.stack([W, torch.zeros(3)]))
         layer.bias.copy_(torch.tensor([B, 0.0]))
     meta = {} if bounds is None else {"bounds": bounds}
-    return jostle.Ensemble.from_modules([layer] * members, meta=meta)
+    return jostle.Ensemble.from_modules([nn.Sequential(layer)] * members, meta=meta)
 
 
 def class0_points() -> torch.Tensor:
