@@ -65,7 +65,7 @@ _UPDATED_JS = """([before, fields, scope]) => {
   return now;
 }"""
 
-_DESCRIBE_JS = """([before, fields, scope]) => {
+DESCRIBE_JS = """([before, fields, scope]) => {
   const now = window.__jostleSnapshot(scope, fields.includes('pixels'));
   return {viewRevision: now.viewRevision, status: now.status, statusText: now.statusText,
           unchanged: fields.filter(f => now[f] === before[f])};
@@ -91,7 +91,7 @@ def wait_for_update(page, before: dict, fields: list[str], what: str, scope: str
                     timeout: float = WIDGET_TIMEOUT_S) -> dict[str, Any]:
     """Wait for a newer kernel view in which each of ``fields`` differs from ``before``."""
     return wait_until(page, _UPDATED_JS, arg=[before, fields, scope], timeout=timeout, what=what,
-                      describe=_DESCRIBE_JS)
+                      describe=DESCRIBE_JS)
 
 
 def click_map(page, fx: float, fy: float, scope: str | None = None) -> None:

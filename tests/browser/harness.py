@@ -304,16 +304,17 @@ def wait_for(scope, testid: str, timeout: float = WIDGET_TIMEOUT_S, state: str =
 
 
 def wait_until(page, expression: str, arg: Any = None, timeout: float = WIDGET_TIMEOUT_S, what: str = "",
-               describe: str | None = None):
+               describe: str | None = None, polling: int | str = 50):
     """Wait until the JavaScript ``expression`` (a function of ``arg``) is truthy; return its value.
 
     On timeout the error names ``what`` and, when given, the value of the JavaScript
-    function ``describe(arg)`` at that moment (what the page showed instead).
+    function ``describe(arg)`` at that moment (what the page showed instead). ``polling``
+    is milliseconds or ``"raf"`` (every animation frame).
     """
     from playwright.sync_api import TimeoutError as PlaywrightTimeout
 
     try:
-        return page.wait_for_function(expression, arg=arg, timeout=timeout * 1000, polling=50).json_value()
+        return page.wait_for_function(expression, arg=arg, timeout=timeout * 1000, polling=polling).json_value()
     except PlaywrightTimeout:
         seen = ""
         if describe:

@@ -13,7 +13,7 @@ import pytest
 from .explorer_page import click_map, set_range, snapshot, wait_for_explorer, wait_for_update
 from .harness import PageErrors, block_outside_traffic, open_and_run, open_voila, screenshot, write_notebook
 
-pytestmark = pytest.mark.browser
+pytestmark = [pytest.mark.browser, pytest.mark.slow]
 
 MARKUP_NAME = '<img src=x onerror="window.__jostleInjected=1">'
 MOONS = dict(n_train=100, n_test=40, noise=0.2, seed=0)

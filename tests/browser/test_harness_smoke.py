@@ -9,7 +9,7 @@ import pytest
 
 from .harness import open_and_run, open_voila, screenshot, wait_for, wait_until, write_notebook
 
-pytestmark = pytest.mark.browser
+pytestmark = [pytest.mark.browser, pytest.mark.slow]
 
 # The view never changes `count` itself: it sends a message, the kernel adds one and the
 # new value syncs back. So the number shown proves the kernel received the click.

@@ -9,7 +9,7 @@ import pytest
 
 from .harness import PageErrors, block_outside_traffic, open_and_run, screenshot, wait_for, wait_until, write_notebook
 
-pytestmark = pytest.mark.browser
+pytestmark = [pytest.mark.browser, pytest.mark.slow]
 
 IMAGES = ".jostle-image-explorer"
 COMPARISON = ".jostle-comparison"
