@@ -34,6 +34,8 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     run.add_argument("config", help="TOML file with a [sweep] table")
     run.add_argument("--store", required=True, help="SQLite file for the results (created if missing)")
     run.add_argument("--scheduler", metavar="ADDR", help="Dask scheduler address, e.g. tcp://host:8786 (default: run here)")
+    run.add_argument("--connect-timeout", type=float, default=10.0, metavar="SECONDS",
+                     help="how long to wait for the scheduler (default 10)")
     run.add_argument("--save-ensembles", action="store_true", help="save each fitted posterior beside the store")
     run.add_argument("--skip-failed", action="store_true", help="do not retry runs stored as failed")
     run.add_argument("--quiet", action="store_true", help="no progress bar")
@@ -83,7 +85,7 @@ def _sweep_run(args: argparse.Namespace) -> int:
         sweep = Sweep.from_toml(args.config)
     except SweepConfigError as err:
         raise CommandError(str(err)) from None
-    client = _connect(args.scheduler) if args.scheduler else None
+    client = _connect(args.scheduler, args.connect_timeout) if args.scheduler else None
     try:
         summary = sweep.run(store=args.store, client=client, save_ensembles=args.save_ensembles,
                             retry_failed=not args.skip_failed, progress_bar=not args.quiet)
@@ -151,13 +153,13 @@ def _read_results(path: str):
         raise CommandError(str(err)) from None
 
 
-def _connect(address: str):
+def _connect(address: str, timeout: float):
     try:
         from distributed import Client
     except ImportError:
         raise CommandError("--scheduler needs dask.distributed; pip install 'jostle[cluster]'") from None
     try:
-        return Client(address, timeout=10)
+        return Client(address, timeout=timeout)
     except (OSError, TimeoutError, ValueError) as err:
         raise CommandError(f"cannot reach the scheduler at {address}: {err}".splitlines()[0]) from None
 

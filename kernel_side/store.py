@@ -31,7 +31,7 @@ CREATE TABLE IF NOT EXISTS runs (
     config TEXT NOT NULL,
     accuracy REAL, nll REAL, ece REAL, members INTEGER,
     metrics TEXT,
-    error TEXT, traceback TEXT,
+    error TEXT, traceback TEXT, warnings TEXT,
     fit_seconds REAL, eval_seconds REAL, started REAL, finished REAL, recorded REAL NOT NULL,
     worker TEXT, versions TEXT NOT NULL,
     ensemble_path TEXT,
@@ -48,7 +48,7 @@ CREATE TABLE IF NOT EXISTS attack_results (
 _CONFIG_COLUMNS = ["dataset", "n_train", "depth", "width", "activation", "method", "method_settings",
                    "family", "seed"]
 _RUN_COLUMNS = ["key", "sweep", "status", "accuracy", "nll", "ece", "members", "fit_seconds",
-                "eval_seconds", "worker", "ensemble_path", "attempts", "error"]
+                "eval_seconds", "worker", "ensemble_path", "attempts", "error", "warnings"]
 
 
 class StoreError(RuntimeError):
@@ -85,8 +85,11 @@ class RunStore:
             if not readonly:
                 self._db.execute("PRAGMA journal_mode = WAL")
                 self._db.execute("PRAGMA synchronous = FULL")
-                self._db.executescript(_SCHEMA)
-                self._db.execute("INSERT OR IGNORE INTO store_info VALUES ('schema_version', ?)", (str(SCHEMA_VERSION),))
+                with _Transaction(self._db):  # readers see all of the schema or none of it
+                    for statement in filter(str.strip, _SCHEMA.split(";")):
+                        self._db.execute(statement)
+                    self._db.execute("INSERT OR IGNORE INTO store_info VALUES ('schema_version', ?)",
+                                     (str(SCHEMA_VERSION),))
             version = self._db.execute("SELECT value FROM store_info WHERE name = 'schema_version'").fetchone()
         except sqlite3.DatabaseError as err:
             raise StoreError(f"{path} is not a jostle run store: {err}") from None
@@ -111,6 +114,7 @@ class RunStore:
             "ece": metrics and metrics["ece"], "members": metrics and metrics.get("members"),
             "metrics": None if metrics is None else json.dumps(metrics),
             "error": result.get("error"), "traceback": result.get("traceback"),
+            "warnings": json.dumps(result.get("warnings") or []),
             "fit_seconds": result.get("fit_seconds"), "eval_seconds": result.get("eval_seconds"),
             "started": result.get("started"), "finished": result.get("finished"), "recorded": time.time(),
             "worker": result.get("worker"), "versions": json.dumps(result.get("versions") or {}),
@@ -149,7 +153,7 @@ class RunStore:
             row = dict(zip(names, values))
             if wanted is not None and row["key"] not in wanted:
                 continue
-            for field in ("config", "metrics", "versions"):
+            for field in ("config", "metrics", "versions", "warnings"):
                 row[field] = None if row[field] is None else json.loads(row[field])
             out.append(row)
         return out

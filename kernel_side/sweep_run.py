@@ -17,6 +17,7 @@ import socket
 import tempfile
 import time
 import traceback
+import warnings
 from pathlib import Path
 from typing import Any
 
@@ -47,7 +48,8 @@ def execute_run(config: dict, save_ensemble: bool = False) -> dict:
     dict
         ``key``, ``config``, ``status`` (``"ok"`` or ``"failed"``), ``metrics``, ``error``,
         ``traceback``, ``fit_seconds``, ``eval_seconds``, ``started``, ``finished``,
-        ``worker``, ``versions`` and ``ensemble_bytes`` (or None).
+        ``worker``, ``versions``, ``warnings`` (the run's warnings as text, e.g. an HMC
+        convergence warning; they are recorded, not shown) and ``ensemble_bytes`` (or None).
     """
     record: dict[str, Any] = {
         "key": run_key(config), "config": config, "status": "failed", "metrics": None,
@@ -57,22 +59,19 @@ def execute_run(config: dict, save_ensemble: bool = False) -> dict:
     }
     threads = torch.get_num_threads()
     torch.set_num_threads(1)
+    caught: list = []
     try:
-        tick = time.perf_counter()
-        ens, data = fit_run(config)
-        record["fit_seconds"] = time.perf_counter() - tick
-        tick = time.perf_counter()
-        record["metrics"] = evaluate(ens, data, config["evaluation"], seed=config["seed"])
-        record["eval_seconds"] = time.perf_counter() - tick
-        if save_ensemble:
-            record["ensemble_bytes"] = _ensemble_bytes(ens, config)
-        record["status"] = "ok"
+        with warnings.catch_warnings(record=True) as caught:
+            # Kept with the run (a convergence warning is a result), not printed on a worker.
+            warnings.simplefilter("always")
+            _fit_and_score(config, save_ensemble, record)
     except Exception as err:  # a failing run is data, not a crash of the sweep
         record["error"] = f"{type(err).__name__}: {err}".splitlines()[0][:500]
         record["traceback"] = traceback.format_exc()
     finally:
         torch.set_num_threads(threads)
         record["finished"] = time.time()
+        record["warnings"] = sorted({f"{w.category.__name__}: {w.message}" for w in caught or []})
     return record
 
 
@@ -171,3 +170,15 @@ def _ensemble_bytes(ens, config: dict) -> bytes:
         path = Path(folder) / "posterior.safetensors"
         ens.save(str(path))
         return path.read_bytes()
+
+
+def _fit_and_score(config: dict, save_ensemble: bool, record: dict) -> None:
+    tick = time.perf_counter()
+    ens, data = fit_run(config)
+    record["fit_seconds"] = time.perf_counter() - tick
+    tick = time.perf_counter()
+    record["metrics"] = evaluate(ens, data, config["evaluation"], seed=config["seed"])
+    record["eval_seconds"] = time.perf_counter() - tick
+    if save_ensemble:
+        record["ensemble_bytes"] = _ensemble_bytes(ens, config)
+    record["status"] = "ok"

@@ -12,7 +12,7 @@ from pathlib import Path
 import pytest
 
 import jostle
-from jostle.store import RunStore
+from jostle.store import RunStore, StoreError
 
 needs_attacks = pytest.mark.skipif(
     not all(hasattr(jostle, n) for n in ("attack", "softmax_robustness")),
@@ -47,11 +47,11 @@ depth = 1
 width = 8
 [[sweep.methods]]
 name = "map"
-epochs = {epochs}
-[[sweep.methods]]
-name = "map"
 epochs = 2
 lr = -1.0
+[[sweep.methods]]
+name = "map"
+epochs = {epochs}
 [sweep.evaluation]
 budgets = [0.1, 0.2]
 points = 10
@@ -161,18 +161,19 @@ def test_bad_arguments_fail_in_one_line(tmp_path, capsys, monkeypatch):
 
 
 @needs_attacks
-def test_sweep_run_and_show(tmp_path):
+def test_sweep_run_and_show(tmp_path, capsys, monkeypatch):
     (tmp_path / "sweep.toml").write_text(SWEEP.format(epochs=2))
     result = jostle_cli("sweep", "run", "sweep.toml", "--store", "runs.sqlite", "--save-ensembles", "--quiet",
                         cwd=tmp_path)
     assert result.returncode == 3, result.stderr  # some runs failed: lr = -1 is refused on purpose
     assert "cli: 4 runs, 0 already stored, 2 finished, 2 failed -> runs.sqlite" in result.stdout
-    again = jostle_cli("sweep", "run", "sweep.toml", "--store", "runs.sqlite", "--skip-failed", "--quiet", cwd=tmp_path)
+    again = in_process(["sweep", "run", "sweep.toml", "--store", "runs.sqlite", "--skip-failed", "--quiet"],
+                       capsys, tmp_path, monkeypatch)
     assert again.returncode == 0 and "4 already stored, 0 finished, 0 failed" in again.stdout
     shown = jostle_cli("sweep", "show", "runs.sqlite", cwd=tmp_path)
     assert shown.returncode == 0, shown.stderr
     assert "robustness[pgd-inf@0.2]" in shown.stdout and "2 finished run(s), 2 failed" in shown.stdout
-    failed = jostle_cli("sweep", "show", "runs.sqlite", "--failed", cwd=tmp_path)
+    failed = in_process(["sweep", "show", "runs.sqlite", "--failed"], capsys, tmp_path, monkeypatch)
     assert "lr" in failed.stdout and "2 failed run(s)" in failed.stdout
     assert len(list((tmp_path / "runs.ensembles").glob("*.safetensors"))) == 2
 
@@ -180,8 +181,8 @@ def test_sweep_run_and_show(tmp_path):
 @needs_attacks
 def test_unreachable_scheduler(tmp_path, capsys, monkeypatch):
     (tmp_path / "sweep.toml").write_text(SWEEP.format(epochs=2))
-    result = in_process(["sweep", "run", "sweep.toml", "--store", "runs.sqlite", "--scheduler", "tcp://127.0.0.1:9"],
-                        capsys, tmp_path, monkeypatch)
+    result = in_process(["sweep", "run", "sweep.toml", "--store", "runs.sqlite", "--scheduler", "tcp://127.0.0.1:9",
+                         "--connect-timeout", "1"], capsys, tmp_path, monkeypatch)
     assert result.returncode == 1
     assert one_line_error(result).startswith("jostle sweep run: cannot reach the scheduler at tcp://127.0.0.1:9")
 
@@ -194,11 +195,14 @@ def test_sigint_then_rerun_executes_only_the_missing_runs(tmp_path):
     process = subprocess.Popen(command, cwd=tmp_path, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     deadline = time.time() + 120
     stored = 0
-    while time.time() < deadline and stored < 5:  # the 4 failing runs are quick, then a slow one
+    while time.time() < deadline and stored < 5:  # the 4 failing runs come first and are quick
         time.sleep(0.2)
         if (tmp_path / "runs.sqlite").exists():
-            with RunStore(tmp_path / "runs.sqlite", readonly=True) as db:
-                stored = len(db.statuses())
+            try:
+                with RunStore(tmp_path / "runs.sqlite", readonly=True) as db:
+                    stored = len(db.statuses())
+            except StoreError:  # the writer has created the file but not yet its tables
+                pass
     process.send_signal(signal.SIGINT)
     _, err = process.communicate(timeout=60)
     assert process.returncode == 130 and err.strip().endswith("jostle sweep run: interrupted")
