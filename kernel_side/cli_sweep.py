@@ -98,24 +98,53 @@ def _sweep_run(args: argparse.Namespace) -> int:
 
 
 def _sweep_show(args: argparse.Namespace) -> int:
-    import pandas as pd
-
     frame = _read_results(args.store)
     if args.failed:
-        failed = frame[frame["status"] == "failed"]
+        failed = frame[frame["status"] == "failed"].drop_duplicates("key")
         for _, row in failed.iterrows():
             print(f"{row['key'][:12]}  {row['method']:<14} seed {row['seed']}: {row['error']}")
         print(f"{len(failed)} failed run(s)")
         return 0
-    ok = frame[frame["status"] == "ok"].drop(
-        columns=["sweep", "status", "fit_seconds", "eval_seconds", "worker", "attempts", "error", "family",
-                 "members"], errors="ignore")
-    ok = ok.assign(key=ok["key"].str[:12], saved=ok["ensemble_path"].notna()).drop(columns=["ensemble_path"])
-    with pd.option_context("display.width", 200, "display.max_columns", None, "display.max_rows", None):
-        print(ok.to_string(index=False, float_format=lambda v: f"{v:.3f}") if len(ok) else "(no finished runs)")
-    failed = int((frame["status"] == "failed").sum())
-    print(f"{len(ok)} finished run(s), {failed} failed" + (" (see --failed)" if failed else ""))
+    runs = frame[frame["status"] == "ok"]
+    failed = int(frame.loc[frame["status"] == "failed", "key"].nunique())
+    if len(runs):
+        print(_readable_table(runs))
+    else:
+        print("(no finished runs)")
+    print(f"{runs['key'].nunique()} finished run(s), {failed} failed" + (" (see --failed)" if failed else ""))
     return 0
+
+
+def _readable_table(runs) -> str:
+    """One line per run and attack; a cell per budget holds 'success rate / softmax robustness'.
+
+    Columns that are the same for every run move to a line above the table.
+    """
+    import pandas as pd
+
+    runs = runs.assign(settings=runs["method_settings"].map(_settings_text), key=runs["key"].str[:12],
+                       saved=runs["ensemble_path"].notna().map({True: "yes", False: "no"}),
+                       cell=[f"{s:.2f} / {r:.3f}" for s, r in zip(runs["success_rate"], runs["robustness"])])
+    table = runs.pivot_table(index=_SHOW_RUN_COLUMNS + ["attack"], columns="budget", values="cell",
+                             aggfunc="first", sort=False)
+    table.columns = [f"eps={b:g}" for b in table.columns]
+    table = table.reset_index()
+    shared = [c for c in _SHOW_SHARED if table[c].nunique() == 1]
+    header = ", ".join(f"{c} {table[c].iloc[0]}" for c in shared)
+    table = table.drop(columns=shared)
+    with pd.option_context("display.width", 250, "display.max_columns", None, "display.max_rows", None,
+                           "display.max_colwidth", 40):
+        text = table.to_string(index=False, float_format=lambda v: f"{v:.3f}")
+    return (f"all runs: {header}\n" if header else "") + "cells: attack success rate / softmax robustness\n" + text
+
+
+_SHOW_SHARED = ["dataset", "n_train", "depth", "width", "activation"]
+_SHOW_RUN_COLUMNS = ["key"] + _SHOW_SHARED + ["method", "settings", "seed", "accuracy", "nll", "ece", "saved"]
+
+
+def _settings_text(settings: str) -> str:
+    values = json.loads(settings) if settings else {}
+    return " ".join(f"{k}={v}" for k, v in sorted(values.items())) or "-"
 
 
 def _inspect(args: argparse.Namespace) -> int:
@@ -148,7 +177,7 @@ def _read_results(path: str):
 
     try:
         with RunStore(path, readonly=True) as db:
-            return db.results(wide=True, include_failed=True)
+            return db.results(include_failed=True)
     except (FileNotFoundError, StoreError) as err:
         raise CommandError(str(err)) from None
 

@@ -146,9 +146,9 @@ class Sweep:
                     else:
                         summary.failed += 1
                         summary.failed_keys.append(record["key"])
-                    bar.update(1)
                     bar.set_postfix(finished=summary.finished, failed=summary.failed,
                                     remaining=summary.remaining, refresh=False)
+                    bar.update(1)
                     if progress is not None:
                         progress(record, summary)
 

@@ -129,7 +129,7 @@ def evaluate(ens, data, evaluation: dict, seed: int = 0) -> dict:
             rows.append({
                 "attack": attack["label"], "method": attack["method"], "norm": attack["norm"],
                 "steps": attack["steps"], "samples": samples, "budget": budget,
-                "success_rate": float(torch.as_tensor(adv.success).float().mean()),
+                "success_rate": float(torch.as_tensor(adv.success).double().mean()),
                 "robustness": float(jostle.softmax_robustness(ens, x, adv.x_adv)),
             })
     scores["attacks"] = rows

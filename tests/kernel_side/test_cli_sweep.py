@@ -172,7 +172,12 @@ def test_sweep_run_and_show(tmp_path, capsys, monkeypatch):
     assert again.returncode == 0 and "4 already stored, 0 finished, 0 failed" in again.stdout
     shown = jostle_cli("sweep", "show", "runs.sqlite", cwd=tmp_path)
     assert shown.returncode == 0, shown.stderr
-    assert "robustness[pgd-inf@0.2]" in shown.stdout and "2 finished run(s), 2 failed" in shown.stdout
+    assert "cells: attack success rate / softmax robustness" in shown.stdout
+    assert "all runs: dataset moons, n_train 40, depth 1, width 8, activation tanh" in shown.stdout
+    lines = [line.split() for line in shown.stdout.splitlines()]
+    header = next(line for line in lines if line[:2] == ["key", "method"])
+    assert header[-2:] == ["eps=0.1", "eps=0.2"]
+    assert sum(1 for line in lines if "pgd-inf" in line) == 2 and "2 finished run(s), 2 failed" in shown.stdout
     failed = in_process(["sweep", "show", "runs.sqlite", "--failed"], capsys, tmp_path, monkeypatch)
     assert "lr" in failed.stdout and "2 failed run(s)" in failed.stdout
     assert len(list((tmp_path / "runs.ensembles").glob("*.safetensors"))) == 2
