@@ -47,7 +47,7 @@ def timed_sweep(spec: dict, folder: Path, client=None) -> tuple[float, list[floa
     return wall, inside
 
 
-def main(epoch_settings: tuple[int, ...] = (5, 60)) -> None:
+def main(epoch_settings: tuple[int, ...] = (5, 150)) -> None:
     from distributed import Client, LocalCluster
 
     started = time.perf_counter()
@@ -81,4 +81,4 @@ def main(epoch_settings: tuple[int, ...] = (5, 60)) -> None:
 
 
 if __name__ == "__main__":
-    main(tuple(int(a) for a in sys.argv[1:]) or (5, 60))
+    main(tuple(int(a) for a in sys.argv[1:]) or (5, 150))

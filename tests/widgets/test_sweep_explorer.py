@@ -179,3 +179,27 @@ def test_clicking_a_saved_run_opens_an_explorer_beside_the_chart(tmp_path):
         assert first.comm is None  # the replaced explorer was closed
     finally:
         w.selected_key = ""
+
+
+def test_chart_module_is_self_contained_and_sets_text_only():
+    import re
+    from pathlib import Path
+
+    from jostle.widgets._assets import asset_path
+
+    source = asset_path("sweep_chart.js").read_text(encoding="utf-8")
+    assert re.search(r"^export default \{ render \};$", source, re.M)
+    assert not re.search(r"^\s*import\s", source, re.M)  # no CDN or relative imports, no build step
+    # run descriptions and method names are user strings: no HTML-parsing sinks (common practice, OWASP DOM XSS)
+    for sink in ("innerHTML", "outerHTML", "insertAdjacentHTML", "document.write", "eval(", "new Function"):
+        assert sink not in source
+    assert len(source.splitlines()) <= 250
+    ids = set(re.findall(r'"(sweep-[a-z-]+)"', source))
+    ids |= set(re.findall(r'jostle-tid-(sweep-[a-z-]+)"', (Path(__file__).parents[2] / "widgets" / "sweep_explorer.py").read_text()))
+    assert {"sweep-chart", "sweep-point", "sweep-tooltip", "sweep-method-filter", "sweep-explorer"} <= ids
+    listed = set(re.findall(r"`([a-z][a-z0-9-]+)`", (Path(__file__).parents[2] / "widgets" / "TESTIDS.md").read_text()))
+    assert ids <= listed, sorted(ids - listed)
+    css = asset_path("sweep_chart.css").read_text()
+    rules = re.sub(r"/\*.*?\*/", "", css, flags=re.S)
+    for selector in re.findall(r"(?:^|\})\s*([^{}]+)\{", rules):
+        assert all(part.strip().startswith(".jostle-") for part in selector.split(",")), selector
