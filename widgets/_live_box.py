@@ -6,6 +6,7 @@ is ever inside ``hold_sync`` on two threads at once.
 """
 from __future__ import annotations
 
+import threading
 from typing import Any
 
 import ipywidgets as w
@@ -40,6 +41,9 @@ class LiveBox(w.VBox):
         self._syncing = False
         self._ready = False
         self._accepted: dict[str, Any] = {}
+        # Held by the worker while it writes view traits and by the main thread while it
+        # mirrors a control into a view widget, so no widget's pending-sync set is shared.
+        self._view_lock = threading.RLock()
         self._controls = AttackControls(budget_max=budget_max, samples_max=len(ens), methods=list(live.METHODS),
                                         objectives=list(live.OBJECTIVES),
                                         steps_max=max(200, int(settings.get("steps", 40))))
@@ -120,10 +124,11 @@ class LiveBox(w.VBox):
         if accepted != change.new:
             setattr(change.owner, change.name, accepted)
 
-    def _mirror(self, target: Any, name: str) -> None:
+    def _mirror(self, target: Any, name: str, value: Any = None) -> None:
         self._syncing = True
         try:
-            setattr(target, name, getattr(self, name))
+            with self._view_lock:
+                setattr(target, name, getattr(self, name) if value is None else value)
         finally:
             self._syncing = False
 
@@ -142,7 +147,8 @@ class LiveBox(w.VBox):
             self._show(outcome.generation, "error", self._error)
             return
         view = outcome.result
-        self._apply(view)
+        with self._view_lock:
+            self._apply(view)
         self._result = view
         self._last_state = view.state
         if view.errors:

@@ -82,11 +82,7 @@ class ImageExplorer(LiveBox):
 
     @t.observe("index")
     def _on_index(self, change: Any) -> None:
-        self._syncing = True
-        try:
-            self._strip.selected = self.index
-        finally:
-            self._syncing = False
+        self._mirror(self._strip, "selected", self.index)
         self._request()
 
     def close(self) -> None:

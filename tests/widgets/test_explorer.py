@@ -97,6 +97,22 @@ def test_a_storm_of_budget_changes_runs_a_few_computations_and_ends_on_the_last(
     assert explorer.budget == pytest.approx(0.2)
     assert explorer.result.state.budget == pytest.approx(0.2)
     assert explorer._map.ball_budget == pytest.approx(0.2)
+    assert explorer.worker.delivery_failures == []
+
+
+def test_a_drag_from_code_and_page_while_views_apply_ends_on_the_last_point(explorer):
+    # The main thread mirrors points into the map while the worker writes view traits on it.
+    for k in range(60):
+        point = [-1.0 + 0.03 * k, 0.5]
+        if k % 2:
+            explorer._map.set_state({"point": point})
+        else:
+            explorer.point = point
+    assert explorer.wait(30)
+    assert explorer.result.state.point == pytest.approx((-1.0 + 0.03 * 59, 0.5))
+    assert explorer._map.point == pytest.approx([-1.0 + 0.03 * 59, 0.5])
+    assert explorer._map.ball_centre == pytest.approx([-1.0 + 0.03 * 59, 0.5])
+    assert explorer.worker.delivery_failures == [] and explorer.status[0] == "idle"
 
 
 def test_a_budget_change_does_not_resend_the_background(explorer):
