@@ -11,6 +11,7 @@ import time
 from pathlib import Path
 
 BENCHMARKS = [
+    "bench_attacks",
     "bench_ensemble",
     "bench_posteriors",
     "bench_sweep",

@@ -23,10 +23,11 @@ target label: it pulls the target's probability up.
 """
 from __future__ import annotations
 
+import contextlib
 import copy
 import math
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, Iterator
 
 import numpy as np
 import torch
@@ -34,11 +35,15 @@ from torch import Tensor
 
 from ._checks import _show, as_label_tensor, check_choice, check_float, check_int
 
-__all__ = ["AttackResult", "OBJECTIVES", "NORMS", "AttackProblem", "build_problem"]
+__all__ = ["AttackResult", "OBJECTIVES", "NORMS", "AttackProblem", "build_problem", "compute_threads"]
 
 OBJECTIVES = ("expected_loss", "predictive", "margin")
 NORMS = ("inf", "2")
 JUDGES = ("ensemble", "attacker")
+
+# Floats one evaluation may touch before "auto" keeps torch's own thread count: covers a
+# live single point and the 100-point, 100-member attack of benchmarks/bench_attacks.py.
+_SMALL_WORK = 2**22
 
 # Points may sit this far outside the bounds (float rounding of stored bounds).
 _BOUNDS_SLACK = 1e-6
@@ -66,6 +71,8 @@ class AttackResult:
         The judged posterior predictive at ``x`` and at ``x_adv``.
     distance : Tensor of shape (n_points,)
         ``|x_adv - x|`` in the attack's norm.
+    eps : Tensor of shape (n_points,)
+        The budget of each point.
     queries : Tensor of shape (n_points,), int64
         Model evaluations spent on each point (forward passes of the attacker's samples;
         a gradient evaluation counts as one).
@@ -245,6 +252,32 @@ class AttackProblem:
         predicted = probs.argmax(-1)
         success = predicted == self.target if self.target is not None else predicted != self.label
         return success, probs
+
+
+@contextlib.contextmanager
+def compute_threads(threads: Any, ens, points: int) -> Iterator[None]:
+    """Run the enclosed attack with ``threads`` torch threads, then restore the setting.
+
+    ``"auto"`` uses one thread when one evaluation is small (members x points x
+    activations per pair under ``_SMALL_WORK`` floats). An attack is a long chain of small
+    kernels; on a shared 2-core machine each parallel kernel waits at a thread barrier
+    whenever the other core is busy, and one thread measured up to 25x faster
+    (benchmarks/bench_attacks.py). ``None`` leaves torch's setting alone.
+    """
+    if threads == "auto":
+        work = len(ens) * points * ens._plan.floats_per_pair
+        threads = 1 if work <= _SMALL_WORK else None
+    elif threads is not None:
+        threads = check_int("threads", threads, low=1)
+    before = torch.get_num_threads()
+    if threads is None or threads == before:
+        yield
+        return
+    torch.set_num_threads(threads)
+    try:
+        yield
+    finally:
+        torch.set_num_threads(before)
 
 
 def norm_of(delta: Tensor, norm: str) -> Tensor:

@@ -14,7 +14,7 @@ import torch
 from torch import Tensor
 
 from ._checks import _show, check_float, check_int
-from .attack_core import AttackProblem, AttackResult, build_problem, norm_of
+from .attack_core import AttackProblem, AttackResult, build_problem, compute_threads, norm_of
 
 __all__ = ["attack", "METHODS"]
 
@@ -24,7 +24,7 @@ METHODS = ("fgsm", "pgd", "cw", "spsa", "square")
 def attack(ens, x: Any, y: Any = None, method: str = "pgd", eps: Any = 0.1, norm: str = "inf",
            steps: int = 40, samples: Any = None, objective: str = "expected_loss", seed: int = 0, *,
            target: Any = None, bounds: Any = None, resample: bool = False, judge: str = "ensemble",
-           **options: Any) -> AttackResult:
+           threads: Any = "auto", **options: Any) -> AttackResult:
     """Attack the posterior predictive of ``ens`` at inputs ``x``.
 
     Parameters
@@ -56,6 +56,10 @@ def attack(ens, x: Any, y: Any = None, method: str = "pgd", eps: Any = 0.1, norm
         The input box; defaults to ``ens.meta["bounds"]``, else unbounded.
     judge : {"ensemble", "attacker"}
         Judge success on the whole ensemble (default) or on the attacker's samples.
+    threads : "auto", int or None
+        Torch threads while the attack runs (restored afterwards): ``"auto"`` uses one for
+        small evaluations, where thread barriers cost more than they save; None leaves
+        torch's setting.
     **options
         Method options. ``pgd``: ``step_size`` (default ``2.5 * eps / steps``),
         ``random_start`` (True), ``restarts`` (1), ``record_path`` (True).
@@ -102,7 +106,8 @@ def attack(ens, x: Any, y: Any = None, method: str = "pgd", eps: Any = 0.1, norm
     problem = build_problem(ens, x, y, eps=eps, norm=norm, objective=objective, samples=samples,
                             resample=resample, target=target, bounds=bounds, seed=seed, judge=judge,
                             per_point_eps=method in ("pgd", "fgsm"))
-    result = runner(problem, steps, **options)
+    with compute_threads(threads, ens, problem.points):
+        result = runner(problem, steps, **options)
     result.method = method
     return result
 

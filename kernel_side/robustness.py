@@ -16,7 +16,7 @@ from torch import Tensor
 from torch.func import functional_call, grad, vmap
 
 from ._checks import _show, check_choice, check_int
-from .attack_core import build_problem, norm_of
+from .attack_core import build_problem, compute_threads, norm_of
 from .attack_gradient import pgd
 
 __all__ = ["expected_gradient", "member_gradients", "gradient_fade", "GradientFade", "minimal_budget",
@@ -49,7 +49,8 @@ def expected_gradient(ens, x: Any, y: Any = None, samples: Any = None, objective
     """
     problem = build_problem(ens, x, y, eps=0.0, norm="inf", objective=objective, samples=samples,
                             resample=False, target=None, bounds=None, seed=0, use_bounds=False)
-    return problem.objective_and_grad(problem.x)[1]
+    with compute_threads("auto", ens, problem.points):
+        return problem.objective_and_grad(problem.x)[1]
 
 
 def member_gradients(ens, x: Any, y: Any = None) -> Tensor:
@@ -71,8 +72,9 @@ def member_gradients(ens, x: Any, y: Any = None) -> Tensor:
     # Points are independent, so the sum over a chunk yields each point's own gradient.
     pair_bytes = 3 * ens._plan.floats_per_pair * problem.x.element_size() * len(ens)
     chunk = max(1, ens.memory_budget // max(1, pair_bytes))
-    pieces = [per_member(ens.params, problem.x[i:i + chunk], problem.label[i:i + chunk])
-              for i in range(0, problem.points, chunk)]
+    with compute_threads("auto", ens, problem.points):
+        pieces = [per_member(ens.params, problem.x[i:i + chunk], problem.label[i:i + chunk])
+                  for i in range(0, problem.points, chunk)]
     return torch.cat(pieces, dim=1)
 
 
@@ -212,7 +214,7 @@ class MinimalBudget:
 
 def minimal_budget(ens, x: Any, y: Any = None, norm: str = "inf", samples: Any = None, steps: int = 40,
                    iterations: int = 16, high: float | None = None, random_start: bool = False,
-                   bounds: Any = None, target: Any = None, seed: int = 0) -> MinimalBudget:
+                   bounds: Any = None, target: Any = None, seed: int = 0, threads: Any = "auto") -> MinimalBudget:
     """Smallest budget that flips each point's predicted label (bisection, vectorised).
 
     Every point keeps its own bracket ``[lower, upper]``; each of ``iterations`` rounds runs
@@ -232,26 +234,8 @@ def minimal_budget(ens, x: Any, y: Any = None, norm: str = "inf", samples: Any =
     steps = check_int("steps", steps, low=1)
     problem = build_problem(ens, x, y, eps=0.0, norm=norm, objective="expected_loss", samples=samples,
                             resample=False, target=target, bounds=bounds, seed=seed)
-    upper = _initial_upper(problem, high)
-    lower = torch.zeros_like(upper)
-    state = {"x_adv": problem.x.clone(), "probs": problem.clean_probs.clone()}
-    already, _ = problem.judge(problem.x)
-    upper = torch.where(already, torch.zeros_like(upper), upper)
-    ok = _attack_at(problem, upper, steps, random_start, state, ~already) | already
-    if high is None and problem.bounds is None:
-        for _ in range(20):
-            if bool(ok.all()):
-                break
-            upper = torch.where(ok, upper, upper * 2)
-            ok = ok | _attack_at(problem, upper, steps, random_start, state, ~ok)
-    for _ in range(iterations):
-        middle = (lower + upper) / 2
-        flipped = _attack_at(problem, middle, steps, random_start, state, ok & ~already)
-        upper = torch.where(flipped, middle, upper)
-        lower = torch.where(ok & ~already & ~flipped, middle, lower)
-    eps = torch.where(ok, upper, torch.full_like(upper, math.inf))
-    return MinimalBudget(eps=eps, lower=lower, x_adv=state["x_adv"], adv_probs=state["probs"], success=ok,
-                         label=problem.label, norm=problem.norm, info={"steps": steps, "iterations": iterations})
+    with compute_threads(threads, ens, problem.points):
+        return _bisect(problem, high, steps, iterations, random_start)
 
 
 def softmax_robustness(ens, x: Any, x_adv: Any, kind: str = "max", samples: Any = None,
@@ -314,6 +298,30 @@ def _pack_fade(counts, rows, full: Tensor, repeats: int, members: int) -> Gradie
         error_mean=np.asarray(rows["error"]), full_norm={k: v.numpy() for k, v in _three_norms(full).items()},
         repeats=repeats, members=members,
     )
+
+
+def _bisect(problem, high, steps: int, iterations: int, random_start: bool) -> MinimalBudget:
+    """Per-point bisection of the flipping budget; brackets start at ``[0, upper]``."""
+    upper = _initial_upper(problem, high)
+    lower = torch.zeros_like(upper)
+    state = {"x_adv": problem.x.clone(), "probs": problem.clean_probs.clone()}
+    already, _ = problem.judge(problem.x)
+    upper = torch.where(already, torch.zeros_like(upper), upper)
+    ok = _attack_at(problem, upper, steps, random_start, state, ~already) | already
+    if high is None and problem.bounds is None:
+        for _ in range(20):
+            if bool(ok.all()):
+                break
+            upper = torch.where(ok, upper, upper * 2)
+            ok = ok | _attack_at(problem, upper, steps, random_start, state, ~ok)
+    for _ in range(iterations):
+        middle = (lower + upper) / 2
+        flipped = _attack_at(problem, middle, steps, random_start, state, ok & ~already)
+        upper = torch.where(flipped, middle, upper)
+        lower = torch.where(ok & ~already & ~flipped, middle, lower)
+    eps = torch.where(ok, upper, torch.full_like(upper, math.inf))
+    return MinimalBudget(eps=eps, lower=lower, x_adv=state["x_adv"], adv_probs=state["probs"], success=ok,
+                         label=problem.label, norm=problem.norm, info={"steps": steps, "iterations": iterations})
 
 
 def _initial_upper(problem, high: float | None) -> Tensor:

@@ -29,6 +29,7 @@ def x():
     ({"resample": True, "samples": [0]}, r"resample=True needs samples to be an int k"),
     ({"judge": "crowd"}, r"judge must be one of 'ensemble', 'attacker'; got 'crowd'"),
     ({"seed": -1}, r"seed must be an integer >= 0; got -1"),
+    ({"threads": 0}, r"threads must be an integer >= 1; got 0"),
     ({"method": "cw"}, r"method 'cw' is an L2 attack: norm must be '2'; got 'inf'"),
     ({"method": "square", "norm": "2"}, r"method 'square' supports norm 'inf' only; use method 'spsa'"),
     ({"kappa": 1.0}, r"method 'pgd' takes options \[.*\]; got unknown \['kappa'\]"),

@@ -127,3 +127,13 @@ def test_targeted_attack_reaches_the_target():
     adv = jostle.attack(ens, x, eps=3.0, steps=60, target=target)
     assert torch.equal(adv.success, adv.adv_label == target)
     assert adv.success_rate > 0.5
+
+
+@pytest.mark.parametrize("threads", ["auto", 1, None])
+def test_thread_setting_is_restored(threads):
+    ens, x = affine_ensemble(), class0_points()
+    before = torch.get_num_threads()
+    plain = jostle.attack(ens, x, eps=0.2, threads=None)
+    limited = jostle.attack(ens, x, eps=0.2, threads=threads)
+    assert torch.get_num_threads() == before
+    assert torch.equal(plain.path, limited.path)
