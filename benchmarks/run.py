@@ -13,9 +13,11 @@ from pathlib import Path
 BENCHMARKS = [
     "bench_attacks",
     "bench_ensemble",
+    "bench_hmc",
     "bench_posteriors",
     "bench_sweep",
     "bench_widgets",
+    "bench_browser",
 ]
 
 
