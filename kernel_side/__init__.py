@@ -7,6 +7,7 @@ from .ensemble import DEFAULT_MEMORY_BUDGET, Ensemble
 from .models import build_architecture, init_parameters, mlp, register_architecture
 from .prediction import Prediction, entropy
 from .storage import FormatError, load
+from .demo_data import DEMO_POSTERIORS, demo_posterior
 from .attack_core import AttackResult
 from .attack_gradient import attack
 from .masking import MaskingReport, masking_check
@@ -23,6 +24,8 @@ from .sweep_config import SweepConfigError
 __version__ = "0.1.0"
 
 __all__ = [
+    "DEMO_POSTERIORS",
+    "demo_posterior",
     "AttackResult",
     "attack",
     "expected_gradient",

@@ -15,7 +15,7 @@ from torch import Tensor
 
 from ._checks import as_float_tensor, as_label_tensor, check_float, check_int
 
-__all__ = ["Dataset", "moons", "circles", "spirals", "digits", "from_arrays", "TEST_SEED_OFFSET"]
+__all__ = ["Dataset", "moons", "circles", "spirals", "digits", "leak_alarm", "from_arrays", "TEST_SEED_OFFSET"]
 
 #: test sets use ``random_state = seed + TEST_SEED_OFFSET``; train sets use ``seed`` itself
 TEST_SEED_OFFSET = 10_000
@@ -175,6 +175,40 @@ def digits(test_fraction: float = 0.3, seed: int = 0) -> Dataset:
     return from_arrays(
         xtr, ytr, xte, yte, classes=[str(d) for d in range(10)], name="digits",
         bounds=(0.0, 1.0), image_shape=(8, 8), feature_names=names,
+    )
+
+
+#: the leak-alarm map from make_moons units: feature = sign * (x - centre) / scale
+LEAK_ALARM_CENTRE = (0.5, 0.25)
+LEAK_ALARM_SCALE = (0.87, 0.5)
+LEAK_ALARM_SIGN = (1.0, -1.0)
+LEAK_ALARM_FEATURES = ["night-flow excess", "acoustic hiss"]
+
+
+def leak_alarm(n_train: int = 200, n_test: int = 200, noise: float = 0.2, seed: int = 0) -> Dataset:
+    """The demo scenario's leak alarm: two standardised pipe-sensor features, steady or leak.
+
+    Synthetic data: :func:`moons` (``sklearn.datasets.make_moons``) mapped by a fixed
+    affine map to "night-flow excess" and "acoustic hiss" in standard-deviation units
+    (``LEAK_ALARM_CENTRE``, ``LEAK_ALARM_SCALE``, ``LEAK_ALARM_SIGN``; hiss is flipped so
+    leaks hiss more). Moon 0 is "steady", moon 1 is "leak". The map is the same for every
+    seed, so a point keeps its meaning across data sets.
+
+    Returns
+    -------
+    Dataset
+        ``name="leak_alarm"``, 2 features, ``bounds`` the moons box mapped the same way.
+    """
+    raw = moons(n_train=n_train, n_test=n_test, noise=noise, seed=seed)
+    centre, scale, sign = (torch.tensor(v) for v in (LEAK_ALARM_CENTRE, LEAK_ALARM_SCALE, LEAK_ALARM_SIGN))
+
+    def mapped(x: Tensor) -> Tensor:
+        return sign * (x - centre) / scale
+
+    ends = torch.stack([mapped(raw.bounds[0]), mapped(raw.bounds[1])])
+    return from_arrays(
+        mapped(raw.x_train), raw.y_train, mapped(raw.x_test), raw.y_test, classes=["steady", "leak"],
+        name="leak_alarm", bounds=(ends.min(0).values, ends.max(0).values), feature_names=LEAK_ALARM_FEATURES,
     )
 
 

@@ -157,8 +157,9 @@ def _verdict(flags, rates, free_only, largest_drop, free_name, few, masked) -> s
         parts.append(f"single-step FGSM ({rates['fgsm']:.0%}) beats iterative PGD ({rates['pgd']:.0%}): the "
                      f"loss surface misleads iterative ascent.")
     if not masked:
-        parts.append(f"no sign of gradient masking: PGD ({rates['pgd']:.0%}) is at least as strong as FGSM "
-                     f"({rates['fgsm']:.0%}) and the gradient-free attack ({rates[free_name]:.0%}), and its "
+        parts.append(f"no sign of gradient masking: FGSM ({rates['fgsm']:.0%}) does not beat PGD "
+                     f"({rates['pgd']:.0%}) by more than the tolerance, the gradient-free attack "
+                     f"({rates[free_name]:.0%}) flips {free_only:.0%} of points that PGD could not, and PGD's "
                      f"success does not fall as the budget grows.")
     if flags["few_samples_beat_many"]:
         parts.append(f"PGD averaging {few} resampled members ({rates['pgd_few_samples']:.0%}) beats PGD averaging "

@@ -42,6 +42,8 @@ def nll(probs: Any, y: Any) -> float:
     from sklearn.metrics import log_loss
 
     p, labels = _inputs(probs, y)
+    # float32 rows sum to 1 only within ~1e-7 per term; scikit-learn warns below its own tolerance
+    p = p / p.sum(1, keepdims=True)
     return float(log_loss(labels, p, labels=list(range(p.shape[1]))))
 
 
