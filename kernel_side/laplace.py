@@ -123,10 +123,12 @@ class LastLayerLaplace:
 
         started = time.perf_counter()
         body, weight_name, bias_name = _split(point)
+        # The curvature algebra is small and runs in float64 on the CPU whatever the device.
         with torch.no_grad():
-            features = body(x).double()
-            mean = _flat_last_layer(point, weight_name, bias_name)
-            logits = point.logits(x)[0].double()
+            features = body(x).double().cpu()
+            mean = _flat_last_layer(point, weight_name, bias_name).cpu()
+            logits = point.logits(x)[0].double().cpu()
+        y = y.cpu()
         probs = torch.softmax(logits, -1)
         hessian = softmax_hessian(features, probs, bias=bias_name is not None)
         log_lik = float(torch.log_softmax(logits, -1).gather(1, y.view(-1, 1)).sum())
