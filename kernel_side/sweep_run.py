@@ -26,6 +26,7 @@ import torch
 
 from . import datasets as _datasets
 from . import metrics as _metrics
+from .storage import _jsonable
 from .sweep_config import METHODS, run_key
 
 __all__ = ["execute_run", "fit_run", "evaluate", "load_run_data", "build_network", "software_versions"]
@@ -178,6 +179,8 @@ def _fit_and_score(config: dict, save_ensemble: bool, record: dict) -> None:
     record["fit_seconds"] = time.perf_counter() - tick
     tick = time.perf_counter()
     record["metrics"] = evaluate(ens, data, config["evaluation"], seed=config["seed"])
+    if ens.meta.get("diagnostics") is not None:  # e.g. HMC acceptance, divergences, R-hat, ESS
+        record["metrics"]["diagnostics"] = _jsonable(ens.meta["diagnostics"])
     record["eval_seconds"] = time.perf_counter() - tick
     if save_ensemble:
         record["ensemble_bytes"] = _ensemble_bytes(ens, config)

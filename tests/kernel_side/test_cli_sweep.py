@@ -217,3 +217,13 @@ def test_sigint_then_rerun_executes_only_the_missing_runs(tmp_path):
     assert sqlite3.connect(tmp_path / "runs.sqlite").execute("PRAGMA integrity_check").fetchone()[0] == "ok"
     rerun = jostle_cli("sweep", "run", "sweep.toml", "--store", "runs.sqlite", "--skip-failed", "--quiet", cwd=tmp_path)
     assert f"8 runs, {len(before)} already stored, {8 - len(before)} finished" in rerun.stdout
+
+
+def test_inspect_lists_recorded_diagnostics(tmp_path, capsys, monkeypatch):
+    data = jostle.datasets.moons(n_train=20, n_test=10)
+    ens = jostle.fit_map(jostle.mlp(2, 2, hidden=(4,)), data, epochs=1, progress=False)
+    ens.save(str(tmp_path / "post.safetensors"), extra_meta={"diagnostics": {"divergences": 0, "rhat_max": 1.004}})
+    result = in_process(["inspect", "post.safetensors"], capsys, tmp_path, monkeypatch)
+    assert result.returncode == 0
+    lines = result.stdout.splitlines()
+    assert "diagnostics:" in lines and "  divergences: 0" in lines and "  rhat_max: 1.004" in lines

@@ -220,6 +220,7 @@ def test_every_method_runs_through_a_sweep(method, tmp_path):
         assert run["metrics"]["members"] == expected_members
     else:  # so few draws cannot pass the convergence checks; the warning is kept with the run
         assert any(w.startswith("ConvergenceWarning") for w in run["warnings"])
+        assert run["metrics"]["diagnostics"]["problems"]
     frame = sweep.results()
     assert frame["family"].eq("deterministic" if method == "map" else "Bayesian").all()
     assert frame["robustness"].between(0, 1).all() and frame["success_rate"].between(0, 1).all()
