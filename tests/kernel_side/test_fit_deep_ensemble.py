@@ -84,6 +84,13 @@ def test_fit_is_seeded_and_leaves_global_rng_alone(moons):
     assert a.meta["method"] == "map" and len(a) == 1
 
 
+def test_small_fits_restore_the_thread_setting_and_honour_device(moons):
+    before = torch.get_num_threads()
+    ens = fit_map(jostle.mlp(2, 2, hidden=(4,)), moons, epochs=1, progress=False, device=torch.device("cpu"))
+    assert torch.get_num_threads() == before
+    assert ens.device.type == "cpu" and ens.params["0.weight"].device.type == "cpu"
+
+
 def test_early_stopping_keeps_each_members_best_epoch(moons):
     net = jostle.mlp(2, 2, hidden=(8,))
     ens = fit_deep_ensemble(net, moons, members=2, epochs=200, lr=0.05, validation=0.25, patience=3,
