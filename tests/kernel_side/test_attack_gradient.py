@@ -137,3 +137,47 @@ def test_thread_setting_is_restored(threads):
     limited = jostle.attack(ens, x, eps=0.2, threads=threads)
     assert torch.get_num_threads() == before
     assert torch.equal(plain.path, limited.path)
+
+
+def test_int_samples_attack_with_the_first_members_and_judge_on_all():
+    ens, _ = random_mlp_ensemble(members=6, classes=2, hidden=(16,), seed=8)
+    x = torch.randn(30, 2, generator=torch.Generator().manual_seed(8))
+    partial = jostle.attack(ens, x, eps=0.5, samples=2)
+    first_two = jostle.attack(ens[:2], x, partial.label, eps=0.5)
+    torch.testing.assert_close(partial.path, first_two.path)
+    # Success is judged on the whole ensemble unless the call says otherwise.
+    assert torch.equal(partial.success, ens.predict(partial.x_adv).label != partial.label)
+    own = jostle.attack(ens, x, partial.label, eps=0.5, samples=2, judge="attacker")
+    assert torch.equal(own.success, first_two.success)
+
+
+def test_small_memory_budget_changes_nothing():
+    # map_logits chunks over points; the attack must not depend on the chunking.
+    ens, _ = random_mlp_ensemble(members=5, classes=3, hidden=(16, 16), seed=10)
+    tight = jostle.Ensemble(ens.template, ens.params, memory_budget=4096)
+    x = torch.randn(50, 2, generator=torch.Generator().manual_seed(10))
+    wide, narrow = jostle.attack(ens, x, eps=0.3, steps=10), jostle.attack(tight, x, eps=0.3, steps=10)
+    torch.testing.assert_close(wide.path, narrow.path, atol=1e-6, rtol=0)
+
+
+def test_l2_fgsm_follows_each_objective_gradient():
+    # FGSM-L2 moves along grad / |grad|; the two objectives' gradients differ (derived in
+    # test_attack_robustness), and so do the steps they take.
+    ens, _ = random_mlp_ensemble(members=4, classes=3, hidden=(16,), seed=11)
+    x = torch.randn(8, 2, generator=torch.Generator().manual_seed(11))
+    for objective in ("expected_loss", "predictive", "margin"):
+        g = jostle.expected_gradient(ens, x, objective=objective)
+        adv = jostle.attack(ens, x, method="fgsm", norm="2", eps=0.2, objective=objective)
+        torch.testing.assert_close(adv.x_adv - x, 0.2 * g / g.norm(dim=1, keepdim=True), atol=1e-6, rtol=0)
+    expected = jostle.attack(ens, x, method="fgsm", norm="2", eps=0.2).x_adv
+    predictive = jostle.attack(ens, x, method="fgsm", norm="2", eps=0.2, objective="predictive").x_adv
+    assert float((expected - predictive).abs().max()) > 1e-3
+
+
+@pytest.mark.parametrize("method, norm", [("fgsm", "2"), ("cw", "2"), ("spsa", "inf"), ("square", "inf")])
+def test_every_method_is_deterministic_under_a_seed(method, norm):
+    ens, _ = random_mlp_ensemble(members=3, classes=2, hidden=(8,), seed=12)
+    x = torch.randn(6, 2, generator=torch.Generator().manual_seed(12))
+    runs = [jostle.attack(ens, x, method=method, norm=norm, eps=0.3, steps=8, seed=4) for _ in range(2)]
+    assert torch.equal(runs[0].x_adv, runs[1].x_adv) and torch.equal(runs[0].loss, runs[1].loss)
+    assert runs[0].to_dict()["x_adv"].shape == (6, 2)

@@ -134,11 +134,17 @@ def _trained_moons_ensemble(members=5, steps=250):
     ens = jostle.Ensemble.from_modules(nets, meta={"bounds": [data.bounds[0].tolist(), data.bounds[1].tolist()]})
     params = [p.requires_grad_(True) for p in ens.params.values()]
     optimiser = torch.optim.Adam(params, lr=0.02)
-    for _ in range(steps):
-        optimiser.zero_grad()
-        logits = ens.logits(data.x_train)
-        nn.functional.cross_entropy(logits.flatten(0, 1), data.y_train.repeat(members)).backward()
-        optimiser.step()
+    threads = torch.get_num_threads()
+    # One thread: small kernels on a shared 2-core machine stall at thread barriers.
+    torch.set_num_threads(1)
+    try:
+        for _ in range(steps):
+            optimiser.zero_grad()
+            logits = ens.logits(data.x_train)
+            nn.functional.cross_entropy(logits.flatten(0, 1), data.y_train.repeat(members)).backward()
+            optimiser.step()
+    finally:
+        torch.set_num_threads(threads)
     for p in params:
         p.requires_grad_(False)
     return ens, data
