@@ -52,7 +52,7 @@ def main(epoch_settings: tuple[int, ...] = (5, 150)) -> None:
 
     started = time.perf_counter()
     cluster = LocalCluster(n_workers=WORKERS, processes=True, threads_per_worker=1,
-                           dashboard_address=None, silence_logs=logging.ERROR)
+                           dashboard_address=":0", silence_logs=logging.ERROR)
     client = Client(cluster)
     client.run(lambda: __import__("jostle") and None)  # workers import jostle before timing
     startup = time.perf_counter() - started

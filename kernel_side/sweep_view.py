@@ -13,8 +13,8 @@ import numpy as np
 
 from ._checks import check_choice
 
-__all__ = ["SweepPoints", "Correlation", "ROBUSTNESS_MEASURES", "sweep_points", "family_correlations",
-           "FAMILIES"]
+__all__ = ["SweepPoints", "Correlation", "ROBUSTNESS_MEASURES", "sweep_view", "sweep_points",
+           "family_correlations", "FAMILIES"]
 
 #: y-axis choices: column or derived quantity -> axis title (higher is more robust for both)
 ROBUSTNESS_MEASURES = {
@@ -54,6 +54,13 @@ class Correlation:
     pearson_p: float
     spearman_rho: float
     spearman_p: float
+
+
+def sweep_view(frame: Any, methods: Sequence[str] | None, budget: float, attack: str,
+               measure: str = "robustness") -> tuple[SweepPoints, list[Correlation]]:
+    """Everything the chart draws for one filter setting: the points and the correlations."""
+    points = sweep_points(frame, methods, budget, attack, measure)
+    return points, family_correlations(points)
 
 
 def sweep_points(frame: Any, methods: Sequence[str] | None, budget: float, attack: str,

@@ -9,7 +9,7 @@ import ipywidgets as ipw
 import traitlets as t
 
 from jostle.store import RunStore
-from jostle.sweep_view import ROBUSTNESS_MEASURES, family_correlations, sweep_points
+from jostle.sweep_view import ROBUSTNESS_MEASURES, sweep_view
 
 from ._wire import to_wire
 from .sweep_chart import SweepChart
@@ -127,9 +127,9 @@ class SweepExplorer(ipw.HBox):
 
     # ------------------------------------------------------------------ view data
     def _refresh(self) -> None:
-        self.points = sweep_points(self._frame, self.methods, self.budget, self.attack, self.measure) \
-            if len(self._frame) else None
-        self.correlations = family_correlations(self.points) if self.points is not None else []
+        self.points, self.correlations = (
+            sweep_view(self._frame, self.methods, self.budget, self.attack, self.measure)
+            if len(self._frame) else (None, []))
         with self.chart.hold_sync():
             for name in ("methods", "budget", "attack", "measure"):
                 setattr(self.chart, name, getattr(self, name))

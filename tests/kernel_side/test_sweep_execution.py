@@ -37,7 +37,7 @@ METRICS = ["accuracy", "nll", "ece", "success_rate", "robustness"]
 @pytest.fixture(scope="module")
 def client():
     cluster = distributed.LocalCluster(n_workers=2, processes=True, threads_per_worker=1,
-                                       dashboard_address=None, silence_logs=logging.ERROR)
+                                       dashboard_address=":0", silence_logs=logging.ERROR)
     with cluster, distributed.Client(cluster) as c:
         yield c
 

@@ -203,3 +203,15 @@ def test_chart_module_is_self_contained_and_sets_text_only():
     rules = re.sub(r"/\*.*?\*/", "", css, flags=re.S)
     for selector in re.findall(r"(?:^|\})\s*([^{}]+)\{", rules):
         assert all(part.strip().startswith(".jostle-") for part in selector.split(",")), selector
+
+
+def test_a_store_with_no_finished_runs_shows_an_empty_chart(tmp_path):
+    path = tmp_path / "runs.sqlite"
+    with RunStore(path) as db:
+        record = _fake_record(SWEEP.runs()[0], np.random.default_rng(0))
+        db.record({**record, "status": "failed", "metrics": None, "error": "ValueError: bad"})
+    w = SweepExplorer(path)
+    assert w.points is None and w.chart.point_keys == [] and w.methods == []
+    assert w.chart.note == "No finished runs in this store yet."
+    with pytest.raises(FileNotFoundError, match=r"store does not exist: .*nowhere\.sqlite"):
+        SweepExplorer(tmp_path / "nowhere.sqlite")
