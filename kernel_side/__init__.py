@@ -8,6 +8,9 @@ from .models import build_architecture, init_parameters, mlp, register_architect
 from .prediction import Prediction, entropy
 from .storage import FormatError, load
 from .demo_data import DEMO_POSTERIORS, demo_posterior
+from .diagnostics import ConvergenceWarning, SamplingInterruptedWarning, describe
+from .hmc import HMCDraws, HMCState, sample_hmc
+from .hmc_fit import fit_hmc
 from .attack_core import AttackResult
 from .attack_gradient import attack
 from .masking import MaskingReport, masking_check
@@ -26,6 +29,13 @@ __version__ = "0.1.0"
 __all__ = [
     "DEMO_POSTERIORS",
     "demo_posterior",
+    "ConvergenceWarning",
+    "HMCDraws",
+    "HMCState",
+    "SamplingInterruptedWarning",
+    "describe",
+    "fit_hmc",
+    "sample_hmc",
     "AttackResult",
     "attack",
     "expected_gradient",

@@ -197,6 +197,12 @@ class Ensemble:
             f"parameters_per_member={self.num_parameters}, device={str(self.device)!r})"
         )
 
+    def info(self) -> None:
+        """Print how this posterior was made and how far to trust it (see :func:`jostle.describe`)."""
+        from .diagnostics import describe
+
+        print(describe(self))
+
     # ------------------------------------------------------------------ computation
     def logits(self, x: Any, samples: Any = None) -> Tensor:
         """Member logits for inputs ``x``.

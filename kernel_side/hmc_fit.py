@@ -1,0 +1,198 @@
+"""Full-batch HMC for a classifier network: the posterior as an :class:`Ensemble` of draws.
+
+All chains are evaluated at once: the flat parameter vectors of C chains, a (C, P)
+tensor, are viewed as stacked parameter dicts and pushed through the ensemble's batched
+forward pass. Convergence is judged in function space (train log-likelihood per draw,
+test-set predicted probabilities), because weight-space R-hat is meaningless when
+hidden units can be permuted.
+"""
+from __future__ import annotations
+
+import copy
+import time
+import warnings
+
+import torch
+from torch import Tensor, nn
+
+from ._checks import _show, check_choice, check_float, check_int
+from ._hmc_posterior import NetworkPosterior, function_space_diagnostics, map_start, prior_start
+from .diagnostics import ConvergenceWarning
+from .ensemble import Ensemble
+from .hmc import HMCDraws, sample_hmc
+from .models import architecture_of
+
+__all__ = ["fit_hmc"]
+
+
+def fit_hmc(
+    module: nn.Module,
+    data,
+    samples: int = 100,
+    chains: int = 4,
+    warmup: int = 200,
+    draws_per_chain: int | None = None,
+    prior_std: float = 1.0,
+    trajectory_length: float = 1.0,
+    max_steps: int = 64,
+    target_accept: float = 0.8,
+    init: str = "map",
+    map_steps: int = 500,
+    map_lr: float = 0.01,
+    seed: int = 0,
+    device: torch.device | str | None = None,
+    progress: bool = False,
+) -> Ensemble:
+    """Sample a network's posterior with HMC and keep ``samples`` draws as an ensemble.
+
+    The log posterior is the full-batch log-likelihood of ``data``'s training set under a
+    softmax output plus an isotropic Gaussian prior on every trainable parameter.
+
+    Parameters
+    ----------
+    module : nn.Module
+        The network (its current weights are not used). Parameters with
+        ``requires_grad=False`` and buffers are held fixed.
+    data : jostle.Dataset
+    samples : int
+        Draws kept in the ensemble, thinned evenly from all chains and interleaved in
+        member order (member j comes from chain j mod C), so ``ens[:k]`` mixes chains.
+    chains : int
+        Chains, advanced together in one batched forward / backward pass.
+    warmup : int
+        Adaptation iterations per chain (step size and diagonal metric).
+    draws_per_chain : int, optional
+        Post-warm-up iterations per chain; the diagnostics use all of them. Default
+        ``max(200, samples // chains)``.
+    prior_std : float
+        Standard deviation of the Gaussian prior on each weight and bias.
+    trajectory_length, max_steps, target_accept
+        Passed to :func:`jostle.sample_hmc`.
+    init : {"map", "prior"}
+        Start each chain from its own short MAP run (Adam, ``map_steps`` steps at
+        ``map_lr``, from a seeded default initialisation) or from a prior draw.
+    seed : int
+    device : torch device, optional
+        Where to compute (default: where ``data`` lives).
+    progress : bool
+        Show a progress bar while sampling.
+
+    Returns
+    -------
+    Ensemble
+        ``meta`` holds ``method="hmc"``, ``classes``, ``bounds``, ``data``,
+        ``architecture``, ``seed``, ``seconds``, ``hyperparameters`` and
+        ``diagnostics`` (acceptance, divergences, step sizes, R-hat and ESS of the
+        function-space quantities, and the list of failed checks).
+
+    Warns
+    -----
+    ConvergenceWarning
+        When R-hat exceeds 1.01, bulk ESS is under 100 per chain, or transitions diverged.
+    """
+    started = time.perf_counter()
+    settings = _check_arguments(module, data, samples, chains, warmup, draws_per_chain, prior_std,
+                                trajectory_length, max_steps, target_accept, init, map_steps, map_lr, seed)
+    device = torch.device(device) if device is not None else data.x_train.device
+    template = copy.deepcopy(module).to(device)
+    posterior = NetworkPosterior(template, data, settings["prior_std"], device)
+    if settings["init"] == "map":
+        initial = map_start(posterior, chains, settings["map_steps"], settings["map_lr"], seed)
+    else:
+        initial = prior_start(posterior, chains, seed)
+    draws = sample_hmc(
+        posterior, initial, num_samples=settings["draws_per_chain"], warmup=warmup,
+        trajectory_length=settings["trajectory_length"], max_steps=max_steps,
+        target_accept=settings["target_accept"], diagnostics=False, seed=seed, progress=progress,
+    )
+    if draws.num_draws == 0:
+        raise KeyboardInterrupt("sampling was interrupted before the first draw")
+    diagnostics = _diagnostics(posterior, draws, data, settings)
+    kept = posterior.stacked(_thin_interleaved(draws.samples, samples))
+    params = {name: value.contiguous() for name, value in kept.items()}
+    meta = {
+        "method": "hmc",
+        "classes": list(data.classes),
+        "bounds": [data.bounds[0].tolist(), data.bounds[1].tolist()],
+        "data": data.describe(),
+        "architecture": architecture_of(module),
+        "seed": seed,
+        "hyperparameters": settings,
+        "diagnostics": diagnostics,
+        "seconds": time.perf_counter() - started,
+    }
+    if diagnostics["problems"]:
+        warnings.warn("HMC convergence checks failed: " + "; ".join(diagnostics["problems"])
+                      + " (see ens.info())", ConvergenceWarning, stacklevel=2)
+    return Ensemble(posterior.template, params, meta=meta)
+
+
+# ---------------------------------------------------------------------------- helpers
+def _check_arguments(module, data, samples, chains, warmup, draws_per_chain, prior_std,
+                     trajectory_length, max_steps, target_accept, init, map_steps, map_lr, seed) -> dict:
+    if not isinstance(module, nn.Module):
+        raise ValueError(f"module must be a torch.nn.Module; got {_show(module)}")
+    if not all(hasattr(data, name) for name in ("x_train", "y_train", "x_test", "classes", "bounds")):
+        raise ValueError(f"data must be a jostle.Dataset; got {_show(data)}")
+    if not any(p.requires_grad for p in module.parameters()):
+        raise ValueError("module must have at least one parameter with requires_grad=True; got none")
+    samples = check_int("samples", samples, low=1)
+    chains = check_int("chains", chains, low=1)
+    check_int("warmup", warmup, low=0)
+    if draws_per_chain is None:
+        draws_per_chain = max(200, -(-samples // chains))
+    draws_per_chain = check_int("draws_per_chain", draws_per_chain, low=1)
+    if samples > chains * draws_per_chain:
+        raise ValueError(
+            f"samples must be <= chains * draws_per_chain = {chains * draws_per_chain}; got {samples}"
+        )
+    return {
+        "samples": samples,
+        "chains": chains,
+        "warmup": warmup,
+        "draws_per_chain": draws_per_chain,
+        "prior_std": check_float("prior_std", prior_std, low=0.0, low_open=True),
+        "trajectory_length": check_float("trajectory_length", trajectory_length, low=0.0, low_open=True),
+        "max_steps": check_int("max_steps", max_steps, low=1),
+        "target_accept": check_float("target_accept", target_accept, low=0.0, high=1.0, low_open=True, high_open=True),
+        "init": check_choice("init", init, ("map", "prior")),
+        "map_steps": check_int("map_steps", map_steps, low=0),
+        "map_lr": check_float("map_lr", map_lr, low=0.0, low_open=True),
+        "seed": check_int("seed", seed),
+    }
+
+
+def _thin_interleaved(samples: Tensor, keep: int) -> Tensor:
+    """``keep`` draws spread evenly over each chain's run, ordered chain 0, 1, ..., C-1, 0, ..."""
+    chains, draws, _ = samples.shape
+    counts = [keep // chains + (1 if c < keep % chains else 0) for c in range(chains)]
+    picked = []
+    for c, count in enumerate(counts):
+        index = torch.linspace(0, draws - 1, count).round().long() if count else torch.zeros(0, dtype=torch.long)
+        picked.append(samples[c, index.to(samples.device)])
+    order = sorted(((j, c) for c, count in enumerate(counts) for j in range(count)))
+    return torch.stack([picked[c][j] for j, c in order])
+
+
+def _diagnostics(posterior: NetworkPosterior, draws: HMCDraws, data, settings: dict) -> dict:
+    found = function_space_diagnostics(posterior, draws.samples, data.x_test)
+    transitions = draws.num_chains * draws.num_draws
+    divergences = int(draws.divergences.sum())
+    problems = list(found.pop("problems"))
+    if divergences:
+        problems.append(f"{divergences} of {transitions} transitions diverged after warm-up")
+    if draws.interrupted:
+        problems.append(f"sampling was interrupted after {draws.num_draws} of {settings['draws_per_chain']} draws per chain")
+    return {
+        "accept_rate": [float(a) for a in draws.accept_rate],
+        "target_accept": settings["target_accept"],
+        "divergences": divergences,
+        "warmup_divergences": int(draws.warmup_divergences.sum()),
+        "transitions": transitions,
+        "step_size": [float(s) for s in draws.step_size],
+        "mean_leapfrog_steps": float(draws.num_steps.double().mean()),
+        "gradient_evaluations": draws.gradient_evaluations,
+        "sampling_seconds": draws.seconds,
+        **found,
+        "problems": problems,
+    }

@@ -1,0 +1,70 @@
+"""R-hat / ESS through arviz (Vehtari et al. 2021) and the plain-text posterior summary."""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import torch
+
+import jostle
+from jostle.diagnostics import chain_diagnostics
+from jostle.hmc_fit import _thin_interleaved
+
+
+def test_iid_draws_give_rhat_near_one_and_ess_near_the_draw_count():
+    # Vehtari et al. 2021: for independent draws R-hat -> 1 and ESS -> the number of draws.
+    draws = np.random.default_rng(0).normal(size=(4, 1000, 3))
+    found = chain_diagnostics(draws)
+    assert found["rhat"].shape == (3,)
+    assert bool((found["rhat"] < 1.01).all())
+    assert bool((np.abs(found["ess_bulk"] / 4000 - 1) < 0.15).all())
+    assert bool((np.abs(found["ess_tail"] / 4000 - 1) < 0.25).all())
+
+
+def test_chains_at_different_means_are_flagged():
+    # Vehtari et al. 2021 sec. 4: chains that have not mixed give R-hat clearly above 1.01.
+    draws = np.random.default_rng(1).normal(size=(4, 500))
+    draws[0] += 1.0
+    found = chain_diagnostics(draws)
+    assert float(found["rhat"]) > 1.05
+    assert np.ndim(found["rhat"]) == 0
+
+
+def test_rhat_matches_arviz_called_directly():
+    from jostle.diagnostics import _arviz
+
+    draws = np.cumsum(np.random.default_rng(2).normal(size=(4, 300)), axis=1)  # strongly autocorrelated
+    found = chain_diagnostics(draws)
+    az = _arviz()
+    assert float(found["rhat"]) == pytest.approx(float(az.rhat(draws)), rel=1e-12)
+    assert float(found["ess_bulk"]) == pytest.approx(float(az.ess(draws, method="bulk")), rel=1e-12)
+    assert float(found["ess_bulk"]) < 100
+
+
+@pytest.mark.parametrize("values, message", [
+    (np.zeros(5), r"values must have shape \(C, T\) or \(C, T, K\); got shape \(5,\)"),
+    (np.zeros((4, 3)), "values must hold at least 4 draws per chain; got 3"),
+])
+def test_chain_diagnostics_rejects_bad_shapes(values, message):
+    with pytest.raises(ValueError, match=message):
+        chain_diagnostics(values)
+
+
+def test_thinning_spreads_draws_and_interleaves_chains_in_member_order():
+    chains, draws = 3, 10
+    # Encode chain and draw in the value: 100 * chain + draw.
+    samples = (100 * torch.arange(chains)[:, None] + torch.arange(draws)[None, :]).double()[..., None]
+    kept = _thin_interleaved(samples, 7).flatten().long().tolist()
+    assert [k // 100 for k in kept] == [0, 1, 2, 0, 1, 2, 0]
+    assert [k % 100 for k in kept if k // 100 == 0] == [0, 4, 9]
+    assert [k % 100 for k in kept if k // 100 == 1] == [0, 9]
+
+
+def test_describe_reports_what_the_meta_holds_for_any_method():
+    nets = [jostle.mlp(2, 2, hidden=(3,)) for _ in range(2)]
+    ens = jostle.Ensemble.from_modules(nets, meta={"method": "deep_ensemble", "seconds": 1.25,
+                                                   "diagnostics": {"final_loss": 0.123456}})
+    text = jostle.describe(ens)
+    assert text.startswith("deep_ensemble posterior: 2 members")
+    assert "time taken: 1.2 s" in text or "time taken: 1.3 s" in text
+    assert "final_loss: 0.1235" in text
+    assert jostle.describe(jostle.Ensemble.from_modules(nets)).startswith("unspecified posterior")
