@@ -31,11 +31,12 @@ function ticks(lo, hi, count) {
   return Array.from({ length: count }, (_, i) => lo + i * step);
 }
 
+// Both axes are shares in [0, 1]: pad the data range a little but never past those ends.
 function domain(values) {
-  let lo = Math.min(...values), hi = Math.max(...values);
+  const lo = Math.min(...values), hi = Math.max(...values);
   if (!isFinite(lo)) return [0, 1];
   const pad = Math.max((hi - lo) * 0.08, 0.01);
-  return [lo - pad, hi + pad];
+  return [Math.max(lo - pad, 0), Math.min(hi + pad, 1)];
 }
 
 // ipywidgets containers cannot carry attributes; their jostle-tid-<id> classes become data-testids.
