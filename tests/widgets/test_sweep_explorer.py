@@ -215,3 +215,21 @@ def test_a_store_with_no_finished_runs_shows_an_empty_chart(tmp_path):
     assert w.chart.note == "No finished runs in this store yet."
     with pytest.raises(FileNotFoundError, match=r"store does not exist: .*nowhere\.sqlite"):
         SweepExplorer(tmp_path / "nowhere.sqlite")
+
+
+def test_a_saved_digits_run_opens_an_image_explorer(tmp_path):
+    image_explorer = pytest.importorskip("jostle.widgets").ImageExplorer
+    digits = jostle.Sweep(
+        datasets=[{"name": "digits"}], methods=[{"name": "map", "epochs": 1}],
+        architectures=[{"depth": 1, "width": 8}], train_sizes=[60], seeds=[0],
+        evaluation={"budgets": [0.0625], "points": 5, "attacks": [{"method": "fgsm"}]},
+        store=tmp_path / "runs.sqlite",
+    )
+    assert digits.run(save_ensembles=True, progress_bar=False).finished == 1
+    w = SweepExplorer(digits)
+    w.selected_key = digits.keys()[0]
+    try:
+        assert isinstance(w.opened, image_explorer)
+        assert (w.opened.budget, w.opened.method) == (0.0625, "fgsm")
+    finally:
+        w.selected_key = ""
