@@ -224,3 +224,54 @@ def test_every_method_runs_through_a_sweep(method, tmp_path):
     frame = sweep.results()
     assert frame["family"].eq("deterministic" if method == "map" else "Bayesian").all()
     assert frame["robustness"].between(0, 1).all() and frame["success_rate"].between(0, 1).all()
+
+
+def test_command_line_sends_runs_to_a_scheduler(in_process, client, tmp_path, monkeypatch, capsys):
+    from jostle.cli import main
+
+    sweep, _, _ = in_process
+    (tmp_path / "sweep.toml").write_text(SWEEP_TOML)
+    monkeypatch.chdir(tmp_path)
+    code = main(["sweep", "run", "sweep.toml", "--store", "remote.sqlite", "--quiet",
+                 "--scheduler", client.scheduler.address])
+    assert code == 0, capsys.readouterr().err
+    assert "tiny: 4 runs, 0 already stored, 4 finished, 0 failed" in capsys.readouterr().out
+    remote = _sorted(jostle.Sweep.from_toml(tmp_path / "sweep.toml").results(store=tmp_path / "remote.sqlite"))
+    local = _sorted(sweep.results())
+    assert remote["key"].tolist() == local["key"].tolist()  # the TOML names the same runs
+    np.testing.assert_allclose(remote[METRICS].to_numpy(float), local[METRICS].to_numpy(float), atol=1e-6, rtol=0)
+    with RunStore(tmp_path / "remote.sqlite", readonly=True) as db:
+        assert all(int(r["worker"].split(":")[1]) != os.getpid() for r in db.runs())
+
+
+# TINY as a TOML file
+SWEEP_TOML = """
+[sweep]
+name = "tiny"
+seeds = [0, 1]
+train_sizes = [40]
+[[sweep.datasets]]
+name = "moons"
+n_test = 40
+noise = 0.2
+[[sweep.architectures]]
+depth = 1
+width = 8
+[[sweep.methods]]
+name = "map"
+epochs = 3
+batch_size = 20
+[[sweep.methods]]
+name = "deep_ensemble"
+members = 2
+epochs = 3
+batch_size = 20
+[sweep.evaluation]
+budgets = [0.1, 0.3]
+points = 20
+[[sweep.evaluation.attacks]]
+method = "fgsm"
+[[sweep.evaluation.attacks]]
+method = "pgd"
+steps = 5
+"""
