@@ -12,7 +12,7 @@ from typing import Any
 import ipywidgets as w
 import traitlets as t
 
-from jostle import live
+from jostle import Ensemble, live
 
 from .attack_controls import AttackControls
 from .status_line import StatusLine
@@ -30,8 +30,17 @@ class LiveBox(w.VBox):
     steps = t.Int(40, help="attack iterations").tag(sync=True)
     objective = t.Unicode("expected_loss", help="expected_loss (mean of member losses) or predictive").tag(sync=True)
 
-    def _setup_live(self, ens: Any, settings: dict, budget_max: float) -> None:
-        """Call before ``super().__init__``: validators need the ensemble."""
+    def _setup_live(self, ens: Any, settings: dict, budget_max: float, n_features: int | None = None) -> None:
+        """Call before ``super().__init__``: validators need the ensemble.
+
+        Constructor arguments are checked here and raise; later values set from the page
+        or from code are reported in the status line instead.
+        """
+        if not isinstance(ens, Ensemble):
+            raise ValueError(f"ens must be a jostle.Ensemble; got {type(ens).__name__}")
+        for name, value in settings.items():
+            if value is not None:
+                live.check_field(ens, name, value, n_features=n_features)
         self._ens = ens
         self._cache = live.ViewCache()
         self._result: live.ViewData | None = None

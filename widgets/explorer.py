@@ -58,10 +58,12 @@ class Explorer(LiveBox):
                              f"(use ImageExplorer for images)")
         lo, hi = (np.asarray(b, dtype=float) for b in data.bounds)
         self._bounds = (lo.tolist(), hi.tolist())
-        self._fixed = {"grid": live.check_field(ens, "grid", grid),
-                       "boundaries": live.check_field(ens, "boundaries", boundaries),
-                       "seed": live.check_field(ens, "seed", seed)}
-        self._setup_live(ens, {"steps": steps}, budget_max=round(0.5 * float(np.min(hi - lo)), 3))
+        start = data.x_test[0].tolist() if point is None else point
+        self._setup_live(ens, {"point": start, "budget": budget, "samples": samples, "method": method, "norm": norm,
+                               "steps": steps, "objective": objective, "layer": layer, "grid": grid,
+                               "boundaries": boundaries, "seed": seed},
+                         budget_max=round(0.5 * float(np.min(hi - lo)), 3), n_features=2)
+        self._fixed = {"grid": grid, "boundaries": boundaries, "seed": seed}
         self._map = ExplorerMap(bounds=[lo[0], hi[0], lo[1], hi[1]], classes=[str(c) for c in data.classes],
                                 train_points=to_wire(data.x_train.numpy()),
                                 train_labels=to_wire(data.y_train.numpy(), "uint8"))
@@ -70,7 +72,6 @@ class Explorer(LiveBox):
         spread, spread_text, self._draw_spread = _charts.spread_chart()
         path, self._draw_path = _charts.path_chart()
         fade, self._draw_fade = _charts.fade_chart()
-        start = data.x_test[0].tolist() if point is None else point
         super().__init__(children=_layout(data, ens, self._map, [predictive, spread, spread_text],
                                           [self._controls, path, fade, _charts.caption(_charts.FADE_CAPTION)],
                                           self._status), **kwargs)

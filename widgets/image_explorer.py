@@ -48,8 +48,10 @@ class ImageExplorer(LiveBox):
         self._bounds = (lo.tolist(), hi.tolist())
         self._value_range = [float(lo.min()), float(hi.max())]
         self._classes = [str(c) for c in data.classes]
-        self._fixed = {"grid": 0, "boundaries": 0, "seed": live.check_field(ens, "seed", seed)}
-        self._setup_live(ens, {"steps": steps}, budget_max=round(0.5 * (self._value_range[1] - self._value_range[0]), 3))
+        index = check_int("index", index, low=0, high=self._images.shape[0] - 1)
+        self._setup_live(ens, {"budget": budget, "samples": samples, "method": method, "norm": norm, "steps": steps,
+                               "objective": objective, "seed": seed}, budget_max=round(0.5 * (self._value_range[1] - self._value_range[0]), 3))
+        self._fixed = {"grid": 0, "boundaries": 0, "seed": seed}
         truth = data.y_test[: self._images.shape[0]].tolist()
         self._strip = ImageStrip(images=to_wire(self._images.reshape((-1,) + self._shape)),
                                  captions=[f"test image {k}: class {self._classes[y]}" for k, y in enumerate(truth)],

@@ -203,3 +203,21 @@ def test_settings_the_attack_refuses_show_in_the_status_while_other_panels_updat
     explorer.norm = "2"
     assert explorer.wait(30)
     assert explorer.status[0] == "idle" and explorer.result.attack is not None
+
+
+@pytest.mark.parametrize("kwargs, message", [
+    ({"budget": -1.0}, r"budget must be a finite float >= 0; got -1"),
+    ({"samples": 0}, r"samples must be an integer in \[1, 6\]; got 0"),
+    ({"method": "laser"}, r"method must be one of"),
+    ({"point": [0.0]}, r"point must have 2 coordinates; got 1"),
+    ({"grid": -3}, r"grid must be an integer in \[0, 512\]; got -3"),
+    ({"layer": "heat"}, r"layer must be one of 'predictive', 'epistemic', 'entropy'; got 'heat'"),
+])
+def test_constructor_arguments_are_checked_and_raise(ens, moons, kwargs, message):
+    with pytest.raises(ValueError, match=message):
+        Explorer(ens, moons, **kwargs)
+
+
+def test_constructor_refuses_something_that_is_not_an_ensemble(moons):
+    with pytest.raises(ValueError, match="ens must be a jostle.Ensemble; got list"):
+        Explorer([1, 2], moons)

@@ -95,3 +95,11 @@ def test_comparison_checks_its_arguments(moons, ens):
         Comparison([ens], moons)
     with pytest.raises(ValueError, match="labels must name each of the 2 ensembles; got 1"):
         Comparison([ens, ens], moons, labels=["a"])
+
+
+def test_image_explorer_constructor_checks_index_and_strip(digits):
+    ens = tiny_ensemble(members=2, in_features=64, classes=10, hidden=(4,))
+    with pytest.raises(ValueError, match=r"index must be an integer in \[0, 3\]; got 4"):
+        ImageExplorer(ens, digits, strip=4, index=4)
+    with pytest.raises(ValueError, match=r"strip must be an integer >= 1; got 0"):
+        ImageExplorer(ens, digits, strip=0)

@@ -156,3 +156,14 @@ def test_fade_panel_matches_gradient_fade_and_expected_gradient(ens, state):
     assert min(singles) - 1e-6 <= fade.norm_low[0] and fade.norm_high[0] <= max(singles) + 1e-6
     assert np.all(fade.norm_low <= fade.norm_mean + 1e-12) and np.all(fade.norm_mean <= fade.norm_high + 1e-12)
     np.testing.assert_allclose(fade.reference, fade.norm_mean[0] / np.sqrt(fade.counts), rtol=1e-6)
+
+
+def test_the_live_engine_imports_no_widget_library():
+    import subprocess
+    import sys
+
+    code = ("import sys, jostle.live; bad = [m for m in sys.modules if m.split('.')[0] in "
+            "('ipywidgets', 'traitlets', 'anywidget', 'bqplot', 'comm', 'ipykernel')]; print(bad); "
+            "sys.exit(1 if bad else 0)")
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    assert done.returncode == 0, done.stdout + done.stderr
