@@ -30,7 +30,7 @@ def _figure(testid: str, title: str, marks: list, axes: list, height: str = "210
 
 def predictive_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
     """Bars of the posterior predictive at the input and at the attacked input, 5-95% whiskers."""
-    xs, ys = bq.LinearScale(min=-0.6, max=1.6), bq.LinearScale(min=0.0, max=1.0)
+    xs, ys = bq.LinearScale(min=-0.6, max=1.6), bq.LinearScale(min=0.0, max=1.0, allow_padding=False)
     scales = {"x": xs, "y": ys}
     bars = [bq.Lines(x=[[0.0, 0.0]], y=[[0.0, 0.0]], scales=scales, stroke_width=_BAR_WIDTH, colors=[colour])
             for colour in (INPUT_COLOUR, ATTACK_COLOUR)]
@@ -69,14 +69,15 @@ def predictive_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
 
 def spread_chart() -> tuple[bq.Figure, w.Label, Callable[[Any], None]]:
     """Histogram over members of the predicted class's probability, with the uncertainty split."""
-    xs, ys = bq.LinearScale(min=0.0, max=1.0), bq.LinearScale(min=0.0)
+    xs, ys = bq.LinearScale(min=0.0, max=1.0, allow_padding=False), bq.LinearScale(min=0.0, allow_padding=False)
     scales = {"x": xs, "y": ys}
     bars = [bq.Lines(x=[0.0, 1.0], y=[0.0, 0.0], scales=scales, colors=[colour], fill="bottom",
                      fill_colors=[colour], fill_opacities=[0.45], stroke_width=1.5, line_style=style)
             for colour, style in ((INPUT_COLOUR, "solid"), (ATTACK_COLOUR, "dashed"))]
-    x_axis = bq.Axis(scale=xs, label="member probability of the predicted class", tick_format=".1f", num_ticks=5)
+    x_axis = bq.Axis(scale=xs, label="p(predicted class): input grey, attacked dashed", tick_format=".1f",
+                     num_ticks=5)
     y_axis = bq.Axis(scale=ys, side="left", label="members", tick_format="d", num_ticks=4)
-    figure = _figure("spread-chart", "spread: input (grey) / attacked (dashed)", bars, [x_axis, y_axis])
+    figure = _figure("spread-chart", "spread over members", bars, [x_axis, y_axis])
     lines = [w.Label(""), w.Label("")]
     for line in lines:
         line.add_class("jostle-wrap")
@@ -98,7 +99,8 @@ def spread_chart() -> tuple[bq.Figure, w.Label, Callable[[Any], None]]:
 
 def path_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
     """Loss (left axis) and the attacked label's probability (right axis) along the attack path."""
-    xs, loss_scale, prob_scale = bq.LinearScale(), bq.LinearScale(), bq.LinearScale(min=0.0, max=1.0)
+    xs = bq.LinearScale(allow_padding=False)
+    loss_scale, prob_scale = bq.LinearScale(), bq.LinearScale(min=0.0, max=1.0, allow_padding=False)
     loss = bq.Lines(x=[0.0], y=[0.0], scales={"x": xs, "y": loss_scale}, colors=[ATTACK_COLOUR], stroke_width=2)
     prob = bq.Lines(x=[0.0], y=[0.0], scales={"x": xs, "y": prob_scale}, colors=[INK], line_style="dashed",
                     stroke_width=1.5)
