@@ -60,3 +60,13 @@ def test_readme_python_examples_run_as_written(tmp_path):
     assert "Attack results are empirical evidence" in out
     assert "4 True" in out
     assert "SweepSummary(total=2, skipped=0, finished=2, failed=0" in out
+
+
+def test_readme_pictures_exist_and_are_small():
+    text = README.read_text(encoding="utf-8")
+    pictures = re.findall(r"!\[[^\]]+\]\(([^)]+)\)", text)
+    assert pictures, "the README shows no pictures"
+    for picture in pictures:
+        path = ROOT / picture
+        assert path.is_file(), f"{picture} is missing"
+        assert path.stat().st_size < 200_000, f"{picture} is over 200 kB"

@@ -1,14 +1,15 @@
 """The shipped demo notebooks run in a real JupyterLab page and draw their widgets.
 
-The first tour (a Comparison) and the meter cards (an ImageExplorer) cover the widget kinds
-the tours show; the tall viewport keeps each widget whole in its screenshot. Each notebook is
-copied unchanged into the lab's root, run with "run all cells", and its
+The first three tours cover the Comparison, the Explorer and the ImageExplorer; the tall
+viewport keeps each widget whole in its screenshot. Each notebook is copied unchanged into the lab's root, run with "run all cells", and its
 widgets are waited for until their status lines are idle. The page must report no errors.
 Screenshots go to test-artifacts/demo-*.png (the README's pictures are chosen from them).
 """
 from __future__ import annotations
 
 import shutil
+import urllib.error
+import urllib.request
 from pathlib import Path
 
 import pytest
@@ -33,12 +34,14 @@ _SETTLED_JS = """([scope, count]) => {
 
 CASES = [
     ("01_first_tour.ipynb", ".jostle-comparison", 2, "demo-first-tour-comparison"),
+    ("02_fading_gradient.ipynb", ".jostle-explorer", 1, "demo-fading-gradient-explorer"),
     ("03_meter_cards.ipynb", ".jostle-image-explorer", 1, "demo-meter-cards-image-explorer"),
 ]
 
 
-@pytest.fixture(scope="module")
+@pytest.fixture
 def wide_page(chromium_browser):
+    """A fresh page per notebook (with the saved layout dropped, see ``_forget_workspace``)."""
     context = chromium_browser.new_context(viewport={"width": 1700, "height": 2600})
     page = context.new_page()
     block_outside_traffic(page)
@@ -51,6 +54,7 @@ def wide_page(chromium_browser):
 def test_demo_notebook_draws_its_widgets_in_jupyterlab(name, scope, statuses, picture, wide_page, lab_server):
     page, errors = wide_page
     shutil.copy(NOTEBOOKS / name, lab_server.root / name)
+    _forget_workspace(lab_server)
     try:
         open_and_run(page, lab_server, name, timeout=RUN_TIMEOUT_S)
         settled = wait_until(page, _SETTLED_JS, arg=[scope, statuses], timeout=120,
@@ -62,3 +66,14 @@ def test_demo_notebook_draws_its_widgets_in_jupyterlab(name, scope, statuses, pi
         errors.check()
     finally:
         close_all_tabs(page)
+        _forget_workspace(lab_server)
+
+
+def _forget_workspace(lab) -> None:
+    """Drop JupyterLab's saved layout, so the next page does not reopen (and rerun) this notebook."""
+    request = urllib.request.Request(f"{lab.url}/lab/api/workspaces/default?token={lab.token}", method="DELETE")
+    try:
+        urllib.request.urlopen(request, timeout=10).close()
+    except urllib.error.HTTPError as err:
+        if err.code != 404:
+            raise
