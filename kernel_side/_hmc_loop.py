@@ -194,7 +194,9 @@ def _progress_bar(enabled: bool, total: int):
         return None
     from tqdm.auto import tqdm
 
-    return tqdm(total=total, desc="HMC", unit="it", leave=True)
+    # miniters=1: iterations slow down sharply as the step size adapts, and a dynamic
+    # minimum would leave the bar frozen for minutes.
+    return tqdm(total=total, desc="HMC", unit="it", leave=True, miniters=1, mininterval=0.5)
 
 
 def _tick(bar, phase: str, accept: float, divergences: Tensor) -> None:

@@ -43,6 +43,11 @@ class NetworkPosterior:
         self._plan = make_plan(template, self.stacked(torch.zeros(1, self.dimension, dtype=self.dtype, device=device)))
 
     @property
+    def floats_per_pair(self) -> int:
+        """Floats one (chain, point) pair holds during a forward pass."""
+        return self._plan.floats_per_pair
+
+    @property
     def dimension(self) -> int:
         return sum(self.sizes)
 

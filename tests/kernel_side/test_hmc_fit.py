@@ -112,6 +112,7 @@ def test_moons_posterior_is_accurate_and_mixes_in_function_space(moons, tmp_path
     (dict(map_steps=-1), "map_steps must be an integer >= 0; got -1"),
     (dict(map_lr=0.0), "map_lr must be a finite float > 0; got 0"),
     (dict(seed=1.5), "seed must be an integer; got 1.5"),
+    (dict(threads=0, map_steps=0, warmup=0, draws_per_chain=1, samples=1), "threads must be an integer >= 1; got 0"),
 ])
 def test_fit_hmc_rejects_bad_arguments(moons, kwargs, message):
     arguments = dict(module=jostle.mlp(2, 2, hidden=(3,)), data=moons)
