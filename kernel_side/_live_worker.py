@@ -19,7 +19,7 @@ __all__ = ["LiveWorker", "Outcome"]
 class Outcome:
     """What the worker hands to ``deliver``.
 
-    generation : int, the request's number (notices carry the latest request's number);
+    generation : int, the request's number (a notice carries the latest request's number when it was raised);
     result : the computation's return value, or None; error : the exception, or None;
     elapsed : seconds the computation took; kind : ``"result"`` or ``"notice"``.
     """
@@ -51,7 +51,7 @@ class LiveWorker:
         self._on_start = on_start
         self._cond = threading.Condition()
         self._pending: tuple[int, Any] | None = None
-        self._notices: list[BaseException] = []
+        self._notices: list[tuple[int, BaseException]] = []
         self._generation = 0
         self._busy = False
         self._closed = False
@@ -77,9 +77,13 @@ class LiveWorker:
             return self._generation
 
     def notify(self, error: BaseException) -> None:
-        """Deliver ``error`` as a notice (e.g. a rejected control value) from the worker thread."""
+        """Deliver ``error`` as a notice (e.g. a rejected control value) from the worker thread.
+
+        The notice carries the generation of the latest request at the time of the call, so a
+        later request's result can tell that it supersedes the notice.
+        """
         with self._cond:
-            self._notices.append(error)
+            self._notices.append((self._generation, error))
             self._cond.notify_all()
 
     def wait(self, timeout: float | None = None) -> bool:
@@ -110,8 +114,8 @@ class LiveWorker:
                 job, self._pending = self._pending, None
                 self._busy = True
             try:
-                for notice in notices:
-                    self._hand_over(Outcome(self._generation, None, notice, 0.0, kind="notice"))
+                for generation, notice in notices:
+                    self._hand_over(Outcome(generation, None, notice, 0.0, kind="notice"))
                 if job is not None:
                     self._run(*job)
             finally:

@@ -101,6 +101,10 @@ class LiveBox(w.VBox):
 
     @t.observe(*CONTROL_NAMES)
     def _on_control(self, change: Any) -> None:
+        # A rejected value inside hold_trait_notifications (set_state) ends as a change whose
+        # old and new are equal; it must not queue a view that would clear the error.
+        if change.old == change.new:
+            return
         self._mirror(self._controls, change.name)
         self._request()
 

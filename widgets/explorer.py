@@ -97,6 +97,8 @@ class Explorer(LiveBox):
 
     @t.observe("point", "layer")
     def _on_view_control(self, change: Any) -> None:
+        if change.old == change.new:  # a rejected value, see LiveBox._on_control
+            return
         self._mirror(self._map, change.name)
         self._request()
 

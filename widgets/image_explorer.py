@@ -84,6 +84,8 @@ class ImageExplorer(LiveBox):
 
     @t.observe("index")
     def _on_index(self, change: Any) -> None:
+        if change.old == change.new:  # a rejected value, see LiveBox._on_control
+            return
         self._mirror(self._strip, "selected", self.index)
         self._request()
 

@@ -21,7 +21,7 @@ def digits():
 def image_explorer(digits):
     ens = tiny_ensemble(members=4, in_features=64, classes=10, hidden=(8,), class_names=digits.classes)
     ex = ImageExplorer(ens, digits, strip=6, steps=4, budget=0.1)
-    assert ex.wait(20)
+    assert ex.wait(60)
     yield ex
     ex.close()
 
@@ -32,7 +32,7 @@ def test_image_explorer_shows_the_chosen_test_image(image_explorer, digits):
     np.testing.assert_allclose(strip, digits.x_test[:6].reshape(6, 8, 8).numpy(), rtol=1e-6)
     assert ex._strip.captions[0] == f"test image 0: class {digits.classes[int(digits.y_test[0])]}"
     ex._strip.set_state({"selected": 3})  # a click on the fourth thumbnail
-    assert ex.wait(20)
+    assert ex.wait(60)
     assert ex.index == 3
     np.testing.assert_allclose(from_wire(ex._panels.original), digits.x_test[3].reshape(8, 8).numpy(), rtol=1e-6)
     expected = ex._ens.predict(digits.x_test[3:4])
@@ -42,13 +42,13 @@ def test_image_explorer_shows_the_chosen_test_image(image_explorer, digits):
 def test_image_explorer_bad_index_and_budget_reach_the_status(image_explorer):
     ex = image_explorer
     ex._strip.set_state({"selected": 6})
-    assert ex.wait(20)
+    assert ex.wait(60)
     assert ex.status[0] == "error" and "index must be an integer in [0, 5]; got 6" in ex.status[1]
     assert ex.index == 0 and ex._strip.selected == 0
     ex.set_state({"budget": float("nan")})
-    assert ex.wait(20) and "budget must be a finite float >= 0; got nan" in ex.status[1]
+    assert ex.wait(60) and "budget must be a finite float >= 0; got nan" in ex.status[1]
     ex.set_state({"budget": 0.2, "index": 1})
-    assert ex.wait(20) and ex.status[0] == "idle" and ex.result.state.budget == 0.2
+    assert ex.wait(60) and ex.status[0] == "idle" and ex.result.state.budget == 0.2
 
 
 def test_image_explorer_refuses_data_without_images(moons, ens):
@@ -75,12 +75,12 @@ def test_comparison_shares_input_budget_and_clipped_sample_count(moons):
     comparison = Comparison([posterior, deterministic], moons, labels=["five samples", "one net"],
                             grid=8, steps=2, boundaries=2)
     try:
-        assert comparison.wait(20)
+        assert comparison.wait(60)
         first, second = comparison.explorers
         first._map.set_state({"point": [0.4, -0.3]})
         first.budget = 0.12
         first.samples = 4
-        assert comparison.wait(20)
+        assert comparison.wait(60)
         assert second.result.state.point == (0.4, -0.3) and second.result.state.budget == 0.12
         assert second.samples == 1 and first.samples == 4  # clipped to the deterministic net's S = 1
         np.testing.assert_allclose(second.result.before.probs,

@@ -101,3 +101,19 @@ def test_generations_count_requests():
     assert [worker.submit(k) for k in range(3)] == [1, 2, 3]
     assert worker.wait(5) and worker.generation == 3
     worker.close()
+
+
+def test_a_notice_carries_the_generation_current_when_it_was_raised():
+    gate = threading.Event()
+    got = Recorder()
+    worker = LiveWorker(lambda r: gate.wait(5) and r, got)
+    worker.submit("a")                      # generation 1, starts and blocks
+    time.sleep(0.05)
+    worker.notify(ValueError("rejected"))   # raised while generation 1 is the latest
+    worker.submit("b")                      # generation 2
+    gate.set()
+    assert worker.wait(5)
+    notices = [o for o in got.outcomes if o.kind == "notice"]
+    assert [o.generation for o in notices] == [1]
+    assert [o.generation for o in got.outcomes if o.kind == "result"] == [2]
+    worker.close()
