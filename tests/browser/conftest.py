@@ -8,10 +8,12 @@ import pytest
 
 from .harness import (
     Server, chromium_browser, free_port, jupyter_environment, lab_command, page, require_chromium,
-    start_server, voila_command, write_lab_settings,
+    shutdown_kernels, start_server, voila_command, write_lab_settings,
 )
 
 __all__ = ["chromium_browser", "page"]
+
+_RUNNING_LABS: list[Server] = []
 
 
 @pytest.fixture(scope="session")
@@ -35,8 +37,18 @@ def lab_server(jupyter_base, tmp_path_factory) -> Server:
         env=jupyter_environment(jupyter_base), log_path=jupyter_base / "lab.log",
         ready_url=f"{url}/api/status?token={token}", url=url, token=token, root=root,
     )
+    _RUNNING_LABS.append(server)
     yield server
+    _RUNNING_LABS.remove(server)
     server.stop()
+
+
+@pytest.fixture(scope="module", autouse=True)
+def _kernels_end_with_their_module():
+    """Each test module's notebooks lose their kernels when it ends, so none slows the next."""
+    yield
+    for lab in _RUNNING_LABS:
+        shutdown_kernels(lab)
 
 
 @pytest.fixture(scope="session")

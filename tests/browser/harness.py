@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import signal
 import socket
 import subprocess
@@ -32,7 +33,7 @@ ARTIFACTS = REPO_ROOT / "test-artifacts"
 KERNEL_NAME = "python3"
 SERVER_START_TIMEOUT_S = 90.0
 NOTEBOOK_RUN_TIMEOUT_S = 120.0
-WIDGET_TIMEOUT_S = 60.0
+WIDGET_TIMEOUT_S = 120.0
 
 
 # ---------------------------------------------------------------------------- environment
@@ -151,7 +152,7 @@ def start_server(name: str, command: list[str], cwd: Path, env: dict[str, str], 
     """
     log = open(log_path, "wb")
     process = subprocess.Popen(command, cwd=cwd, env=env, stdout=log, stderr=subprocess.STDOUT,
-                               stdin=subprocess.DEVNULL, start_new_session=True)
+                               stdin=subprocess.DEVNULL, start_new_session=True, preexec_fn=stop_with_parent)
     log.close()
     server = Server(name, process, url, log_path, token, root)
     try:
@@ -211,6 +212,19 @@ def stop_process_group(process: subprocess.Popen, timeout: float = 15.0) -> int 
         return process.wait(5)
     except subprocess.TimeoutExpired:
         return None
+
+
+def stop_with_parent() -> None:
+    """In the child before exec: on Linux, get SIGTERM if the test process dies.
+
+    A test run killed from outside (a timeout, Ctrl-C twice) skips fixture teardown; the
+    server then still shuts itself and its kernels down instead of lingering.
+    """
+    if sys.platform.startswith("linux"):
+        import ctypes
+
+        PR_SET_PDEATHSIG = 1
+        ctypes.CDLL(None, use_errno=True).prctl(PR_SET_PDEATHSIG, signal.SIGTERM)
 
 
 def _signal_group(pgid: int, sig: int) -> None:
@@ -325,40 +339,81 @@ def wait_until(page, expression: str, arg: Any = None, timeout: float = WIDGET_T
         raise AssertionError(f"timed out after {timeout:.0f} s waiting for {what or expression}{seen}") from None
 
 
-_NOTEBOOK_READY = """() => {
+# The notebook panel is found by its path, not as the current tab: the page may hold others.
+_FIND_PANEL = """(name) => {
   const app = window.jupyterapp;
-  const panel = app && app.shell.currentWidget;
-  return !!(panel && panel.context && panel.context.isReady && panel.sessionContext
-            && panel.sessionContext.session && panel.sessionContext.session.kernel);
+  if (!app) return null;
+  return Array.from(app.shell.widgets('main')).find(w => w.context && w.context.path === name) || null;
 }"""
 
-_NOTEBOOK_DONE = """() => {
-  const panel = window.jupyterapp.shell.currentWidget;
+_NOTEBOOK_READY = f"""(name) => {{
+  const panel = ({_FIND_PANEL})(name);
+  return !!(panel && panel.context.isReady && panel.sessionContext && panel.sessionContext.session
+            && panel.sessionContext.session.kernel);
+}}"""
+
+_RUN_ALL = f"""async (name) => {{
+  const panel = ({_FIND_PANEL})(name);
+  window.jupyterapp.shell.activateById(panel.id);
+  await window.jupyterapp.commands.execute('notebook:run-all-cells');
+  return true;
+}}"""
+
+_NOTEBOOK_DONE = f"""(name) => {{
+  const panel = ({_FIND_PANEL})(name);
+  if (!panel) return false;
   const kernel = panel.sessionContext.session && panel.sessionContext.session.kernel;
   const cells = panel.content.widgets.filter(c => c.model.type === 'code');
   const errors = [];
-  for (const cell of cells) {
-    for (const out of cell.model.outputs.toJSON()) {
+  for (const cell of cells) {{
+    for (const out of cell.model.outputs.toJSON()) {{
       if (out.output_type === 'error') errors.push(out.ename + ': ' + out.evalue + '\\n' + (out.traceback || []).join('\\n'));
-    }
-  }
-  if (errors.length) return {errors};
+    }}
+  }}
+  if (errors.length) return {{errors}};
   const done = cells.every(c => c.model.executionCount !== null);
-  return done && kernel && kernel.status === 'idle' ? {errors: []} : false;
-}"""
+  return done && kernel && kernel.status === 'idle' ? {{errors: []}} : false;
+}}"""
 
 
 def open_and_run(page, lab: Server, name: str, timeout: float = NOTEBOOK_RUN_TIMEOUT_S) -> None:
     """Open ``name`` (relative to the lab root) in JupyterLab, run every cell, wait until done.
 
-    Fails with the traceback if a cell raised.
+    JupyterLab's saved layout is dropped first, so the page opens this notebook alone
+    instead of reopening (and rerunning) what an earlier test left open. Fails with the
+    traceback if a cell raised.
     """
+    forget_workspace(lab)
     page.goto(f"{lab.url}/lab/tree/{name}?token={lab.token}", wait_until="domcontentloaded")
-    wait_until(page, _NOTEBOOK_READY, timeout=timeout, what=f"JupyterLab to open {name} with a kernel")
-    page.evaluate("() => window.jupyterapp.commands.execute('notebook:run-all-cells')")
-    result = wait_until(page, _NOTEBOOK_DONE, timeout=timeout, what=f"every cell of {name} to finish")
+    wait_until(page, _NOTEBOOK_READY, arg=name, timeout=timeout, what=f"JupyterLab to open {name} with a kernel")
+    page.evaluate(_RUN_ALL, name)
+    result = wait_until(page, _NOTEBOOK_DONE, arg=name, timeout=timeout, what=f"every cell of {name} to finish")
     if result["errors"]:
         raise AssertionError(f"a cell of {name} raised:\n" + "\n\n".join(result["errors"]))
+
+
+def forget_workspace(lab: Server) -> None:
+    """Delete JupyterLab's saved layouts, so the next page restores no earlier notebook."""
+    for workspace in _api(lab, "GET", "/lab/api/workspaces").get("workspaces", {}).get("ids", []):
+        _api(lab, "DELETE", f"/lab/api/workspaces/{workspace}")
+
+
+def shutdown_kernels(lab: Server) -> None:
+    """Shut down every kernel of ``lab``, so an idle or runaway notebook cannot slow later tests."""
+    for kernel in _api(lab, "GET", "/api/kernels") or []:
+        _api(lab, "DELETE", f"/api/kernels/{kernel['id']}")
+
+
+def _api(lab: Server, method: str, path: str) -> Any:
+    request = urllib.request.Request(f"{lab.url}{path}?token={lab.token}", method=method)
+    try:
+        with urllib.request.urlopen(request, timeout=30) as response:
+            body = response.read()
+    except urllib.error.HTTPError as err:
+        if err.code == 404:
+            return {}
+        raise
+    return json.loads(body) if body else {}
 
 
 def close_all_tabs(page) -> None:
@@ -385,3 +440,69 @@ def screenshot(target, name: str) -> Path:
     path = ARTIFACTS / f"{name}.png"
     target.screenshot(path=str(path))
     return path
+
+
+# ---------------------------------------------------------------------------- the jostle command
+START_TIMEOUT_S = SERVER_START_TIMEOUT_S
+STOP_TIMEOUT_S = 30.0
+
+
+def jostle_command() -> list[str]:
+    """The installed ``jostle`` entry point beside this interpreter (or ``python -m jostle.cli``)."""
+    script = Path(sys.executable).with_name("jostle")
+    return [str(script)] if script.is_file() else [sys.executable, "-m", "jostle.cli"]
+
+
+def port_closed(port: int) -> bool:
+    with socket.socket() as sock:
+        return sock.connect_ex(("127.0.0.1", port)) != 0
+
+
+class JostleCommand:
+    """A ``jostle`` subcommand running as a subprocess in its own group, output in a log file."""
+
+    def __init__(self, args: list[str], base: Path):
+        self.log_path = base / f"cli-{time.monotonic_ns()}.log"
+        self.runtime = base / "runtime"
+        with open(self.log_path, "wb") as log:
+            self.process = subprocess.Popen(
+                jostle_command() + args, env=jupyter_environment(base), stdout=log,
+                stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL, start_new_session=True,
+                preexec_fn=stop_with_parent,
+            )
+
+    def log(self) -> str:
+        return self.log_path.read_text(encoding="utf-8", errors="replace")
+
+    def wait_for_line(self, pattern: str, timeout: float = START_TIMEOUT_S) -> re.Match:
+        deadline = time.monotonic() + timeout
+        while time.monotonic() < deadline:
+            match = re.search(pattern, self.log())
+            if match:
+                return match
+            if self.process.poll() is not None:
+                break
+            time.sleep(0.2)
+        raise AssertionError(f"no line matching {pattern!r} within {timeout:.0f} s; output:\n{self.log()[-3000:]}")
+
+    def stop_with(self, sig: int) -> int:
+        self.process.send_signal(sig)
+        try:
+            return self.process.wait(STOP_TIMEOUT_S)
+        except subprocess.TimeoutExpired:
+            stop_process_group(self.process)
+            raise AssertionError(f"still running {STOP_TIMEOUT_S:.0f} s after signal {sig}:\n{self.log()[-3000:]}")
+
+    def kernel_processes(self) -> list[list[str]]:
+        """Command lines of live kernels whose connection file lies in this run's runtime folder."""
+        found = []
+        for entry in Path("/proc").iterdir():
+            if not entry.name.isdigit():
+                continue
+            try:
+                argv = (entry / "cmdline").read_bytes().decode(errors="replace").split("\0")
+            except OSError:
+                continue
+            if "ipykernel_launcher" in argv and any(str(self.runtime) in a for a in argv):
+                found.append(argv)
+        return found

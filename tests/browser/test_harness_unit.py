@@ -6,6 +6,7 @@ import socket
 import subprocess
 import sys
 import time
+from pathlib import Path
 
 import pytest
 
@@ -66,3 +67,35 @@ def test_stopping_a_server_ends_its_whole_process_group():
         while time.monotonic() < deadline:
             os.killpg(pgid, 0)  # raises once no process of the group is left
             time.sleep(0.1)
+
+
+def test_a_server_outlives_no_killed_test_process(tmp_path):
+    # A stand-in for the test process starts a long "server" the harness's way, then is
+    # killed outright (no teardown runs); the server must get SIGTERM and end.
+    pid_file = tmp_path / "server.pid"
+    script = (
+        "import subprocess, sys, time; sys.path.insert(0, sys.argv[1]); "
+        "from tests.browser.harness import stop_with_parent; "
+        "p = subprocess.Popen(['sleep', '120'], start_new_session=True, preexec_fn=stop_with_parent); "
+        "open(sys.argv[2], 'w').write(str(p.pid)); time.sleep(120)"
+    )
+    runner = subprocess.Popen([sys.executable, "-c", script, str(harness.REPO_ROOT), str(pid_file)])
+    deadline = time.monotonic() + 30
+    while not pid_file.exists() or not pid_file.read_text():
+        assert time.monotonic() < deadline, "the stand-in never started its server"
+        time.sleep(0.1)
+    server_pid = int(pid_file.read_text())
+    runner.kill()
+    runner.wait(10)
+    deadline = time.monotonic() + 10
+    while _alive(server_pid) and time.monotonic() < deadline:
+        time.sleep(0.1)
+    assert not _alive(server_pid), "the server outlived the killed test process"
+
+
+def _alive(pid: int) -> bool:
+    try:
+        state = (Path("/proc") / str(pid) / "stat").read_text().split(")")[-1].split()[0]
+    except OSError:
+        return False
+    return state != "Z"  # a zombie has exited and waits to be reaped

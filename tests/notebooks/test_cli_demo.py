@@ -1,7 +1,8 @@
 """``jostle demo`` and ``jostle present``: copying the tour, serving it, stopping cleanly.
 
 The servers run as real subprocesses through the installed ``jostle`` entry point and are
-checked over HTTP on 127.0.0.1; ``present`` is also checked in headless Chromium.
+checked over HTTP on 127.0.0.1; ``present`` is checked in headless Chromium in
+tests/browser/test_cli_present_browser.py (beside the session's one browser).
 """
 from __future__ import annotations
 
@@ -9,7 +10,6 @@ import json
 import re
 import signal
 import socket
-import subprocess
 import sys
 import time
 from importlib import resources
@@ -19,20 +19,7 @@ import pytest
 
 import jostle.cli
 from jostle.cli_demo import FIRST_TOUR, copy_demo_notebooks
-from tests.browser.harness import (
-    chromium_browser, free_port, jupyter_environment, page, stop_process_group, wait_for_http, wait_until,
-    write_notebook, screenshot,
-)
-
-__all__ = ["chromium_browser", "page"]
-
-START_TIMEOUT_S = 90.0
-STOP_TIMEOUT_S = 30.0
-
-
-def _jostle_command() -> list[str]:
-    script = Path(sys.executable).with_name("jostle")
-    return [str(script)] if script.is_file() else [sys.executable, "-m", "jostle.cli"]
+from tests.browser.harness import START_TIMEOUT_S, JostleCommand, free_port, port_closed, wait_for_http, write_notebook
 
 
 def _shipped(name: str) -> bytes:
@@ -103,60 +90,6 @@ def test_port_in_use_is_refused(tmp_path, capsys):
 
 
 # ---------------------------------------------------------------------------- live servers
-class _Cli:
-    """A ``jostle`` subcommand running as a subprocess, with its output in a log file."""
-
-    def __init__(self, args: list[str], base: Path):
-        self.log_path = base / f"cli-{time.monotonic_ns()}.log"
-        self.runtime = base / "runtime"
-        with open(self.log_path, "wb") as log:
-            self.process = subprocess.Popen(
-                _jostle_command() + args, env=jupyter_environment(base), stdout=log,
-                stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL, start_new_session=True,
-            )
-
-    def log(self) -> str:
-        return self.log_path.read_text(encoding="utf-8", errors="replace")
-
-    def wait_for_line(self, pattern: str, timeout: float = START_TIMEOUT_S) -> re.Match:
-        deadline = time.monotonic() + timeout
-        while time.monotonic() < deadline:
-            match = re.search(pattern, self.log())
-            if match:
-                return match
-            if self.process.poll() is not None:
-                break
-            time.sleep(0.2)
-        raise AssertionError(f"no line matching {pattern!r} within {timeout:.0f} s; output:\n{self.log()[-3000:]}")
-
-    def stop_with(self, sig: int) -> int:
-        self.process.send_signal(sig)
-        try:
-            return self.process.wait(STOP_TIMEOUT_S)
-        except subprocess.TimeoutExpired:
-            stop_process_group(self.process)
-            raise AssertionError(f"still running {STOP_TIMEOUT_S:.0f} s after signal {sig}:\n{self.log()[-3000:]}")
-
-    def kernel_processes(self) -> list[list[str]]:
-        """Command lines of live kernels whose connection file lies in this run's runtime folder."""
-        found = []
-        for entry in Path("/proc").iterdir():
-            if not entry.name.isdigit():
-                continue
-            try:
-                argv = (entry / "cmdline").read_bytes().decode(errors="replace").split("\0")
-            except OSError:
-                continue
-            if "ipykernel_launcher" in argv and any(str(self.runtime) in a for a in argv):
-                found.append(argv)
-        return found
-
-
-def _port_closed(port: int) -> bool:
-    with socket.socket() as sock:
-        return sock.connect_ex(("127.0.0.1", port)) != 0
-
-
 def _start_kernel_for(url: str, token: str, path: str) -> None:
     import urllib.request
 
@@ -171,7 +104,7 @@ def _start_kernel_for(url: str, token: str, path: str) -> None:
 def test_demo_serves_the_first_tour_and_stops_cleanly_on_sigint(tmp_path):
     port = free_port()
     work = tmp_path / "demo"
-    cli = _Cli(["demo", "--no-browser", "--port", str(port), "--dir", str(work)], tmp_path)
+    cli = JostleCommand(["demo", "--no-browser", "--port", str(port), "--dir", str(work)], tmp_path)
     try:
         opened = cli.wait_for_line(rf"open (http://127\.0\.0\.1:{port})/lab/tree/{FIRST_TOUR}\?token=([0-9a-f]+)")
         url, token = opened.group(1), opened.group(2)
@@ -193,7 +126,7 @@ def test_demo_serves_the_first_tour_and_stops_cleanly_on_sigint(tmp_path):
     finally:
         code = cli.stop_with(signal.SIGINT)
     assert code == 0, cli.log()[-3000:]
-    assert _port_closed(port)
+    assert port_closed(port)
     deadline = time.monotonic() + 10
     while cli.kernel_processes() and time.monotonic() < deadline:
         time.sleep(0.2)
@@ -210,7 +143,7 @@ def test_second_demo_run_keeps_the_users_edited_copy_and_stops_on_terminate(tmp_
     (work / FIRST_TOUR).write_text(edited, encoding="utf-8")
 
     port = free_port()
-    cli = _Cli(["demo", "--no-browser", "--port", str(port), "--dir", str(work)], tmp_path)
+    cli = JostleCommand(["demo", "--no-browser", "--port", str(port), "--dir", str(work)], tmp_path)
     try:
         opened = cli.wait_for_line(rf"open (http://127\.0\.0\.1:{port})\S+token=([0-9a-f]+)")
         wait_for_http(f"{opened.group(1)}/api/status?token={opened.group(2)}", START_TIMEOUT_S, cli.process,
@@ -220,43 +153,4 @@ def test_second_demo_run_keeps_the_users_edited_copy_and_stops_on_terminate(tmp_
     assert code == 0, cli.log()[-3000:]
     assert f"kept your edited copy of {FIRST_TOUR}" in cli.log()
     assert (work / FIRST_TOUR).read_text(encoding="utf-8") == edited
-    assert _port_closed(port)
-
-
-PRESENTED_CELLS = [
-    ("markdown", "# presented page"),
-    '''import ipywidgets as widgets
-budget = widgets.FloatSlider(value=0.1, min=0.0, max=0.5, step=0.05, description="budget")
-budget.add_class("shown-budget")
-echo = widgets.Label(value="kernel saw 0.10")
-echo.add_class("shown-echo")
-budget.observe(lambda change: setattr(echo, "value", f"kernel saw {change['new']:.2f}"), names="value")
-widgets.VBox([budget, echo])''',
-]
-
-
-@pytest.mark.slow
-@pytest.mark.browser
-def test_present_serves_the_widgets_without_code(tmp_path, page):
-    notebook = write_notebook(tmp_path / "shown.ipynb", PRESENTED_CELLS)
-    port = free_port()
-    cli = _Cli(["present", str(notebook), "--no-browser", "--port", str(port)], tmp_path)
-    try:
-        cli.wait_for_line(rf"shown\.ipynb at http://127\.0\.0\.1:{port}/")
-        wait_for_http(f"http://127.0.0.1:{port}/voila/static/", START_TIMEOUT_S, cli.process, "jostle present",
-                      cli.log, any_status=True)
-        page.goto(f"http://127.0.0.1:{port}/", wait_until="domcontentloaded")
-        handle = page.locator(".shown-budget .noUi-handle").first
-        handle.wait_for(timeout=90_000)
-        handle.focus()
-        page.keyboard.press("ArrowRight")
-        wait_until(page, "() => { const l = document.querySelector('.shown-echo');"
-                         " return l && l.textContent.includes('kernel saw 0.15'); }",
-                   timeout=30, what="the kernel's echo of the budget slider (0.15)")
-        assert "presented page" in page.inner_text("body")
-        assert "budget.observe" not in page.inner_text("body")
-        screenshot(page, "cli-present")
-    finally:
-        code = cli.stop_with(signal.SIGTERM)
-    assert code == 0, cli.log()[-3000:]
-    assert _port_closed(port)
+    assert port_closed(port)
