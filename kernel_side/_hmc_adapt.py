@@ -23,7 +23,6 @@ DA_KAPPA = 0.75
 _INIT_BUFFER = 75
 _TERM_BUFFER = 50
 _BASE_WINDOW = 25
-_MIN_WARMUP_FOR_METRIC = 20
 
 
 class DualAveraging(NamedTuple):
@@ -59,19 +58,15 @@ def warmup_windows(warmup: int) -> list[tuple[int, int]]:
 
     Follows the expanding-window layout: 75 fast iterations, slow windows of 25, 50,
     100, ... and 50 fast iterations at the end; the last slow window absorbs any
-    remainder. Short warm-ups shrink the buffers to 15% / 10% of the warm-up, and a
-    warm-up under 20 iterations adapts the step size only.
+    remainder. A warm-up shorter than 150 iterations adapts the step size only: each
+    metric update restarts dual averaging, and its averaged step needs the full final
+    buffer to settle (after a handful of iterations it can be ten times too large).
     """
-    if warmup < _MIN_WARMUP_FOR_METRIC:
+    if warmup < _INIT_BUFFER + _BASE_WINDOW + _TERM_BUFFER:
         return []
-    init, term, base = _INIT_BUFFER, _TERM_BUFFER, _BASE_WINDOW
-    if init + term + base > warmup:
-        init = int(0.15 * warmup)
-        term = int(0.1 * warmup)
-        base = warmup - init - term
     windows = []
-    start, size = init, base
-    last = warmup - term
+    start, size = _INIT_BUFFER, _BASE_WINDOW
+    last = warmup - _TERM_BUFFER
     while start < last:
         end = start + size
         if end + 2 * size > last:

@@ -35,10 +35,10 @@ def run_chains(
             f"initial must give a finite log density and gradient for every chain; chains {bad} do not"
         )
     run = _Run(log_density, state, settings, generator, num_samples)
-    run.start_step(step_size)
     bar = _progress_bar(progress, warmup + num_samples)
     interrupted = False
     try:
+        run.start_step(step_size)
         run.warm_up(warmup, adapt.warmup_windows(warmup) if adapt_mass else [], bar)
         run.sample(bar)
     except KeyboardInterrupt:

@@ -43,7 +43,7 @@ def fit_hmc(
     map_lr: float = 0.01,
     seed: int = 0,
     device: torch.device | str | None = None,
-    progress: bool = False,
+    progress: bool = True,
     threads: Any = "auto",
 ) -> Ensemble:
     """Sample a network's posterior with HMC and keep ``samples`` draws as an ensemble.

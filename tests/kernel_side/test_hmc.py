@@ -282,3 +282,13 @@ def test_sample_hmc_rejects_bad_arguments(kwargs, message):
     arguments.update(kwargs)
     with pytest.raises(ValueError, match=message):
         jostle.sample_hmc(**arguments)
+
+
+def test_warmup_windows_expand_between_fast_buffers():
+    # Common practice (expanding windows): 75 fast iterations, slow windows of 25, 50, 100, ...
+    # the last one stretched to leave 50 fast iterations at the end.
+    from jostle._hmc_adapt import warmup_windows
+
+    assert warmup_windows(1000) == [(75, 100), (100, 150), (150, 250), (250, 450), (450, 950)]
+    assert warmup_windows(200) == [(75, 100), (100, 150)]
+    assert warmup_windows(149) == []

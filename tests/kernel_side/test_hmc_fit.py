@@ -125,3 +125,20 @@ def test_fit_hmc_refuses_a_module_with_nothing_to_sample(moons):
     net = jostle.mlp(2, 2, hidden=(3,)).requires_grad_(False)
     with pytest.raises(ValueError, match="module must have at least one parameter with requires_grad=True; got none"):
         jostle.fit_hmc(net, moons)
+
+
+def test_interrupt_before_the_first_draw_is_passed_on(moons, monkeypatch):
+    calls = {"n": 0}
+    original = NetworkPosterior.__call__
+
+    def interrupted_after_three(self, flat):
+        calls["n"] += 1
+        if calls["n"] > 3:
+            raise KeyboardInterrupt
+        return original(self, flat)
+
+    monkeypatch.setattr(NetworkPosterior, "__call__", interrupted_after_three)
+    with pytest.warns(jostle.SamplingInterruptedWarning, match="returning the 0 of 5 draws"):
+        with pytest.raises(KeyboardInterrupt, match="sampling was interrupted before the first draw"):
+            jostle.fit_hmc(jostle.mlp(2, 2, hidden=(3,)), moons, samples=2, chains=2, warmup=10,
+                           draws_per_chain=5, map_steps=0)
