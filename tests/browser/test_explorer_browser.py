@@ -62,7 +62,7 @@ def bounds():
 
 def test_explorer_shows_every_panel(lab_explorer):
     page, errors = lab_explorer
-    for testid in ("explorer-map", "map-legend", "layer-select", "budget-slider", "samples-slider",
+    for testid in ("explorer", "explorer-map", "map-legend", "layer-select", "budget-slider", "samples-slider",
                    "steps-slider", "method-select", "norm-select", "objective-select", "predictive-chart",
                    "spread-chart", "uncertainty-text", "path-chart", "fade-chart", "status-line", "caution-note"):
         assert page.get_by_test_id(testid).count() >= 1, f"data-testid={testid!r} is missing"
