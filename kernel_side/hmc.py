@@ -65,7 +65,7 @@ class HMCDraws:
     divergences : Tensor of shape (C,)
         Divergent transitions after warm-up; ``warmup_divergences`` counts those before.
     step_size : Tensor of shape (C,)
-        Adapted step size of each chain (before jitter).
+        The adapted step size (before jitter), one value shared by every chain.
     inverse_mass : Tensor of shape (C, P)
         Adapted diagonal inverse metric of each chain.
     rhat, ess, ess_tail : Tensor of shape (P,)
@@ -145,12 +145,14 @@ def sample_hmc(
     jitter : float in [0, 1)
         Each iteration multiplies the step size by a uniform draw from [1 - jitter, 1 + jitter].
     target_accept : float in (0, 1)
-        Mean acceptance probability that dual averaging aims for.
+        Mean acceptance probability that dual averaging aims for. The chains share one
+        step size, adapted on their pooled acceptance; each has its own metric.
     step_size : float, optional
         Initial step size; default found by the doubling heuristic (Hoffman & Gelman 2014,
         Algorithm 4). With ``warmup=0`` it is used as is.
     adapt_mass : bool
-        Estimate a diagonal inverse metric in expanding warm-up windows (else identity).
+        Estimate each chain's diagonal inverse metric in expanding warm-up windows (else
+        identity). Needs ``warmup >= 150``; shorter warm-ups adapt the step size only.
     divergence_threshold : float
         An energy error above this (or a non-finite one) counts as a divergence.
     diagnostics : bool

@@ -91,6 +91,14 @@ def fit_hmc(
         ``diagnostics`` (acceptance, divergences, step sizes, R-hat and ESS of the
         function-space quantities, and the list of failed checks).
 
+    Raises
+    ------
+    ValueError
+        On a malformed argument.
+    KeyboardInterrupt
+        When interrupted before the first post-warm-up draw (later interrupts return the
+        draws so far, with a warning).
+
     Warns
     -----
     ConvergenceWarning

@@ -136,6 +136,7 @@ def bayesian_linear_regression():
     return log_density, mean, covariance
 
 
+@pytest.mark.slow
 def test_hmc_recovers_conjugate_linear_regression_posterior():
     log_density, mean, covariance = bayesian_linear_regression()
     draws = jostle.sample_hmc(log_density, torch.zeros(4, 3, dtype=F64), num_samples=800, warmup=200, seed=0)
