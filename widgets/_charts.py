@@ -47,7 +47,7 @@ def predictive_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
         with xs.hold_sync(), x_axis.hold_sync():
             xs.min, xs.max = -0.6, len(classes) - 0.4
             x_axis.tick_values = positions
-            x_axis.tick_labels = {str(int(c)): str(name) for c, name in zip(positions, classes)}
+            x_axis.tick_labels = {str(int(c)): _short(name) for c, name in zip(positions, classes)}
         width = float(max(3, min(_BAR_WIDTH, 100 // max(1, len(classes)))))
         for k, point in enumerate((view.before, view.after)):
             at = positions + (2 * k - 1) * _OFFSET
@@ -100,7 +100,9 @@ def spread_chart() -> tuple[bq.Figure, w.Label, Callable[[Any], None]]:
 def path_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
     """Loss (left axis) and the attacked label's probability (right axis) along the attack path."""
     xs = bq.LinearScale(allow_padding=False)
-    loss_scale, prob_scale = bq.LinearScale(), bq.LinearScale(min=0.0, max=1.0, allow_padding=False)
+    # fixed domains: a flat loss (a converged or hopeless attack) would give bqplot an empty one
+    loss_scale = bq.LinearScale(min=0.0, max=1.0, allow_padding=False)
+    prob_scale = bq.LinearScale(min=0.0, max=1.05, allow_padding=False)
     loss = bq.Lines(x=[0.0], y=[0.0], scales={"x": xs, "y": loss_scale}, colors=[ATTACK_COLOUR], stroke_width=2)
     prob = bq.Lines(x=[0.0], y=[0.0], scales={"x": xs, "y": prob_scale}, colors=[INK], line_style="dashed",
                     stroke_width=1.5)
@@ -116,6 +118,10 @@ def path_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
         if attack is None:
             return
         steps = np.arange(attack.loss.shape[0], dtype=float)
+        low, high = min(0.0, float(np.min(attack.loss))), float(np.max(attack.loss))
+        span = high - low if high - low > 1e-9 else max(abs(high), 1e-3)
+        with loss_scale.hold_sync():
+            loss_scale.min, loss_scale.max = low, low + 1.05 * span
         with loss.hold_sync():
             loss.x, loss.y = steps, attack.loss
         with prob.hold_sync():
@@ -163,6 +169,12 @@ def fade_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
         x_axis.tick_values = counts[np.unique(np.round(np.linspace(0, len(counts) - 1, min(4, len(counts)))).astype(int))]
 
     return figure, update
+
+
+def _short(name: str, limit: int = 12) -> str:
+    """A tick label short enough not to run into its neighbours (the legend shows it whole)."""
+    text = str(name)
+    return text if len(text) <= limit else text[: limit - 1] + "\u2026"
 
 
 def _split(name: str, point: Any) -> str:
