@@ -44,11 +44,13 @@ function render({ model, el }) {
     if (control.kind === "range") {
       input = document.createElement("input");
       input.type = "range";
+      // A comparison spans its largest ensemble; a smaller one says what it really uses ("1 of 1").
+      const shown = (v) => (control.key === "samples" && model.get("samples_note")) || control.format(v);
       const sync = () => {
         input.min = String(control.min); input.max = String(model.get(control.max));
         input.step = String(control.step(model));
         const v = model.get(control.key);
-        input.value = String(v); input.dataset.value = String(v); output.textContent = control.format(v);
+        input.value = String(v); input.dataset.value = String(v); output.textContent = shown(v);
       };
       input.addEventListener("input", () => {
         const v = Number(input.value);
@@ -57,7 +59,8 @@ function render({ model, el }) {
         model.save_changes();
       });
       sync();
-      const events = `change:${control.key} change:${control.max}`;
+      if (control.key === "samples") output.dataset.testid = "samples-note";
+      const events = `change:${control.key} change:${control.max}` + (control.key === "samples" ? " change:samples_note" : "");
       model.on(events, sync); listeners.push([events, sync]);
     } else {
       input = document.createElement("select");

@@ -5,7 +5,8 @@ into its marks. Class names reach bqplot only as tick labels, which it draws as 
 """
 from __future__ import annotations
 
-from typing import Any, Callable
+import math
+from typing import Any, Callable, NamedTuple
 
 import bqplot as bq
 import ipywidgets as w
@@ -15,13 +16,18 @@ from ._palette import ATTACK_COLOUR, INPUT_COLOUR
 
 INK = "var(--jp-ui-font-color1, #333333)"
 MUTED = "var(--jp-ui-font-color2, #777777)"
-_MARGIN = dict(top=28, bottom=40, left=52, right=48)
+# The title sits in the top margin, centred half-way up it: 40 px leaves a 12 px title clear
+# of the plot area and of the top tick label.
+_MARGIN = dict(top=40, bottom=40, left=56, right=52)
+_TITLE_STYLE = {"font-size": "12px"}
+PROBABILITY_TICKS = np.array([0.0, 0.25, 0.5, 0.75, 1.0])
 _BAR_WIDTH = 12
 _OFFSET = 0.18
 
 
 def _figure(testid: str, title: str, marks: list, axes: list, height: str = "210px") -> bq.Figure:
     figure = bq.Figure(marks=marks, axes=axes, title=title, fig_margin=dict(_MARGIN),
+                       title_style=dict(_TITLE_STYLE),
                        layout=w.Layout(width="100%", min_width="240px", height=height),
                        animation_duration=0)
     figure.add_class(f"jostle-tid-{testid}")
@@ -38,7 +44,8 @@ def predictive_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
                 for _ in range(2)]
     x_axis = bq.Axis(scale=xs, tick_values=np.array([0, 1]), tick_labels={"0": "0", "1": "1"},
                      grid_lines="none", label="class (whiskers: 5-95% of members)")
-    y_axis = bq.Axis(scale=ys, side="left", label="probability", tick_format=".1f", num_ticks=5)
+    y_axis = bq.Axis(scale=ys, side="left", label="probability", tick_format=".2f",
+                     tick_values=PROBABILITY_TICKS)
     figure = _figure("predictive-chart", "input (left), attacked (right)", bars + whiskers, [x_axis, y_axis])
 
     def update(view: Any) -> None:
@@ -47,7 +54,8 @@ def predictive_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
         with xs.hold_sync(), x_axis.hold_sync():
             xs.min, xs.max = -0.6, len(classes) - 0.4
             x_axis.tick_values = positions
-            x_axis.tick_labels = {str(int(c)): _short(name) for c, name in zip(positions, classes)}
+            limit = tick_label_limit(len(classes))
+            x_axis.tick_labels = {str(int(c)): _short(name, limit) for c, name in zip(positions, classes)}
         width = float(max(3, min(_BAR_WIDTH, 100 // max(1, len(classes)))))
         for k, point in enumerate((view.before, view.after)):
             at = positions + (2 * k - 1) * _OFFSET
@@ -69,14 +77,15 @@ def predictive_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
 
 def spread_chart() -> tuple[bq.Figure, w.Label, Callable[[Any], None]]:
     """Histogram over members of the predicted class's probability, with the uncertainty split."""
-    xs, ys = bq.LinearScale(min=0.0, max=1.0, allow_padding=False), bq.LinearScale(min=0.0, allow_padding=False)
+    xs = bq.LinearScale(min=0.0, max=1.0, allow_padding=False)
+    ys = bq.LinearScale(min=0.0, max=1.0, allow_padding=False)
     scales = {"x": xs, "y": ys}
     bars = [bq.Lines(x=[0.0, 1.0], y=[0.0, 0.0], scales=scales, colors=[colour], fill="bottom",
                      fill_colors=[colour], fill_opacities=[0.45], stroke_width=1.5, line_style=style)
             for colour, style in ((INPUT_COLOUR, "solid"), (ATTACK_COLOUR, "dashed"))]
-    x_axis = bq.Axis(scale=xs, label="p(predicted class): input grey, attacked dashed", tick_format=".1f",
-                     num_ticks=5)
-    y_axis = bq.Axis(scale=ys, side="left", label="members", tick_format="d", num_ticks=4)
+    x_axis = bq.Axis(scale=xs, label="p(predicted class): input grey, attacked dashed", tick_format=".2f",
+                     tick_values=PROBABILITY_TICKS)
+    y_axis = bq.Axis(scale=ys, side="left", label="members", tick_format="d", tick_values=np.array([0, 1]))
     figure = _figure("spread-chart", "spread over members", bars, [x_axis, y_axis])
     lines = [w.Label(""), w.Label("")]
     for line in lines:
@@ -86,6 +95,12 @@ def spread_chart() -> tuple[bq.Figure, w.Label, Callable[[Any], None]]:
 
     def update(view: Any) -> None:
         spread = view.spread
+        shown = [c for c in (spread.before, spread.after) if c is not None]
+        # 0..S members, the same for input and attacked and across updates, so bars compare
+        top, ticks = count_axis(max((float(np.sum(c)) for c in shown), default=0.0))
+        with ys.hold_sync(), y_axis.hold_sync():
+            ys.min, ys.max = 0.0, top
+            y_axis.tick_values = ticks
         for k, counts in enumerate((spread.before, spread.after)):
             with bars[k].hold_sync():
                 bars[k].visible = counts is not None
@@ -99,16 +114,20 @@ def spread_chart() -> tuple[bq.Figure, w.Label, Callable[[Any], None]]:
 
 def path_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
     """Loss (left axis) and the attacked label's probability (right axis) along the attack path."""
-    xs = bq.LinearScale(allow_padding=False)
-    # fixed domains: a flat loss (a converged or hopeless attack) would give bqplot an empty one
-    loss_scale = bq.LinearScale(min=0.0, max=1.0, allow_padding=False)
-    prob_scale = bq.LinearScale(min=0.0, max=1.05, allow_padding=False)
+    xs = bq.LinearScale(min=0.0, max=1.0, allow_padding=False)
+    # Every domain and tick list is set here, never guessed by bqplot: a flat or non-finite
+    # loss would otherwise leave it an empty tick list, whose guessed format is ".undefinedg".
+    loss_scale = bq.LinearScale(min=-0.05, max=1.0, allow_padding=False)
+    prob_scale = bq.LinearScale(min=0.0, max=1.0, allow_padding=False)
     loss = bq.Lines(x=[0.0], y=[0.0], scales={"x": xs, "y": loss_scale}, colors=[ATTACK_COLOUR], stroke_width=2)
     prob = bq.Lines(x=[0.0], y=[0.0], scales={"x": xs, "y": prob_scale}, colors=[INK], line_style="dashed",
                     stroke_width=1.5)
-    axes = [bq.Axis(scale=xs, label="attack step", tick_format="d", num_ticks=5),
-            bq.Axis(scale=loss_scale, side="left", label="loss (solid)", num_ticks=4),
-            bq.Axis(scale=prob_scale, side="right", label="p(label) (dashed)", tick_format=".1f", num_ticks=5)]
+    step_axis = bq.Axis(scale=xs, label="attack step", tick_format="d", tick_values=np.array([0, 1]))
+    loss_axis = bq.Axis(scale=loss_scale, side="left", label="loss (solid)", tick_format=".2f",
+                        tick_values=np.array([0.0, 0.5, 1.0]))
+    axes = [step_axis, loss_axis,
+            bq.Axis(scale=prob_scale, side="right", label="p(label) (dashed)", tick_format=".2f",
+                    tick_values=PROBABILITY_TICKS)]
     figure = _figure("path-chart", "along the attack path", [loss, prob], axes)
 
     def update(view: Any) -> None:
@@ -118,14 +137,18 @@ def path_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
         if attack is None:
             return
         steps = np.arange(attack.loss.shape[0], dtype=float)
-        low, high = min(0.0, float(np.min(attack.loss))), float(np.max(attack.loss))
-        span = high - low if high - low > 1e-9 else max(abs(high), 1e-3)
-        with loss_scale.hold_sync():
-            loss_scale.min, loss_scale.max = low, low + 1.05 * span
+        axis = loss_axis_for(attack.loss)
+        last = max(1.0, float(steps[-1]) if steps.size else 1.0)
+        with xs.hold_sync(), step_axis.hold_sync():
+            xs.min, xs.max = 0.0, last
+            step_axis.tick_values = np.unique(np.round(np.linspace(0.0, last, min(5, int(last) + 1))))
+        with loss_scale.hold_sync(), loss_axis.hold_sync():
+            loss_scale.min, loss_scale.max = axis.low, axis.high
+            loss_axis.tick_values, loss_axis.tick_format = axis.ticks, axis.tick_format
         with loss.hold_sync():
-            loss.x, loss.y = steps, attack.loss
+            loss.x, loss.y = steps, _finite_or_nan(attack.loss)
         with prob.hold_sync():
-            prob.x, prob.y = steps, attack.label_prob
+            prob.x, prob.y = steps, np.clip(_finite_or_nan(attack.label_prob), 0.0, 1.0)
 
     return figure, update
 
@@ -169,6 +192,62 @@ def fade_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
         x_axis.tick_values = counts[np.unique(np.round(np.linspace(0, len(counts) - 1, min(4, len(counts)))).astype(int))]
 
     return figure, update
+
+
+class LossAxis(NamedTuple):
+    """Domain and ticks of the path chart's loss axis (all finite; ``ticks`` within the domain)."""
+
+    low: float
+    high: float
+    ticks: np.ndarray
+    tick_format: str
+
+
+def loss_axis_for(loss: Any) -> LossAxis:
+    """A loss axis that always shows the line: from 0 (or the least loss) to a little above the most.
+
+    A flat loss (0 at a confidently classified point, or a converged attack) gets a span of
+    its own size (1 when it is 0), and the bottom is padded by 5% so a line along 0 stays
+    above the x axis. Non-finite values are left out; if none are finite the axis is 0..1.
+    """
+    values = np.asarray(loss, dtype=np.float64).ravel()
+    values = values[np.isfinite(values)]
+    low = min(0.0, float(values.min())) if values.size else 0.0
+    high = float(values.max()) if values.size else 1.0
+    span = high - low
+    if span <= 1e-12 * max(1.0, abs(high)):
+        span = abs(high) if abs(high) > 1e-12 else 1.0
+        high = low + span
+    step = _nice_step(span / 3.0)
+    ticks = np.arange(math.floor(low / step), math.floor(high / step) + 1) * step
+    ticks = ticks[(ticks >= low - 1e-9 * span) & (ticks <= high + 1e-9 * span)]
+    fmt = ".0f" if step >= 1 else (f".{min(6, -math.floor(math.log10(step)))}f" if step >= 1e-3 else ".0e")
+    return LossAxis(low - 0.05 * span, high + 0.08 * span, ticks, fmt)
+
+
+def count_axis(most: float) -> tuple[float, np.ndarray]:
+    """Top of a member-count axis and its integer ticks, all >= 0 (at least 0..1)."""
+    top = max(1.0, float(math.ceil(most)))
+    step = max(1.0, _nice_step(top / 4.0))
+    step = float(math.ceil(step))
+    return top, np.arange(0.0, top + 0.5, step)
+
+
+def tick_label_limit(n_classes: int) -> int:
+    """Characters a class-name tick label may take so neighbours do not run together."""
+    return max(4, min(12, 48 // max(1, n_classes)))
+
+
+def _nice_step(raw: float) -> float:
+    """1, 2 or 5 times a power of ten, the least not below ``raw`` (common practice for axis ticks)."""
+    power = 10.0 ** math.floor(math.log10(raw))
+    return next(m * power for m in (1.0, 2.0, 5.0, 10.0) if m * power >= raw * (1 - 1e-9))
+
+
+def _finite_or_nan(values: Any) -> np.ndarray:
+    out = np.asarray(values, dtype=np.float64).copy()
+    out[~np.isfinite(out)] = np.nan
+    return out
 
 
 def _short(name: str, limit: int = 12) -> str:

@@ -6,16 +6,22 @@ from typing import Any, Sequence
 import ipywidgets as w
 import traitlets
 
+from jostle._checks import check_int
+
 from .explorer import Explorer
 
-SHARED = ("point", "budget", "samples", "method", "norm", "steps", "objective", "layer")
+SHARED = ("point", "budget", "method", "norm", "steps", "objective", "layer")
 
 
 class Comparison(w.VBox):
     """One :class:`Explorer` per ensemble, linked with ``traitlets.link``.
 
-    Moving the input, the budget or the sample count in any column moves them in all.
-    The sample count is clipped to each ensemble's size (a deterministic net has S = 1).
+    Moving the input, the budget or the method in any column moves them in all. The
+    attacker's sample count is one shared value, ``samples``, from 1 to the largest
+    ensemble's size (its slider sits above the columns); each explorer attacks with
+    ``min(samples, len(its ensemble))`` and says so beside its own slider ("1 of 1" for a
+    deterministic net), whatever order the ensembles come in. Moving a column's own
+    samples slider sets the shared value.
 
     Parameters
     ----------
@@ -24,8 +30,11 @@ class Comparison(w.VBox):
     labels : sequence of str, optional
         Column headings (plain text); default ``ens.meta["method"]`` or ``model k``.
     **explorer_kwargs
-        Passed to every :class:`Explorer` (budget, steps, grid, ...).
+        Passed to every :class:`Explorer` (budget, steps, grid, ...); ``samples`` sets the
+        shared count (default: the largest ensemble's size).
     """
+
+    samples = traitlets.Int(1, help="attacker samples shared by all columns, 1..the largest ensemble's size")
 
     def __init__(self, ensembles: Sequence[Any], data: Any, labels: Sequence[str] | None = None,
                  **explorer_kwargs: Any):
@@ -37,13 +46,25 @@ class Comparison(w.VBox):
         labels = [str(label) for label in labels]
         if len(labels) != len(ensembles):
             raise ValueError(f"labels must name each of the {len(ensembles)} ensembles; got {len(labels)}")
-        self.explorers = [Explorer(e, data, **explorer_kwargs) for e in ensembles]
+        largest = max(len(e) for e in ensembles)
+        shared = explorer_kwargs.pop("samples", None)
+        shared = largest if shared is None else check_int("samples", shared, low=1, high=largest)
+        self.explorers = [Explorer(e, data, samples=min(shared, len(e)), **explorer_kwargs) for e in ensembles]
         self._links = []
         first = self.explorers[0]
         for other in self.explorers[1:]:
             for name in SHARED:
-                transform = _clip_samples(first, other) if name == "samples" else None
-                self._links.append(traitlets.link((first, name), (other, name), transform=transform))
+                self._links.append(traitlets.link((first, name), (other, name)))
+        self._largest, self._spreading = largest, False
+        self.samples_control = w.IntSlider(value=shared, min=1, max=largest, description="attacker samples, all columns",
+                                           style={"description_width": "initial"}, layout=w.Layout(width="420px"))
+        self.samples_control.add_class("jostle-tid-comparison-samples")
+        self._links.append(traitlets.link((self.samples_control, "value"), (self, "samples")))
+        self.set_trait("samples", shared)
+        self._spread_samples()
+        self.observe(lambda change: self._spread_samples(), names="samples")
+        for explorer in self.explorers:
+            explorer.observe(self._from_column, names="samples")
         columns = []
         for label, explorer in zip(labels, self.explorers):
             heading = w.Label(label)
@@ -52,13 +73,41 @@ class Comparison(w.VBox):
             column = w.VBox([heading, explorer], layout=w.Layout(flex="1 1 480px", min_width="420px"))
             column.add_class("jostle-tid-comparison-column")
             columns.append(column)
-        super().__init__([w.HBox(columns, layout=w.Layout(flex_flow="row wrap", width="100%"))])
+        super().__init__([self.samples_control, w.HBox(columns, layout=w.Layout(flex_flow="row wrap", width="100%"))])
         for name in ("jostle-root", "jostle-comparison", "jostle-tag-scope", "jostle-tid-comparison"):
             self.add_class(name)
 
     def wait(self, timeout: float = 30.0) -> bool:
         """Block until every explorer has shown its latest view; False on timeout."""
         return all(explorer.wait(timeout) for explorer in self.explorers)
+
+    def used_samples(self) -> list[int]:
+        """Samples each column's attacker uses: ``min(samples, len(ensemble))``, in column order."""
+        return [explorer.samples for explorer in self.explorers]
+
+    @traitlets.validate("samples")
+    def _check_samples(self, proposal: Any) -> int:
+        try:
+            return check_int("samples", proposal["value"], low=1, high=self._largest)
+        except ValueError as err:
+            raise traitlets.TraitError(str(err)) from None
+
+    def _spread_samples(self) -> None:
+        self._spreading = True
+        try:
+            for explorer in self.explorers:
+                size = len(explorer._ens)
+                explorer.samples = min(self.samples, size)
+                explorer._controls.samples_note = f"{explorer.samples} of {size}"
+        finally:
+            self._spreading = False
+
+    def _from_column(self, change: Any) -> None:
+        # A column's own slider moved: its value becomes the shared one, unless that column
+        # is only showing the shared value clipped to its size.
+        if self._spreading or change.new == min(self.samples, len(change.owner._ens)):
+            return
+        self.samples = change.new
 
     def close(self) -> None:
         links, self._links = getattr(self, "_links", []), []
@@ -67,8 +116,3 @@ class Comparison(w.VBox):
         for explorer in getattr(self, "explorers", ()):
             explorer.close()
         super().close()
-
-
-def _clip_samples(a: Explorer, b: Explorer) -> tuple:
-    size_a, size_b = len(a._ens), len(b._ens)
-    return (lambda s: min(int(s), size_b)), (lambda s: min(int(s), size_a))

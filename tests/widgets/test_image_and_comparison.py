@@ -4,6 +4,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import torch
+import traitlets
 
 import jostle
 from jostle.widgets import Comparison, ImageExplorer
@@ -103,3 +104,35 @@ def test_image_explorer_constructor_checks_index_and_strip(digits):
         ImageExplorer(ens, digits, strip=4, index=4)
     with pytest.raises(ValueError, match=r"strip must be an integer >= 1; got 0"):
         ImageExplorer(ens, digits, strip=0)
+
+
+@pytest.mark.parametrize("deterministic_first", [True, False])
+def test_comparison_shares_samples_over_the_largest_ensemble_in_either_order(moons, deterministic_first):
+    # the rule under test: column k attacks with min(shared, S_k), whatever the column order
+    deterministic, posterior = tiny_ensemble(members=1, seed=3), tiny_ensemble(members=5, seed=4)
+    ensembles = [deterministic, posterior] if deterministic_first else [posterior, deterministic]
+    comparison = Comparison(ensembles, moons, grid=8, steps=2, boundaries=2)
+    try:
+        assert comparison.wait(60)
+        sizes = [len(e) for e in ensembles]
+        assert comparison.samples == 5 and comparison.samples_control.max == 5
+        assert [ex.result.state.samples for ex in comparison.explorers] == [min(5, s) for s in sizes]
+        notes = {len(ex._ens): ex._controls.samples_note for ex in comparison.explorers}
+        assert notes == {1: "1 of 1", 5: "5 of 5"}
+        big = comparison.explorers[sizes.index(5)]
+        big.samples = 3  # the big column's own slider sets the shared value
+        assert comparison.wait(60)
+        assert comparison.samples == 3 and comparison.used_samples() == [min(3, s) for s in sizes]
+        assert big.result.state.samples == 3 and big._controls.samples_note == "3 of 5"
+        comparison.samples_control.value = 2
+        assert comparison.wait(60)
+        assert [ex.result.state.samples for ex in comparison.explorers] == [min(2, s) for s in sizes]
+        with pytest.raises(traitlets.TraitError, match=r"samples must be an integer in \[1, 5\]; got 6"):
+            comparison.samples = 6
+    finally:
+        comparison.close()
+
+
+def test_comparison_checks_the_shared_sample_count(moons):
+    with pytest.raises(ValueError, match=r"samples must be an integer in \[1, 5\]; got 9"):
+        Comparison([tiny_ensemble(members=1), tiny_ensemble(members=5)], moons, samples=9, grid=8)
