@@ -182,6 +182,160 @@ class MLPPlan(ForwardPlan):
                 hidden = step[1](hidden)
         return hidden
 
+    def value_and_input_grad(
+        self,
+        params: dict[str, Tensor],
+        x: Tensor,
+        memory_budget: int,
+        head: Callable[[Tensor, slice], Tensor],
+    ) -> tuple[Tensor, Tensor]:
+        """Per-point value of ``head`` on the logits and its gradient in the shared input.
+
+        The forward pass keeps what the backward pass needs (no autograd graph); only
+        ``head`` -- logits [s, n, C] and the point slice -> [n] -- is differentiated by
+        autograd, on the logits alone. The chain rule through the Linear and activation
+        stack is then applied by hand with batched products.
+
+        Parameters
+        ----------
+        params : dict of Tensor [s, ...]
+        x : Tensor of shape (n_points, *input_shape), shared by every member
+        memory_budget : int
+            Bytes the kept activations of one point chunk may take.
+        head : callable
+            ``head(logits [s, n, C], point_slice) -> Tensor [n]``.
+
+        Returns
+        -------
+        value : Tensor of shape (n_points,)
+        grad : Tensor of shape (n_points, *input_shape)
+            ``d sum(value) / d x``; each point receives its own gradient.
+        """
+        members = int(next(iter(params.values())).shape[0])
+        points = int(x.shape[0])
+        pair_bytes = 2 * self.floats_per_pair * x.element_size()
+        point_chunk = max(1, min(points, memory_budget // max(1, pair_bytes * members)))
+        member_cache = _CACHE_BYTES // max(1, self.widest * x.element_size() * point_chunk)
+        member_chunk = max(1, min(members, member_cache))
+        values, grads = [], []
+        with torch.no_grad():
+            for n0 in range(0, points, point_chunk):
+                where = slice(n0, min(points, n0 + point_chunk))
+                value, grad = self._chunk_value_and_grad(params, x[where], where, head, member_chunk)
+                values.append(value)
+                grads.append(grad)
+        return torch.cat(values), torch.cat(grads)
+
+    def _chunk_value_and_grad(self, params, x, where, head, member_chunk):
+        members = int(next(iter(params.values())).shape[0])
+        tapes, logits = [], []
+        for m0 in range(0, members, member_chunk):
+            chunk = {k: v[m0:m0 + member_chunk] for k, v in params.items()}
+            out, tape = self._forward_keeping(chunk, x)
+            tapes.append(tape)
+            logits.append(out)
+        with torch.enable_grad():
+            leaf = torch.cat(logits).requires_grad_(True)
+            value = head(leaf, where)
+            (upstream,) = torch.autograd.grad(value.sum(), leaf)
+        grad = None
+        for m0, tape in zip(range(0, members, member_chunk), tapes):
+            part = _backward(tape, upstream[m0:m0 + member_chunk])
+            grad = part if grad is None else grad + part
+        return value.detach(), grad
+
+    def _forward_keeping(self, params: dict[str, Tensor], x: Tensor) -> tuple[Tensor, list[tuple]]:
+        """Logits [s, n, C] and the tape of what each step's derivative needs."""
+        tape: list[tuple] = []
+        hidden = x
+        shared = True
+        owned = False  # hidden was made by this pass and nothing kept refers to it
+        for step in self.steps:
+            kind = step[0]
+            if kind == "linear":
+                weight = params[step[1]]
+                bias = params[step[2]] if step[2] is not None else None
+                tape.append(("linear", weight, shared))
+                hidden = _batched_linear(hidden, weight, bias, shared)
+                shared, owned = False, True
+            elif kind == "flatten":
+                tape.append(("flatten", hidden.shape))
+                hidden = hidden.flatten(1)
+            elif type(step[1]) in (nn.Identity, nn.Dropout):
+                continue
+            elif type(step[1]) in _FROM_OUTPUT:
+                hidden = _IN_PLACE[type(step[1])](step[1], hidden) if owned else step[1](hidden)
+                tape.append(("output", type(step[1]), hidden))
+                owned = False
+            else:
+                tape.append(("input", step[1], hidden))
+                hidden = step[1](hidden)
+                owned = True
+        return hidden, tape
+
+
+_SQRT_HALF = 0.5 ** 0.5
+_INV_SQRT_2PI = (2 * 3.141592653589793) ** -0.5
+
+# Activations whose derivative is a function of their output alone: tanh' = 1 - h^2,
+# relu' = [h > 0], sigmoid' = h (1 - h), each applied to the incoming gradient in one
+# fused kernel (the ones autograd itself calls) rather than three elementwise passes.
+_FROM_OUTPUT = {
+    nn.Tanh: torch.ops.aten.tanh_backward,
+    nn.ReLU: lambda delta, h: torch.ops.aten.threshold_backward(delta, h, 0),
+    nn.Sigmoid: torch.ops.aten.sigmoid_backward,
+}
+
+
+def _from_input(layer: nn.Module, z: Tensor) -> Tensor | None:
+    """Exact derivative of ``layer`` at pre-activation ``z``, or None when not hand-coded."""
+    kind = type(layer)
+    if kind is nn.SiLU:
+        s = torch.sigmoid(z)
+        return s * (1 + z * (1 - s))
+    if kind is nn.ELU:
+        return torch.where(z > 0, torch.ones_like(z), layer.alpha * torch.exp(z))
+    if kind is nn.LeakyReLU:
+        return torch.where(z > 0, torch.ones_like(z), torch.full_like(z, layer.negative_slope))
+    if kind is nn.Softplus:
+        scaled = z * layer.beta
+        return torch.where(scaled > layer.threshold, torch.ones_like(z), torch.sigmoid(scaled))
+    if kind is nn.GELU and layer.approximate == "none":
+        return 0.5 * (1 + torch.erf(z * _SQRT_HALF)) + z * torch.exp(-0.5 * z * z) * _INV_SQRT_2PI
+    return None
+
+
+def _backward(tape: list[tuple], delta: Tensor) -> Tensor:
+    """Apply the kept chain rule from logit gradients [s, n, C] back to the shared input."""
+    for entry in reversed(tape):
+        kind = entry[0]
+        if kind == "linear":
+            weight, shared = entry[1], entry[2]
+            if shared:
+                # The input is common to all members: its gradient is sum_s delta_s @ W_s
+                # (measured faster than one GEMM over a transposed copy of delta).
+                delta = torch.bmm(delta, weight).sum(0)
+            else:
+                delta = torch.bmm(delta, weight)
+        elif kind == "flatten":
+            delta = delta.reshape(entry[1])
+        elif kind == "output":
+            delta = _FROM_OUTPUT[entry[1]](delta, entry[2])
+        else:
+            delta = _through_activation(entry[1], entry[2], delta)
+    return delta
+
+
+def _through_activation(layer: nn.Module, z: Tensor, delta: Tensor) -> Tensor:
+    derivative = _from_input(layer, z)
+    if derivative is not None:
+        return delta * derivative
+    # Activations without a hand-coded derivative: autograd on this one elementwise map.
+    with torch.enable_grad():
+        leaf = z.detach().requires_grad_(True)
+        (out,) = torch.autograd.grad(layer(leaf), leaf, delta)
+    return out
+
 
 # Up to this many shared points, one GEMM against all members' weights side by side wins;
 # beyond it a batched product per member chunk does (measured, benchmarks/bench_ensemble.py).
