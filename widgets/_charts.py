@@ -18,7 +18,7 @@ INK = "var(--jp-ui-font-color1, #333333)"
 MUTED = "var(--jp-ui-font-color2, #777777)"
 # The title sits in the top margin, centred half-way up it: 40 px leaves a 12 px title clear
 # of the plot area and of the top tick label.
-_MARGIN = dict(top=40, bottom=40, left=56, right=52)
+_MARGIN = dict(top=40, bottom=40, left=62, right=56)
 _TITLE_STYLE = {"font-size": "12px"}
 PROBABILITY_TICKS = np.array([0.0, 0.25, 0.5, 0.75, 1.0])
 _BAR_WIDTH = 12
@@ -26,6 +26,10 @@ _OFFSET = 0.18
 
 
 def _figure(testid: str, title: str, marks: list, axes: list, height: str = "210px") -> bq.Figure:
+    for axis in axes:
+        # bqplot's default puts a side axis's title across its tick labels ("0.002" under "loss")
+        if axis.side in ("left", "right"):
+            axis.label_offset = "46px" if axis.side == "left" else "42px"
     figure = bq.Figure(marks=marks, axes=axes, title=title, fig_margin=dict(_MARGIN),
                        title_style=dict(_TITLE_STYLE),
                        layout=w.Layout(width="100%", min_width="240px", height=height),
