@@ -4,17 +4,20 @@ Case: 40 steps of L-inf PGD, 100 points of a 2-D input, S = 100 members of a 2-6
 tanh MLP. The baseline evaluates each member as its own nn.Module and takes the gradient
 with plain autograd. FLOP rate: forward FLOPs = 2 * S * N * sum(in * out) per step,
 forward + backward counted as 3x forward, set against the same run's 1024 x 1024 fp32
-matmul rate. Also the single-point latency that bounds a live widget update.
+matmul rate. jostle runs twice: with its hand-written batched backward (the default for
+Linear + elementwise stacks) and with autograd through the batched forward (the baseline,
+``attack_core.HAND_BACKWARD = False``). Also the single-point latency that bounds a live
+widget update.
 """
 from __future__ import annotations
-
-import statistics
-import time
 
 import torch
 from torch import nn
 
 import jostle
+from jostle import attack_core
+
+from _timing import interleaved, matmul_gflops, median
 
 MEMBERS, POINTS, STEPS, EPS = 100, 100, 40, 0.1
 WIDTHS = [(2, 64), (64, 64), (64, 2)]
@@ -30,34 +33,63 @@ def main() -> None:
     flops = (3 * STEPS + 1) * 2 * MEMBERS * POINTS * sum(i * o for i, o in WIDTHS)
     rows = []
     # "auto" picks one thread for this size; the torch default is shown beside it, each
-    # against the loop and the matmul rate measured at the same thread count.
+    # against the loop and the matmul rate measured at the same thread count. The
+    # candidates run interleaved, round after round, so load swings hit all alike.
     for threads in (1, default_threads):
-        jostle_ms = _with_threads(threads, lambda: _median_ms(
-            lambda: jostle.attack(ens, x, y, eps=EPS, steps=STEPS, record_path=True, threads=None), repeats=5))
-        loop_ms = _with_threads(threads, lambda: _median_ms(lambda: _loop_pgd(nets, x, y, EPS, STEPS), repeats=3))
-        matmul = _with_threads(threads, _matmul_gflops)
-        rate = flops / (jostle_ms / 1e3) / 1e9
+        times = _with_threads(threads, lambda: interleaved({
+            "hand": _backward(True, lambda: jostle.attack(ens, x, y, eps=EPS, steps=STEPS, record_path=True,
+                                                          threads=None)),
+            "autograd": _backward(False, lambda: jostle.attack(ens, x, y, eps=EPS, steps=STEPS,
+                                                               record_path=True, threads=None)),
+            "loop": lambda: _loop_pgd(nets, x, y, EPS, STEPS),
+        }, repeats=5, warmup=1))
+        ms = {name: median(values) * 1e3 for name, values in times.items()}
+        matmul = _with_threads(threads, matmul_gflops)
+        tag = f"[{threads} thread(s)]"
         rows += [
-            (f"[{threads} thread(s)] PGD 40 steps, N=100, S=100: jostle (ms)", f"{jostle_ms:.1f}"),
-            (f"[{threads} thread(s)] same with a per-member loop (ms)", f"{loop_ms:.1f}"),
-            (f"[{threads} thread(s)] speed-up over the loop (target >= 3x)", f"{loop_ms / jostle_ms:.1f}x"),
-            (f"[{threads} thread(s)] attack FLOP rate / matmul rate (GFLOP/s)", f"{rate:.1f} / {matmul:.1f}"),
-            (f"[{threads} thread(s)] share of matmul rate (target >= 30%)", f"{rate / matmul:.0%}"),
+            (f"{tag} PGD 40 steps, N=100, S=100: jostle, hand backward (ms)", f"{ms['hand']:.1f}"),
+            (f"{tag} same, autograd backward (baseline) (ms)", f"{ms['autograd']:.1f}"),
+            (f"{tag} same with a per-member loop (ms)", f"{ms['loop']:.1f}"),
+            (f"{tag} hand backward over autograd backward", f"{ms['autograd'] / ms['hand']:.2f}x"),
         ]
+        for name in ("hand", "autograd"):
+            rate = flops / (ms[name] / 1e3) / 1e9
+            rows += [
+                (f"{tag} {name}: speed-up over the loop (target >= 3x)", f"{ms['loop'] / ms[name]:.1f}x"),
+                (f"{tag} {name}: FLOP rate / matmul rate (GFLOP/s; target >= 30%)",
+                 f"{rate:.1f} / {matmul:.1f} = {rate / matmul:.0%}"),
+            ]
         if threads == default_threads:
             break
     one = x[:1]
-    single_ms = _median_ms(lambda: jostle.attack(ens, one, eps=EPS, steps=STEPS), repeats=21)
-    single_default_ms = _median_ms(lambda: jostle.attack(ens, one, eps=EPS, steps=STEPS, threads=None), repeats=21)
-    fgsm_ms = _median_ms(lambda: jostle.attack(ens, one, eps=EPS, method="fgsm"), repeats=21)
+    times = interleaved({
+        "hand": _backward(True, lambda: jostle.attack(ens, one, eps=EPS, steps=STEPS)),
+        "autograd": _backward(False, lambda: jostle.attack(ens, one, eps=EPS, steps=STEPS)),
+        "default": _backward(True, lambda: jostle.attack(ens, one, eps=EPS, steps=STEPS, threads=None)),
+        "fgsm": _backward(True, lambda: jostle.attack(ens, one, eps=EPS, method="fgsm")),
+    }, repeats=21)
+    ms = {name: median(values) * 1e3 for name, values in times.items()}
     rows += [
-        ("PGD 40 steps, N=1, S=100: median, threads='auto' (ms)", f"{single_ms:.1f}"),
-        (f"PGD 40 steps, N=1, S=100: median, {default_threads} threads (ms)", f"{single_default_ms:.1f}"),
-        ("FGSM, N=1, S=100: median (ms)", f"{fgsm_ms:.1f}"),
+        ("PGD 40 steps, N=1, S=100: median, threads='auto', hand backward (ms)", f"{ms['hand']:.1f}"),
+        ("PGD 40 steps, N=1, S=100: median, threads='auto', autograd backward (ms)", f"{ms['autograd']:.1f}"),
+        (f"PGD 40 steps, N=1, S=100: median, {default_threads} threads, hand backward (ms)", f"{ms['default']:.1f}"),
+        ("FGSM, N=1, S=100: median, hand backward (ms)", f"{ms['fgsm']:.1f}"),
     ]
     width = max(len(name) for name, _ in rows)
     for name, value in rows:
         print(f"{name:<{width}}  {value}")
+
+
+def _backward(hand: bool, fn):
+    """``fn`` run with the hand-written input backward on (jostle's default) or off."""
+    def run():
+        before = attack_core.HAND_BACKWARD
+        attack_core.HAND_BACKWARD = hand
+        try:
+            return fn()
+        finally:
+            attack_core.HAND_BACKWARD = before
+    return run
 
 
 def _ensemble():
@@ -88,23 +120,6 @@ def _with_threads(threads: int, fn):
         return fn()
     finally:
         torch.set_num_threads(before)
-
-
-def _median_ms(fn, repeats: int) -> float:
-    fn()
-    times = []
-    for _ in range(repeats):
-        start = time.perf_counter()
-        fn()
-        times.append((time.perf_counter() - start) * 1e3)
-    return statistics.median(times)
-
-
-def _matmul_gflops() -> float:
-    g = torch.Generator().manual_seed(2)
-    a, b = torch.randn(1024, 1024, generator=g), torch.randn(1024, 1024, generator=g)
-    ms = _median_ms(lambda: a @ b, repeats=11)
-    return 2 * 1024 ** 3 / (ms / 1e3) / 1e9
 
 
 if __name__ == "__main__":

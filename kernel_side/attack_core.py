@@ -215,7 +215,8 @@ class AttackProblem:
 
         x = self.ens._prepare_input(x_adv.detach())
         params = {k: v.detach() for k, v in self.ens._selected(chosen).items()}
-        return self.ens._plan.value_and_input_grad(params, x, self.ens.memory_budget, head)
+        return self.ens._plan.value_and_input_grad(params, x, self.ens.memory_budget, head,
+                                                   separable=name == "expected_loss")
 
     def margin(self, x_adv: Tensor, index: Tensor | None = None) -> Tensor:
         """The attacker's margin [n]: negative once the attack succeeds on the attacker's view."""

@@ -9,7 +9,7 @@ import torch
 from torch import nn
 
 import jostle
-from jostle import attack_core
+from jostle import _forward, attack_core
 from jostle._forward import GeneralPlan, MLPPlan
 from jostle.attack_core import _objective, build_problem
 
@@ -45,13 +45,13 @@ def _autograd_reference(ens, x, labels, objective, samples=None, sign=1.0):
     return value.detach(), grad
 
 
-def _hand(ens, x, labels, objective, samples=None, sign=1.0, budget=None):
+def _hand(ens, x, labels, objective, samples=None, sign=1.0, budget=None, separable=False):
     params = ens._selected(samples)
 
     def head(logits, where):
         return sign * _objective(logits, labels[where], objective)
 
-    return ens._plan.value_and_input_grad(params, x, budget or ens.memory_budget, head)
+    return ens._plan.value_and_input_grad(params, x, budget or ens.memory_budget, head, separable=separable)
 
 
 def _assert_match(got, want, dtype):
@@ -103,15 +103,21 @@ def test_uncoded_activations_and_layouts_match_autograd():
     _assert_match((value, grad), _autograd_reference(ens, x, labels, "predictive"), torch.float64)
 
 
-@pytest.mark.parametrize("budget", [1, 600, 5_000])
-def test_chunking_over_points_and_members_changes_nothing(budget):
-    # Tiny budgets split points (one at a time at budget 1) and members; reference: autograd.
+@pytest.mark.parametrize("cache_bytes", [200, 2**20])
+@pytest.mark.parametrize("budget", [1, 30_000, 10**9])
+def test_chunking_over_points_and_members_changes_nothing(monkeypatch, budget, cache_bytes):
+    # Budget 1 takes one point at a time, 30,000 bytes five, 10**9 all eleven; a 200-byte
+    # cache block takes one member at a time. Reference: autograd.
+    monkeypatch.setattr(_forward, "_CACHE_BYTES", cache_bytes)
     ens = _ensemble(_mlp("relu"), members=9)
     x = _points(n=11)
     labels = torch.arange(11) % 3
     for objective in OBJECTIVES:
         _assert_match(_hand(ens, x, labels, objective, budget=budget),
                       _autograd_reference(ens, x, labels, objective), torch.float64)
+    # The expected loss is a mean of per-member terms: member chunks may run one by one.
+    _assert_match(_hand(ens, x, labels, "expected_loss", budget=budget, separable=True),
+                  _autograd_reference(ens, x, labels, "expected_loss"), torch.float64)
 
 
 @pytest.mark.parametrize("samples", [4, [5, 0, 2], torch.tensor([3, 3, 1])])
