@@ -1,8 +1,10 @@
 """The attack entry point and the gradient attacks: FGSM, PGD and Carlini-Wagner L2.
 
 Gradients come from one backward pass through the batched forward over all members
-and points (``torch.autograd.grad`` on the summed per-point objective: points are
-independent, so each point receives its own gradient).
+and points, on the summed per-point objective (points are independent, so each point
+receives its own gradient): a hand-written batched backward for Linear + elementwise
+stacks, ``torch.autograd.grad`` for any other module (see
+:meth:`AttackProblem.objective_and_grad`).
 """
 from __future__ import annotations
 

@@ -187,3 +187,13 @@ def test_attacks_agree_with_and_without_the_hand_backward(monkeypatch):
         runs.append(jostle.attack(ens, x, eps=0.2, steps=10, seed=4, objective="predictive"))
     torch.testing.assert_close(runs[0].x_adv, runs[1].x_adv, rtol=0, atol=1e-12)
     torch.testing.assert_close(runs[0].loss, runs[1].loss, rtol=1e-10, atol=1e-12)
+
+
+@pytest.mark.parametrize("objective", OBJECTIVES)
+def test_network_ending_in_an_activation_matches_autograd(objective):
+    # The first backward step then overwrites the logit gradient itself; reference: autograd.
+    ens = _ensemble(lambda: nn.Sequential(nn.Linear(3, 5), nn.ReLU(), nn.Linear(5, 3), nn.Sigmoid()))
+    x = _points()
+    labels = torch.tensor([0, 2, 1, 1, 0, 2, 2])
+    want = _autograd_reference(ens, x, labels, objective)
+    _assert_match(_hand(ens, x, labels, objective, separable=objective == "expected_loss"), want, torch.float64)
