@@ -34,6 +34,7 @@ import torch
 from torch import Tensor
 
 from ._checks import _show, as_label_tensor, check_choice, check_float, check_int
+from ._threads import torch_threads
 from ._forward import MLPPlan
 
 __all__ = ["AttackResult", "OBJECTIVES", "NORMS", "AttackProblem", "build_problem", "compute_threads"]
@@ -295,15 +296,8 @@ def compute_threads(threads: Any, ens, points: int) -> Iterator[None]:
         threads = 1 if work <= _SMALL_WORK else None
     elif threads is not None:
         threads = check_int("threads", threads, low=1)
-    before = torch.get_num_threads()
-    if threads is None or threads == before:
+    with torch_threads(threads):
         yield
-        return
-    torch.set_num_threads(threads)
-    try:
-        yield
-    finally:
-        torch.set_num_threads(before)
 
 
 def norm_of(delta: Tensor, norm: str) -> Tensor:

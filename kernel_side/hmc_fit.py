@@ -18,6 +18,7 @@ import torch
 from torch import Tensor, nn
 
 from ._checks import _show, check_choice, check_float, check_int
+from ._threads import torch_threads
 from ._hmc_posterior import NetworkPosterior, function_space_diagnostics, map_start, prior_start
 from .diagnostics import ConvergenceWarning
 from .ensemble import Ensemble
@@ -163,15 +164,8 @@ def _compute_threads(threads: Any, posterior: NetworkPosterior, chains: int) -> 
         threads = 1 if posterior.device.type == "cpu" and work <= _SMALL_WORK else None
     elif threads is not None:
         threads = check_int("threads", threads, low=1)
-    before = torch.get_num_threads()
-    if threads is None or threads == before:
+    with torch_threads(threads):
         yield
-        return
-    torch.set_num_threads(threads)
-    try:
-        yield
-    finally:
-        torch.set_num_threads(before)
 
 
 # ---------------------------------------------------------------------------- helpers
