@@ -36,6 +36,7 @@ from torch import Tensor
 from ._checks import _show, as_label_tensor, check_choice, check_float, check_int
 from ._threads import torch_threads
 from ._forward import MLPPlan
+from ._input_grad import ExpectedLossGradient
 
 __all__ = ["AttackResult", "OBJECTIVES", "NORMS", "AttackProblem", "build_problem", "compute_threads"]
 
@@ -210,6 +211,10 @@ class AttackProblem:
         labels = self.target if self.target is not None else self.label
         sign = -1.0 if self.target is not None else 1.0
         chosen = self.members()
+        if name == "expected_loss":
+            kernel = self._planned_kernel(chosen, labels, sign)
+            if kernel is not None:
+                return kernel(self.ens._prepare_input(x_adv.detach()))
 
         def head(logits: Tensor, where: slice) -> Tensor:
             return sign * _objective(logits, labels[where], name)
@@ -218,6 +223,17 @@ class AttackProblem:
         params = {k: v.detach() for k, v in self.ens._selected(chosen).items()}
         return self.ens._plan.value_and_input_grad(params, x, self.ens.memory_budget, head,
                                                    separable=name == "expected_loss")
+
+    def _planned_kernel(self, chosen: Any, labels: Tensor, sign: float) -> ExpectedLossGradient | None:
+        """The expected loss planned for the attacker's members: built once and kept for a
+        fixed attacker, built per evaluation when resampling; None for stacks it does not cover."""
+        if not self.resample and "_planned" in self.__dict__:
+            return self._planned
+        params = {k: v.detach() for k, v in self.ens._selected(chosen).items()}
+        kernel = ExpectedLossGradient.try_build(self.ens._plan.steps, params, labels, sign)
+        if not self.resample:
+            self._planned = kernel
+        return kernel
 
     def margin(self, x_adv: Tensor, index: Tensor | None = None) -> Tensor:
         """The attacker's margin [n]: negative once the attack succeeds on the attacker's view."""

@@ -149,9 +149,9 @@ def pgd(problem: AttackProblem, steps: int = 40, step_size: Any = None, random_s
     for _ in range(restarts):
         run = _pgd_run(problem, steps, step_b, random_start, record_path)
         best = run if best is None else _better_of(best, run)
-    x_adv, path, loss, success = best
+    x_adv, path, loss, success, probs = best
     queries = torch.full((problem.points,), (steps + 1) * restarts, dtype=torch.long)
-    return finish(problem, x_adv, path, loss, queries, "pgd", success=success)
+    return finish(problem, x_adv, path, loss, queries, "pgd", success=success, probs=probs)
 
 
 def cw(problem: AttackProblem, steps: int = 40, kappa: float = 0.0, search_steps: int = 6,
@@ -193,9 +193,14 @@ def cw(problem: AttackProblem, steps: int = 40, kappa: float = 0.0, search_steps
 
 
 def finish(problem: AttackProblem, x_adv: Tensor, path: Tensor | None, loss: Tensor, queries: Tensor,
-           method: str, success: Tensor | None = None, norm: str | None = None) -> AttackResult:
-    """Judge the final inputs on the chosen predictive and pack an :class:`AttackResult`."""
-    judged, probs = problem.judge(x_adv)
+           method: str, success: Tensor | None = None, norm: str | None = None,
+           probs: Tensor | None = None) -> AttackResult:
+    """Judge the final inputs on the chosen predictive and pack an :class:`AttackResult`
+    (``probs``: the judged predictive at ``x_adv`` when the attack already has it)."""
+    if probs is None:
+        judged, probs = problem.judge(x_adv)
+    else:
+        judged = success
     return AttackResult(
         x_adv=x_adv.detach(), path=None if path is None else path.detach(), loss=loss.detach(),
         success=judged if success is None else success, label=problem.label, target=problem.target,
@@ -219,20 +224,21 @@ def _pgd_run(problem: AttackProblem, steps: int, step_b: Tensor, random_start: b
         values.append(problem.objective(x_t))
     if record_path:
         path.append(x_t)
-    success, _ = problem.judge(x_t)
-    return x_t, torch.stack(path) if record_path else None, torch.stack(values), success
+    success, probs = problem.judge(x_t)
+    return x_t, torch.stack(path) if record_path else None, torch.stack(values), success, probs
 
 
 def _better_of(old, new):
     """Per point, keep the successful run, else the one with the higher final objective."""
-    old_x, old_path, old_loss, old_ok = old
-    new_x, new_path, new_loss, new_ok = new
+    old_x, old_path, old_loss, old_ok, old_probs = old
+    new_x, new_path, new_loss, new_ok, new_probs = new
     take = (new_ok & ~old_ok) | ((new_ok == old_ok) & (new_loss[-1] > old_loss[-1]))
     view = take.view((-1,) + (1,) * (old_x.ndim - 1))
     x = torch.where(view, new_x, old_x)
     path = None if old_path is None else torch.where(view.unsqueeze(0), new_path, old_path)
     loss = torch.where(take.unsqueeze(0), new_loss, old_loss)
-    return x, path, loss, torch.where(take, new_ok, old_ok)
+    probs = torch.where(take.unsqueeze(1), new_probs, old_probs)
+    return x, path, loss, torch.where(take, new_ok, old_ok), probs
 
 
 def _tanh_box(problem: AttackProblem):

@@ -1,0 +1,250 @@
+"""The planned expected-loss gradient (jostle._input_grad) against torch.autograd.
+
+Reference: torch.autograd.grad of the mean over members of
+``torch.nn.functional.cross_entropy`` through the same ensemble's batched forward
+(``ens.logits`` on an input that requires grad), across activations, depths, class
+counts (two classes, a narrow head, a wide head), image inputs, chunking over members and
+points, targeted signs and threads sharing nothing.
+"""
+import threading
+
+import pytest
+import torch
+from torch import nn
+
+import jostle
+from jostle import _input_grad, attack_core
+from jostle._input_grad import ExpectedLossGradient
+from jostle.attack_core import build_problem
+
+TOLERANCE = {torch.float32: 2e-5, torch.float64: 1e-11}
+
+
+def _ensemble(make, members=7, seed=0, dtype=torch.float64):
+    g = torch.Generator().manual_seed(seed)
+    nets = []
+    for _ in range(members):
+        net = make()
+        with torch.no_grad():
+            for p in net.parameters():
+                p.copy_(torch.randn(p.shape, generator=g, dtype=p.dtype) * 0.7)
+        nets.append(net.to(dtype).eval())
+    return jostle.Ensemble.from_modules(nets)
+
+
+def _points(n, shape, dtype=torch.float64, seed=1):
+    g = torch.Generator().manual_seed(seed)
+    return (torch.randn((n,) + tuple(shape), generator=g) * 1.5).to(dtype)
+
+
+def _labels(n, classes, seed=2):
+    return torch.randint(0, classes, (n,), generator=torch.Generator().manual_seed(seed))
+
+
+def _reference(ens, x, labels, sign=1.0):
+    leaf = x.detach().clone().requires_grad_(True)
+    logits = ens.logits(leaf)  # [S, n, C]
+    members, n, classes = logits.shape
+    losses = nn.functional.cross_entropy(logits.reshape(-1, classes), labels.repeat(members), reduction="none")
+    value = sign * losses.view(members, n).mean(0)
+    (grad,) = torch.autograd.grad(value.sum(), leaf)
+    return value.detach(), grad
+
+
+def _planned(ens, labels, sign=1.0, chunk_bytes=None):
+    params = {k: v.detach() for k, v in ens.params.items()}
+    return ExpectedLossGradient.try_build(ens._plan.steps, params, labels, sign, chunk_bytes=chunk_bytes)
+
+
+def _assert_match(got, want, dtype):
+    tol = TOLERANCE[dtype]
+    for a, b in zip(got, want):
+        assert a.shape == b.shape
+        torch.testing.assert_close(a, b, rtol=tol, atol=tol * float(b.abs().max().clamp_min(1.0)))
+
+
+CASES = {
+    # name: (module factory, input shape, classes)
+    "2d-tanh-2-classes": (lambda: jostle.mlp(2, 2, hidden=(16, 16), activation="tanh"), (2,), 2),
+    "2d-relu-3-classes": (lambda: jostle.mlp(2, 3, hidden=(12,), activation="relu"), (2,), 3),
+    "3d-sigmoid-deep": (lambda: jostle.mlp(3, 5, hidden=(8, 7, 6, 5), activation="sigmoid"), (3,), 5),
+    "wide-input-wide-head": (lambda: jostle.mlp(20, 12, hidden=(10, 9), activation="tanh"), (20,), 12),
+    "image-input": (lambda: nn.Sequential(nn.Flatten(), nn.Linear(16, 9), nn.ReLU(), nn.Linear(9, 10)), (4, 4), 10),
+    "no-bias-identity-dropout": (lambda: nn.Sequential(nn.Linear(2, 6, bias=False), nn.Tanh(), nn.Identity(),
+                                                       nn.Dropout(0.3), nn.Linear(6, 6), nn.Linear(6, 2, bias=False)),
+                                 (2,), 2),
+    "linear-then-activation-free-head": (lambda: nn.Sequential(nn.Linear(5, 4), nn.Linear(4, 4), nn.Sigmoid(),
+                                                               nn.Linear(4, 3)), (5,), 3),
+}
+
+
+@pytest.mark.parametrize("dtype", [torch.float32, torch.float64])
+@pytest.mark.parametrize("case", sorted(CASES))
+def test_matches_autograd(case, dtype):
+    make, shape, classes = CASES[case]
+    ens = _ensemble(make, dtype=dtype)
+    x = _points(11, shape, dtype=dtype)
+    labels = _labels(11, classes)
+    kernel = _planned(ens, labels)
+    assert kernel is not None
+    _assert_match(kernel(x), _reference(ens, x, labels), dtype)
+
+
+@pytest.mark.parametrize("chunk_bytes", [1, 300, 5_000, 2**30])
+@pytest.mark.parametrize("case", ["2d-tanh-2-classes", "wide-input-wide-head", "image-input"])
+def test_chunking_over_members_and_points_changes_nothing(case, chunk_bytes):
+    # chunk_bytes=1 forces one member and one point per chunk; 2**30 a single chunk.
+    make, shape, classes = CASES[case]
+    ens = _ensemble(make)
+    x = _points(9, shape)
+    labels = _labels(9, classes)
+    kernel = _planned(ens, labels, chunk_bytes=chunk_bytes)
+    if chunk_bytes == 1:
+        assert len(kernel.chunks) == len(ens) and kernel.point_chunk == 1
+    if chunk_bytes == 2**30:
+        assert len(kernel.chunks) == 1 and kernel.point_chunk == 9
+    _assert_match(kernel(x), _reference(ens, x, labels), torch.float64)
+
+
+def test_chunks_split_members_evenly():
+    ens = _ensemble(CASES["2d-tanh-2-classes"][0], members=10)
+    labels = _labels(5, 2)
+    per_member = 5 * 16 * 8  # points x widest layer x float64 bytes
+    kernel = _planned(ens, labels, chunk_bytes=4 * per_member)
+    assert [chunk["k"] for chunk in kernel.chunks] == [3, 4, 3]
+
+
+@pytest.mark.parametrize("case", ["2d-tanh-2-classes", "2d-relu-3-classes", "wide-input-wide-head"])
+def test_targeted_sign(case):
+    make, shape, classes = CASES[case]
+    ens = _ensemble(make)
+    x = _points(6, shape)
+    labels = _labels(6, classes)
+    _assert_match(_planned(ens, labels, sign=-1.0)(x), _reference(ens, x, labels, sign=-1.0), torch.float64)
+
+
+def test_repeated_calls_reuse_blocks_without_touching_earlier_results():
+    # The work blocks are reused; what a call returned must stay what it was.
+    make, shape, classes = CASES["2d-tanh-2-classes"]
+    ens = _ensemble(make)
+    labels = _labels(8, classes)
+    kernel = _planned(ens, labels)
+    x1, x2 = _points(8, shape, seed=3), _points(8, shape, seed=4)
+    first = kernel(x1)
+    kept = [t.clone() for t in first]
+    second = kernel(x2)
+    for a, b in zip(first, kept):
+        torch.testing.assert_close(a, b, rtol=0, atol=0)
+    _assert_match(second, _reference(ens, x2, labels), torch.float64)
+    _assert_match(kernel(x1), _reference(ens, x1, labels), torch.float64)
+
+
+def test_two_kernels_in_one_thread_and_kernels_in_two_threads():
+    # Kernels of one thread share its pool (used one at a time); other threads have their own.
+    make, shape, classes = CASES["2d-relu-3-classes"]
+    ens_a, ens_b = _ensemble(make, seed=5), _ensemble(make, seed=6)
+    labels = _labels(10, classes)
+    xs = [_points(10, shape, seed=s) for s in range(6)]
+    ka, kb = _planned(ens_a, labels), _planned(ens_b, labels)
+    for x in xs[:2]:
+        _assert_match(ka(x), _reference(ens_a, x, labels), torch.float64)
+        _assert_match(kb(x), _reference(ens_b, x, labels), torch.float64)
+
+    failures = []
+
+    def work(ens):
+        kernel = _planned(ens, labels)
+        for _ in range(20):
+            for x in xs:
+                try:
+                    _assert_match(kernel(x), _reference(ens, x, labels), torch.float64)
+                except AssertionError as error:  # pragma: no cover - reported below
+                    failures.append(error)
+
+    threads = [threading.Thread(target=work, args=(e,)) for e in (ens_a, ens_b)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert not failures
+
+
+@pytest.mark.parametrize("make", [
+    lambda: jostle.mlp(2, 2, hidden=(6,), activation="gelu"),          # derivative needs the input
+    lambda: nn.Sequential(nn.Linear(2, 4), nn.Tanh(), nn.Linear(4, 2), nn.Sigmoid()),  # ends in an activation
+    lambda: nn.Sequential(nn.Linear(2, 2)),                            # a single affine layer
+    lambda: nn.Sequential(nn.Linear(2, 4), nn.Tanh(), nn.ReLU(), nn.Linear(4, 2)),  # two activations in a row
+])
+def test_stacks_it_does_not_cover_fall_back(make):
+    ens = _ensemble(make)
+    assert _planned(ens, _labels(3, 2)) is None
+
+
+def test_fallback_stacks_still_attack_through_the_general_hand_backward():
+    # GELU: the attack problem falls back to MLPPlan.value_and_input_grad; reference autograd.
+    ens = _ensemble(lambda: jostle.mlp(2, 2, hidden=(6,), activation="gelu"))
+    x = _points(5, (2,))
+    labels = _labels(5, 2)
+    problem = build_problem(ens, x, labels, eps=0.1, norm="inf", objective="expected_loss", samples=None,
+                            resample=False, target=None, bounds=None, seed=0)
+    _assert_match(problem.objective_and_grad(x), _reference(ens, x, labels), torch.float64)
+
+
+def test_wrong_input_shape_is_named():
+    ens = _ensemble(CASES["2d-tanh-2-classes"][0])
+    kernel = _planned(ens, _labels(4, 2))
+    with pytest.raises(ValueError, match=r"x must have shape \(4, 2\)"):
+        kernel(_points(3, (2,)))
+
+
+@pytest.mark.parametrize("options", [{}, {"samples": 4}, {"samples": [0, 3, 5]}, {"samples": 3, "resample": True},
+                                     {"target": [1, 0, 1, 1, 0, 0]}])
+def test_attack_problem_uses_the_planned_gradient_and_matches_autograd(monkeypatch, options):
+    # Reference: the same problem's autograd path (HAND_BACKWARD off), same seeded member draws.
+    ens = _ensemble(CASES["2d-tanh-2-classes"][0], dtype=torch.float32)
+    x = _points(6, (2,), dtype=torch.float32)
+    built = []
+    original = ExpectedLossGradient.try_build.__func__
+
+    def counting(cls, *args, **kwargs):
+        built.append(1)
+        return original(cls, *args, **kwargs)
+
+    results = []
+    for hand in (True, False):
+        monkeypatch.setattr(attack_core, "HAND_BACKWARD", hand)
+        monkeypatch.setattr(ExpectedLossGradient, "try_build", classmethod(counting))
+        problem = build_problem(ens, x, None, eps=0.1, norm="inf", objective="expected_loss",
+                                samples=options.get("samples"), resample=options.get("resample", False),
+                                target=options.get("target"), bounds=None, seed=3)
+        results.append([problem.objective_and_grad(x + 0.01 * k) for k in range(3)])
+        if hand:
+            # planned once for a fixed attacker, at every evaluation when resampling
+            assert len(built) == (3 if options.get("resample") else 1)
+    for got, want in zip(*results):
+        _assert_match(got, want, torch.float32)
+
+
+def test_pgd_iterates_equal_the_autograd_path(monkeypatch):
+    # End to end in float64 (sign steps cannot flip on rounding): PGD, restarts, targeted.
+    ens = _ensemble(CASES["2d-relu-3-classes"][0])
+    x = _points(8, (2,))
+    for kwargs in ({"restarts": 2}, {"target": _labels(8, 3, seed=9)}, {"norm": "2", "eps": 0.5}):
+        runs = []
+        for hand in (True, False):
+            monkeypatch.setattr(attack_core, "HAND_BACKWARD", hand)
+            runs.append(jostle.attack(ens, x, steps=12, seed=4, **{"eps": 0.3, **kwargs}))
+        # L2 iterates on the sphere may take the projection's last 1e-6 shrink (a guard
+        # against rounding past the budget) on one side of a last-ulp tie and not the other.
+        tol = 1e-12 if kwargs.get("norm") != "2" else 1e-6 * kwargs["eps"]
+        torch.testing.assert_close(runs[0].x_adv, runs[1].x_adv, rtol=0, atol=tol)
+        torch.testing.assert_close(runs[0].loss, runs[1].loss, rtol=1e-10, atol=max(tol, 1e-12) * 10)
+        torch.testing.assert_close(runs[0].adv_probs, runs[1].adv_probs, rtol=1e-10, atol=max(tol, 1e-12) * 10)
+        assert torch.equal(runs[0].success, runs[1].success)
+
+
+def test_chunk_budget_is_a_module_setting(monkeypatch):
+    ens = _ensemble(CASES["2d-tanh-2-classes"][0], members=6)
+    labels = _labels(4, 2)
+    monkeypatch.setattr(_input_grad, "CHUNK_BYTES", 4 * 16 * 8 * 2)
+    assert len(_planned(ens, labels).chunks) == 3
