@@ -7,7 +7,8 @@ forward + backward counted as 3x forward, set against the same run's 1024 x 1024
 matmul rate. jostle runs twice: with its hand-written batched backward (the default for
 Linear + elementwise stacks) and with autograd through the batched forward (the baseline,
 ``attack_core.HAND_BACKWARD = False``). Also the single-point latency that bounds a live
-widget update.
+widget update, and every member's own input gradient (what the fading-gradient read-outs
+start from) by the planned backward and by ``vmap(grad)``.
 """
 from __future__ import annotations
 
@@ -16,6 +17,7 @@ from torch import nn
 
 import jostle
 from jostle import attack_core
+from jostle.robustness import member_gradients
 
 from _timing import interleaved, matmul_gflops, median
 
@@ -74,6 +76,16 @@ def main() -> None:
         ("PGD 40 steps, N=1, S=100: median, threads='auto', autograd backward (ms)", f"{ms['autograd']:.1f}"),
         (f"PGD 40 steps, N=1, S=100: median, {default_threads} threads, hand backward (ms)", f"{ms['default']:.1f}"),
         ("FGSM, N=1, S=100: median, hand backward (ms)", f"{ms['fgsm']:.1f}"),
+    ]
+    # The fading-gradient read-outs start from every member's own input gradient.
+    times = interleaved({
+        "hand": _backward(True, lambda: member_gradients(ens, x, y)),
+        "vmap": _backward(False, lambda: member_gradients(ens, x, y)),
+    }, repeats=9)
+    ms = {name: median(values) * 1e3 for name, values in times.items()}
+    rows += [
+        ("member gradients, N=100, S=100: planned hand backward (ms)", f"{ms['hand']:.1f}"),
+        ("member gradients, N=100, S=100: vmap(grad) (ms)", f"{ms['vmap']:.1f}"),
     ]
     width = max(len(name) for name, _ in rows)
     for name, value in rows:

@@ -9,20 +9,26 @@ short, fixed sequence of batched kernels with the chain rule written out by hand
 an attack step costs little beyond its arithmetic:
 
 * The first layer reads the input that all members share. Its output is laid out point
-  by point, ``[n, members * width]``: one GEMM (or, for a 2-D input, one fused
-  multiply-add per input coordinate) makes it, and on the way back the input gradient of
-  every member *summed* is again one GEMM, ``[n, members * width] @ [members * width, d]``.
+  by point, ``[n, members * width]``: one GEMM against the members' weights side by side
+  makes it (the bias met by a column of ones beside the input), and on the way back the
+  input gradient of every member *summed* is again one GEMM,
+  ``[d, members * width] @ [members * width, n]``.
 * Deeper layers are batched products over members, ``[k, n, in] @ [k, in, out]``.
 * The logits of a narrow head (``C <= 8``) are made as ``W @ h^T``, classes before points,
   so that the softmax runs along a short outer axis. The gradient of the cross-entropy in
-  the logits is ``softmax - onehot`` (no autograd); with two classes its two rows are
-  negatives of each other and the product back through the head becomes one
-  multiplication by the difference of the two weight rows.
+  the logits is ``softmax - onehot`` (no autograd). With two classes only the difference
+  of the two logits matters: the head computes it alone, ``log p(label)`` is a log-sigmoid
+  of it, and the product back through the head is one multiplication by the difference
+  of the two weight rows.
 * Activations whose derivative is a function of their output (tanh, ReLU, sigmoid) are
   applied in place going forward, and their derivative overwrites the incoming gradient
   coming back, with the same fused kernels autograd itself calls.
-* Members are processed in chunks whose activations stay in the CPU's cache between the
-  forward and the backward pass.
+* Members (and, for many points, points) are processed in chunks under a memory bound;
+  the work blocks are allocated once per thread and reused, so an attack step allocates
+  almost nothing.
+
+:meth:`ExpectedLossGradient.member_gradients` runs the same passes and keeps each member's
+gradient apart (for the fading-gradient read-outs).
 
 Anything else (other activations, a network ending in an activation, a single Linear
 layer) returns None from :meth:`ExpectedLossGradient.try_build` and the caller falls back
@@ -44,21 +50,15 @@ _ACTIVATIONS = {
     nn.Sigmoid: (Tensor.sigmoid_, lambda d, h, out: torch.ops.aten.sigmoid_backward.grad_input(d, h, grad_input=out)),
 }
 
-# Activations of one member chunk are kept near this many bytes per layer. Measured on a
-# 2-core CPU with PGD on 100 members x 100 points of a 2-64-64-2 network
-# (benchmarks/bench_attacks.py): smaller chunks pay per-kernel overhead, larger ones fall
-# out of the 2 MiB per-core L2 cache between the forward and the backward pass.
+# Activations of one chunk are kept under this many bytes per layer. Measured on a 2-core
+# CPU with PGD on 100 members x 100 points of a 2-64-64-2 network: one chunk of all
+# members (2.4 MiB per layer) ran 10-20% faster than chunks that fit the 2 MiB per-core
+# L2 cache (0.5-1 MiB), whose extra kernels cost more than the cache misses they save.
 CHUNK_BYTES = 2**22
 
-# Reused work blocks, one set per thread (see ExpectedLossGradient._workspace).
+# Reused work blocks, one set per thread (see ExpectedLossGradient._workspace). Each block
+# grows to the largest chunk a thread has evaluated (at most CHUNK_BYTES per layer).
 _POOL = threading.local()
-
-# Input widths up to this are formed by multiply-adds rather than a GEMM with a tiny
-# inner dimension (measured ~4x faster for a 2-D input).
-_TINY_INPUT = 4
-
-# Up to this many points the forward and backward products share one copy of the weights.
-_FEW_POINTS = 16
 
 # Heads up to this many classes are computed classes-first (W @ h^T).
 _NARROW = 8
@@ -140,18 +140,20 @@ class ExpectedLossGradient:
         first_w, first_b, _ = self.layers[0]
         w = first_w[members]
         k, width, fan_in = w.shape
-        # [in, k*width]: columns ordered member by member, unit by unit
-        chunk = {"k": k, "first_cat": w.reshape(k * width, fan_in).T.contiguous()}
-        chunk["first_bias"] = (first_b[members].reshape(1, k * width).contiguous() if first_b is not None
-                               else torch.zeros(1, k * width, dtype=w.dtype, device=w.device))
+        # [in + 1, k*width]: columns member by member, unit by unit; the last row is the
+        # bias, met by a column of ones beside the input (one GEMM, bias included).
+        bias = (first_b[members].reshape(1, k * width) if first_b is not None
+                else torch.zeros(1, k * width, dtype=w.dtype, device=w.device))
+        augmented = torch.cat([w.reshape(k * width, fan_in).T, bias], 0).contiguous()
+        chunk = {"k": k, "start": members.start, "first_aug": augmented, "first_cat": augmented[:fan_in],
+                 "first_w": w}
         hidden = []
         for weight, bias, _ in self.layers[1:-1]:
             wk = weight[members]
             wk = wk.contiguous()
-            # Many points: a transposed copy for the forward product (GEMM-friendly). Few
-            # points: the products stream weights, so one copy read both ways halves it.
-            forward = wk.transpose(1, 2) if self.points <= _FEW_POINTS else wk.transpose(1, 2).contiguous()
-            hidden.append((forward, wk,
+            # a transposed copy for the forward product (measured ~12% faster than
+            # reading the same weights transposed at 100 points)
+            hidden.append((wk.transpose(1, 2).contiguous(), wk,
                            None if bias is None else bias[members].unsqueeze(1).contiguous()))
         chunk["hidden"] = hidden
         last_w, last_b, _ = self.layers[-1]
@@ -175,9 +177,7 @@ class ExpectedLossGradient:
         shape = x.shape
         flat = x.reshape(shape[0], -1) if self.flatten else x
         points = int(flat.shape[0])
-        if points != int(self.labels.shape[0]) or flat.shape[1] != self.in_features:
-            raise ValueError(f"x must have shape ({int(self.labels.shape[0])}, {self.in_features}) "
-                             f"after flattening; got {tuple(shape)}")
+        self._check(flat, shape)
         values, grads = [], []
         for p0 in range(0, points, self.point_chunk):
             where = slice(p0, min(points, p0 + self.point_chunk))
@@ -188,6 +188,25 @@ class ExpectedLossGradient:
         grad = grads[0] if len(grads) == 1 else torch.cat(grads)
         scale = self.sign / self.members
         return value.mul_(-scale), grad.mul_(scale).reshape(shape)
+
+    @torch.no_grad()
+    def member_gradients(self, x: Tensor) -> Tensor:
+        """Each member's own input gradient, ``sign * d CE_s / d x`` -> [s, n, ...]."""
+        shape = x.shape
+        flat = x.reshape(shape[0], -1) if self.flatten else x
+        self._check(flat, shape)
+        out = torch.empty(self.members, flat.shape[0], self.in_features, dtype=x.dtype, device=x.device)
+        for p0 in range(0, int(flat.shape[0]), self.point_chunk):
+            where = slice(p0, min(int(flat.shape[0]), p0 + self.point_chunk))
+            self._points(flat[where], where, members_out=out[:, where])
+        if self.sign != 1.0:
+            out.mul_(self.sign)
+        return out.view((self.members,) + tuple(shape))
+
+    def _check(self, flat: Tensor, shape) -> None:
+        if flat.shape[0] != int(self.labels.shape[0]) or flat.shape[1] != self.in_features:
+            raise ValueError(f"x must have shape ({int(self.labels.shape[0])}, {self.in_features}) "
+                             f"after flattening; got {tuple(shape)}")
 
     def _workspace(self, points: int, like: Tensor) -> list[dict]:
         """Per member chunk, views into blocks that every evaluation reuses.
@@ -227,27 +246,22 @@ class ExpectedLossGradient:
         self._spaces[key] = spaces
         return spaces
 
-    def _points(self, x: Tensor, where: slice) -> tuple[Tensor, Tensor]:
-        """Summed log-probability of the labels and summed loss gradient over all members."""
+    def _points(self, x: Tensor, where: slice, members_out: Tensor | None = None) -> tuple[Tensor, Tensor] | None:
+        """Summed log-probability of the labels and summed loss gradient over all members;
+        with ``members_out`` [s, n, in], each member's own loss gradient written there instead."""
         points = int(x.shape[0])
         onehot = self.onehot[:, :, where] if self.narrow else self.onehot[:, where]
         signs = (1 - 2 * onehot[:, 1:2]) if self.classes == 2 else None  # [1, 1, n]: +1 label 0, -1 label 1
         grad_t = torch.zeros(self.in_features, points, dtype=x.dtype, device=x.device)  # [in, n]
         log_prob = None
-        columns = [x[:, i:i + 1] for i in range(self.in_features)] if self.in_features <= _TINY_INPUT else None
+        x_aug = torch.cat([x, torch.ones(points, 1, dtype=x.dtype, device=x.device)], 1)
         first_act = self.layers[0][2]
         hidden_acts = [layer[2] for layer in self.layers[1:-1]]
         for chunk, space in zip(self.chunks, self._workspace(points, x)):
             k = chunk["k"]
             # ---- forward, keeping each activation's output for its derivative
             first = space["first"]  # [n, k * width]: point by point
-            if columns is not None:
-                rows = chunk["first_cat"]
-                torch.addcmul(chunk["first_bias"], columns[0], rows[0:1], out=first)
-                for i in range(1, len(columns)):
-                    first.addcmul_(columns[i], rows[i:i + 1])
-            else:
-                torch.addmm(chunk["first_bias"], x, chunk["first_cat"], out=first)
+            torch.mm(x_aug, chunk["first_aug"], out=first)
             if first_act is not None:
                 _ACTIVATIONS[first_act][0](first)
             kept = [first.view(points, k, -1).transpose(0, 1)]  # [k, n, width], a view
@@ -297,9 +311,18 @@ class ExpectedLossGradient:
                 _ACTIVATIONS[first_act][1](delta, kept[0], target)
             else:
                 target.copy_(delta)
+            if members_out is not None:
+                # per member, as W_s^T-side products: [k, in, width] @ [k, width, n]
+                per_member = torch.bmm(chunk["first_w"].transpose(1, 2), target.transpose(1, 2))
+                if self.classes == 2:
+                    per_member.mul_(signs).neg_()
+                members_out[chunk["start"]:chunk["start"] + k].copy_(per_member.transpose(1, 2))
+                continue
             # sum over members and units at once, as W @ spread^T: [in, k*width] @ [k*width, n]
             # (measured ~6x faster than spread @ W^T for a 2-D input)
             grad_t.addmm_(chunk["first_cat"], spread.T)
+        if members_out is not None:
+            return None
         if self.classes == 2:
             return log_prob.view(-1), grad_t.mul_(signs.view(1, -1)).neg_().T.contiguous()
         label_index = self.labels[where].view(1, -1) if self.narrow else self.labels[where].view(-1, 1)

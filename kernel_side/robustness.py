@@ -16,6 +16,9 @@ from torch import Tensor
 from torch.func import functional_call, grad, vmap
 
 from ._checks import _show, check_choice, check_int
+from . import attack_core
+from ._forward import MLPPlan
+from ._input_grad import ExpectedLossGradient
 from .attack_core import build_problem, compute_threads, norm_of
 from .attack_gradient import pgd
 
@@ -56,12 +59,22 @@ def expected_gradient(ens, x: Any, y: Any = None, samples: Any = None, objective
 def member_gradients(ens, x: Any, y: Any = None) -> Tensor:
     """Each member's input gradient of its own cross-entropy, in one vectorised pass.
 
+    Linear + tanh/ReLU/sigmoid stacks use the planned hand-written backward of the
+    attacks; any other module ``torch.func.vmap(grad(...))``.
+
     Returns
     -------
     Tensor of shape (n_members, n_points, *input_shape)
     """
     problem = build_problem(ens, x, y, eps=0.0, norm="inf", objective="expected_loss", samples=None,
                             resample=False, target=None, bounds=None, seed=0, use_bounds=False)
+    if attack_core.HAND_BACKWARD and isinstance(ens._plan, MLPPlan):
+        # Linear + tanh/ReLU/sigmoid stacks: the planned hand-written backward, member by member.
+        params = {k: v.detach() for k, v in ens.params.items()}
+        kernel = ExpectedLossGradient.try_build(ens._plan.steps, params, problem.label, 1.0)
+        if kernel is not None:
+            with compute_threads("auto", ens, problem.points):
+                return kernel.member_gradients(ens._prepare_input(problem.x))
     template = ens.template
 
     def member_loss(params: dict[str, Tensor], points: Tensor, labels: Tensor) -> Tensor:
