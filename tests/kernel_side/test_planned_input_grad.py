@@ -284,3 +284,18 @@ def test_member_gradients_public_function_takes_the_planned_path(monkeypatch):
     planned = member_gradients(ens, x, labels)
     monkeypatch.setattr(attack_core, "HAND_BACKWARD", False)
     torch.testing.assert_close(planned, member_gradients(ens, x, labels), rtol=1e-10, atol=1e-12)
+
+
+@pytest.mark.parametrize("points", [1, 2, 3])
+@pytest.mark.parametrize("case", ["2d-tanh-2-classes", "3d-sigmoid-deep", "wide-input-wide-head"])
+def test_one_or_two_points_read_the_weights_both_ways(case, points):
+    # Up to _FEW_POINTS points the forward product reads the backward's weights transposed.
+    make, shape, classes = CASES[case]
+    ens = _ensemble(make)
+    x = _points(points, shape)
+    labels = _labels(points, classes)
+    kernel = _planned(ens, labels)
+    forward = kernel.chunks[0]["hidden"][0][0]
+    assert forward.is_contiguous() == (points > _input_grad._FEW_POINTS)
+    _assert_match(kernel(x), _reference(ens, x, labels), torch.float64)
+    torch.testing.assert_close(kernel.member_gradients(x), _reference_members(ens, x, labels), rtol=1e-10, atol=1e-12)
