@@ -299,3 +299,17 @@ def test_one_or_two_points_read_the_weights_both_ways(case, points):
     assert forward.is_contiguous() == (points > _input_grad._FEW_POINTS)
     _assert_match(kernel(x), _reference(ens, x, labels), torch.float64)
     torch.testing.assert_close(kernel.member_gradients(x), _reference_members(ens, x, labels), rtol=1e-10, atol=1e-12)
+
+
+@pytest.mark.skipif(not torch.cuda.is_available(), reason="no CUDA device on this machine")
+def test_runs_on_a_cuda_device_and_matches_the_cpu():
+    # Device-agnostic: the same plan on a GPU gives the CPU's numbers (float64).
+    make, shape, classes = CASES["wide-input-wide-head"]
+    ens = _ensemble(make)
+    x = _points(9, shape)
+    labels = _labels(9, classes)
+    want = _planned(ens, labels)(x)
+    gpu = ens.to(device="cuda")
+    params = {k: v.detach() for k, v in gpu.params.items()}
+    got = ExpectedLossGradient.try_build(gpu._plan.steps, params, labels.cuda(), 1.0)(x.cuda())
+    _assert_match([t.cpu() for t in got], want, torch.float64)
