@@ -4,8 +4,8 @@ that hides or breaks its gradients cannot fool them the way it fools PGD.
 SPSA (Spall 1992), used against gradient masking by Uesato et al. (2018), estimates the
 gradient from paired evaluations along random Rademacher directions and then takes the
 same projected steps as PGD. Square Attack (Andriushchenko et al. 2020) is a random
-search over the corners of the L-inf ball that accepts a proposal only when the margin
-falls.
+search that accepts a proposal only when the margin falls: over the corners of the L-inf
+ball, or over the surface of the L2 ball with energy moved between square windows.
 """
 from __future__ import annotations
 
@@ -89,19 +89,30 @@ def spsa(problem: AttackProblem, steps: int = 40, step_size: Any = None, delta: 
 
 def square(problem: AttackProblem, steps: int = 40, p_init: float = 0.05, image_shape: Any = None,
            record_path: bool = True) -> AttackResult:
-    """Square Attack, L-inf (Andriushchenko et al. 2020): random search over ball corners.
+    """Square Attack (Andriushchenko et al. 2020): random search that keeps a proposal only
+    if the attacker's margin falls, so the margin never increases.
 
-    Every coordinate of the perturbation sits at +-eps (before clipping to the bounds).
-    Each iteration re-draws the signs inside one window (an h x h square of an image), or
-    flips a random set of ``round(p * D)`` features of a plain vector, and keeps the proposal
-    only if the attacker's margin falls, so the margin never increases. A point stops
-    being queried once its margin is negative. One query per active point per iteration.
-    ``loss`` is the negative margin; ``margin`` holds the margin itself.
+    L-inf: every coordinate of the perturbation sits at +-eps (before clipping to the
+    bounds). Each iteration re-draws the signs inside one window (an h x h square of an
+    image), or flips a random set of ``round(p * D)`` features of a plain vector.
+
+    L2: the perturbation keeps ``|delta|_2 = eps`` exactly (before clipping). It starts as a
+    tiling of square bumps with random signs. Each iteration picks two h x h windows per
+    image and channel, adds a bump (largest at its centre, falling off ring by ring) with a
+    random sign to the first, and moves all the energy of both windows into the first (the
+    second is emptied), so the norm is unchanged; a window pair holding no energy borrows
+    its share from the rest of the perturbation. A plain vector (no image shape) takes a
+    random step on a random ``round(p * D)``-feature subset instead and is rescaled back
+    onto the sphere; its step shrinks with ``p`` on the same schedule.
+
+    A point stops being queried once its margin is negative. One query per active point per
+    iteration. ``loss`` is the negative margin; ``margin`` holds the margin itself.
     """
     p_init = check_float("p_init", p_init, low=0.0, high=1.0, low_open=True)
     shape = _image_shape(problem, image_shape)
+    initial, propose = (_initial_signs, _propose) if problem.norm == "inf" else (_initial_sphere, _propose_sphere)
     with torch.no_grad():
-        delta = problem.eps_b * _initial_signs(problem, shape)
+        delta = problem.eps_b * initial(problem, shape)
         x_best = problem.project(problem.x + delta)
         margin = problem.margin(x_best)
         queries = torch.ones(problem.points, dtype=torch.long, device=problem.x.device)
@@ -110,7 +121,7 @@ def square(problem: AttackProblem, steps: int = 40, p_init: float = 0.05, image_
             active = (margin >= 0).nonzero().flatten()
             if active.numel():
                 fraction = square_fraction(p_init, i, steps)
-                proposal = _propose(problem, delta[active], active, shape, fraction)
+                proposal = propose(problem, delta[active], active, shape, fraction, p_init)
                 x_new = problem.project(problem.x[active] + proposal, problem.eps_b[active], problem.x[active])
                 new_margin = problem.margin(x_new, index=active)
                 better = new_margin < margin[active]
@@ -144,7 +155,11 @@ def square_fraction(p_init: float, iteration: int, steps: int) -> float:
 # ------------------------------------------------------------------ private helpers
 def _image_shape(problem: AttackProblem, image_shape: Any) -> tuple[int, ...] | None:
     if image_shape is None:
+        # set on the ensemble, or recorded by a fit from its data set's description
+        data = problem.ens.meta.get("data")
         image_shape = problem.ens.meta.get("image_shape")
+        if image_shape is None and isinstance(data, dict):
+            image_shape = data.get("image_shape")
     if image_shape is None:
         return None
     try:
@@ -173,7 +188,8 @@ def _initial_signs(problem: AttackProblem, shape: tuple[int, ...] | None) -> Ten
     return stripes.reshape(problem.x.shape)
 
 
-def _propose(problem: AttackProblem, delta: Tensor, active: Tensor, shape, fraction: float) -> Tensor:
+def _propose(problem: AttackProblem, delta: Tensor, active: Tensor, shape, fraction: float,
+             p_init: float) -> Tensor:
     """``delta`` with one window per point re-drawn at +-eps."""
     n = int(active.numel())
     eps_b = problem.eps_b[active]
@@ -197,3 +213,97 @@ def _propose(problem: AttackProblem, delta: Tensor, active: Tensor, shape, fract
     image = delta.reshape(n, channels, height, width)
     scale = eps_b.reshape(n, 1, 1, 1)
     return torch.where(window, scale * signs, image).reshape(delta.shape)
+
+
+# ------------------------------------------------------------------ L2 square search
+def _bump(side: int, dtype) -> Tensor:
+    """A square bump [side, side] of unit L2 norm: ring ``r`` (counted from the outside in
+    by Chebyshev distance to the centre) carries ``sum_{k >= r} 1 / (k + 1)^2``, so the
+    centre is largest and each ring outward smaller."""
+    centre = (side - 1) / 2
+    index = torch.arange(side, dtype=torch.float64)
+    ring_out = torch.maximum((index[:, None] - centre).abs(), (index[None, :] - centre).abs())
+    ring = torch.floor(ring_out + 1e-9).long()  # 0 at the centre
+    rings = int(ring.max()) + 1
+    weight = (1.0 / (torch.arange(rings, dtype=torch.float64) + 1) ** 2).flip(0).cumsum(0).flip(0)
+    bump = weight[ring]
+    return (bump / bump.norm()).to(dtype)
+
+
+def _window_masks(n: int, height: int, width: int, side: int, generator: torch.Generator) -> tuple[Tensor, Tensor, Tensor]:
+    """Random h x h windows, one per point: a mask [n, 1, H, W] and their corners [n]."""
+    top = torch.randint(0, height - side + 1, (n, 1), generator=generator)
+    left = torch.randint(0, width - side + 1, (n, 1), generator=generator)
+    rows = (torch.arange(height) >= top) & (torch.arange(height) < top + side)
+    cols = (torch.arange(width) >= left) & (torch.arange(width) < left + side)
+    return (rows[:, :, None] & cols[:, None, :]).unsqueeze(1), top.view(-1), left.view(-1)
+
+
+def _initial_sphere(problem: AttackProblem, shape: tuple[int, ...] | None) -> Tensor:
+    """A unit-L2 direction per point: a tiling of random-sign bumps for images, else a
+    Gaussian direction (uniform on the sphere)."""
+    n = problem.points
+    if shape is None:
+        direction = torch.randn(tuple(problem.x.shape), generator=problem.generator, dtype=problem.x.dtype)
+    else:
+        channels, height, width = shape
+        side = max(1, min(height, width) // 4)
+        tiles_h, tiles_w = -(-height // side), -(-width // side)
+        bump = _bump(side, problem.x.dtype).repeat(tiles_h, tiles_w)[:height, :width]
+        signs = _rademacher((n, channels, tiles_h, tiles_w), problem).cpu()
+        signs = signs.repeat_interleave(side, 2).repeat_interleave(side, 3)[:, :, :height, :width]
+        direction = (signs * bump).reshape(problem.x.shape)
+    direction = direction.to(problem.x.device)
+    size = direction.flatten(1).norm(dim=1).clamp_min(1e-30)
+    return direction / size.view((-1,) + (1,) * (direction.ndim - 1))
+
+
+def _propose_sphere(problem: AttackProblem, delta: Tensor, active: Tensor, shape, fraction: float,
+                    p_init: float) -> Tensor:
+    """``delta`` moved on the sphere ``|delta|_2 = eps`` (see :func:`square`)."""
+    n = int(active.numel())
+    eps_b = problem.eps_b[active]
+    dims = (-1,) + (1,) * (delta.ndim - 1)
+    if shape is None:
+        features = int(delta[0].numel())
+        count = max(1, min(features, int(round(fraction * features))))
+        order = torch.rand((n, features), generator=problem.generator).argsort(dim=1)[:, :count]
+        step = torch.zeros((n, features), dtype=delta.dtype).scatter_(
+            1, order, torch.randn((n, count), generator=problem.generator, dtype=delta.dtype))
+        step = step.to(delta.device).view_as(delta)
+        # A step of half the radius at p_init, shrinking as sqrt(p) along the schedule.
+        scale = 0.5 * (fraction / p_init) ** 0.5
+        step = step / step.flatten(1).norm(dim=1).clamp_min(1e-30).view(dims) * eps_b * scale
+        moved = delta + step
+        return moved / moved.flatten(1).norm(dim=1).clamp_min(1e-30).view(dims) * eps_b
+    channels, height, width = shape
+    side = max(1, min(height - 1, int(round((fraction * height * width) ** 0.5))))
+    image = delta.reshape(n, channels, height, width)
+    into, top, left = _window_masks(n, height, width, side, problem.generator)
+    out_of, _, _ = _window_masks(n, height, width, side, problem.generator)
+    into, out_of = into.to(delta.device), out_of.to(delta.device)
+    both = into | out_of
+    energy = (image * both).flatten(2).norm(dim=2).view(n, channels, 1, 1)  # per point and channel
+    # the bump placed at each point's first window
+    bump = _bump(side, delta.dtype).to(delta.device)
+    placed = torch.zeros((n, 1, height, width), dtype=delta.dtype, device=delta.device)
+    rows = top.to(delta.device).view(n, 1, 1) + torch.arange(side, device=delta.device).view(1, side, 1)
+    cols = left.to(delta.device).view(n, 1, 1) + torch.arange(side, device=delta.device).view(1, 1, side)
+    placed[torch.arange(n, device=delta.device).view(n, 1, 1), 0, rows, cols] = bump
+    signs = _rademacher((n, channels, 1, 1), problem)
+    empty = energy <= 1e-12 * eps_b.view(n, 1, 1, 1)
+    # An empty pair borrows the share a uniform perturbation would give the window.
+    share = eps_b.view(n, 1, 1, 1) * (side * side / (height * width * channels)) ** 0.5
+    amount = torch.where(empty, share, energy)
+    bumped = signs * amount * placed
+    grown = image * into + bumped
+    size = grown.flatten(2).norm(dim=2).view(n, channels, 1, 1)
+    # the window's old content cancelled by the bump: take the bump alone
+    cancelled = size <= 1e-6 * amount
+    grown = torch.where(cancelled, bumped, grown)
+    size = torch.where(cancelled, amount, size).clamp_min(1e-30)
+    moved = torch.where(both, grown * (amount / size), image).reshape(delta.shape)
+    # Only a borrowed share changes the norm: put those points back on their sphere.
+    borrowed = empty.flatten(1).any(1).view(dims)
+    rescaled = moved / moved.flatten(1).norm(dim=1).clamp_min(1e-30).view(dims) * eps_b
+    return torch.where(borrowed, rescaled, moved)

@@ -68,7 +68,8 @@ def attack(ens, x: Any, y: Any = None, method: str = "pgd", eps: Any = 0.1, norm
         ``fgsm``: ``record_path``. ``cw``: ``kappa`` (0), ``search_steps`` (6), ``c_init`` (1),
         ``learning_rate`` (0.01), ``record_path``. ``spsa``: ``step_size``, ``delta`` (0.01),
         ``directions`` (32), ``random_start`` (False), ``record_path``. ``square``:
-        ``p_init`` (0.05), ``image_shape`` (from ``ens.meta``), ``record_path``.
+        ``p_init`` (0.05), ``image_shape`` (from ``ens.meta``, or the fit's ``meta["data"]``),
+        ``record_path``.
 
     Returns
     -------
@@ -102,9 +103,6 @@ def attack(ens, x: Any, y: Any = None, method: str = "pgd", eps: Any = 0.1, norm
     steps = check_int("steps", steps, low=1)
     if method == "cw" and norm != "2":
         raise ValueError(f"method 'cw' is an L2 attack: norm must be '2'; got {_show(norm)}")
-    if method == "square" and norm == "2":
-        raise ValueError("method 'square' supports norm 'inf' only; use method 'spsa' for a "
-                         "gradient-free L2 attack; got norm '2'")
     problem = build_problem(ens, x, y, eps=eps, norm=norm, objective=objective, samples=samples,
                             resample=resample, target=target, bounds=bounds, seed=seed, judge=judge,
                             per_point_eps=method in ("pgd", "fgsm"))

@@ -75,6 +75,7 @@ def masking_check(ens, x: Any, y: Any = None, eps: float = 0.1, norm: str = "inf
     tolerance : float
         Share of points by which an expectation may be missed before it is flagged.
     gradient_free : {"square", "spsa"}, optional
+        Default Square for L-inf and SPSA on the margin for L2; either runs in either norm.
     free_steps : int, optional
         Iterations of the gradient-free attack (default ``10 * steps`` for Square, ``steps``
         for SPSA).
@@ -136,8 +137,6 @@ def _scales(budget_scales: Any) -> list[float]:
 
 def _free_attack(ens, x, y, method, eps, steps, free_steps, common):
     if method == "square":
-        if common["norm"] != "inf":
-            raise ValueError("gradient_free='square' needs norm 'inf'; use 'spsa' for norm '2'")
         iterations = 10 * steps if free_steps is None else check_int("free_steps", free_steps, low=1)
         return attack(ens, x, y, method="square", eps=eps, steps=iterations, record_path=False, **common)
     iterations = steps if free_steps is None else check_int("free_steps", free_steps, low=1)

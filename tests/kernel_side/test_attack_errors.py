@@ -31,7 +31,7 @@ def x():
     ({"seed": -1}, r"seed must be an integer >= 0; got -1"),
     ({"threads": 0}, r"threads must be an integer >= 1; got 0"),
     ({"method": "cw"}, r"method 'cw' is an L2 attack: norm must be '2'; got 'inf'"),
-    ({"method": "square", "norm": "2"}, r"method 'square' supports norm 'inf' only; use method 'spsa'"),
+    ({"method": "square", "p_init": 0.0}, r"p_init must be a finite float > 0 and <= 1; got 0"),
     ({"kappa": 1.0}, r"method 'pgd' takes options \[.*\]; got unknown \['kappa'\]"),
     ({"restarts": 3, "random_start": False}, r"restarts > 1 needs random_start=True"),
     ({"restarts": 0}, r"restarts must be an integer >= 1; got 0"),
@@ -115,5 +115,5 @@ def test_masking_check_refuses_bad_arguments(ens, x):
         jostle.masking_check(ens, x, tolerance=2.0)
     with pytest.raises(ValueError, match=r"few_samples must be an integer in \[1, 2\]; got 3"):
         jostle.masking_check(ens, x, few_samples=3)
-    with pytest.raises(ValueError, match=r"gradient_free='square' needs norm 'inf'; use 'spsa' for norm '2'"):
-        jostle.masking_check(ens, x, norm="2", gradient_free="square")
+    with pytest.raises(ValueError, match=r"free_steps must be an integer >= 1; got 0"):
+        jostle.masking_check(ens, x, norm="2", gradient_free="square", free_steps=0)

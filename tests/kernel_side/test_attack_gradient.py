@@ -174,7 +174,8 @@ def test_l2_fgsm_follows_each_objective_gradient():
     assert float((expected - predictive).abs().max()) > 1e-3
 
 
-@pytest.mark.parametrize("method, norm", [("fgsm", "2"), ("cw", "2"), ("spsa", "inf"), ("square", "inf")])
+@pytest.mark.parametrize("method, norm", [("fgsm", "2"), ("cw", "2"), ("spsa", "inf"), ("square", "inf"),
+                                         ("square", "2")])
 def test_every_method_is_deterministic_under_a_seed(method, norm):
     ens, _ = random_mlp_ensemble(members=3, classes=2, hidden=(8,), seed=12)
     x = torch.randn(6, 2, generator=torch.Generator().manual_seed(12))
