@@ -41,7 +41,7 @@ METHODS: dict[str, str] = {
 #: methods that give a single network (S = 1); every other method is Bayesian
 DETERMINISTIC_METHODS = ("map",)
 ATTACK_METHODS = ("fgsm", "pgd", "cw", "spsa", "square")
-DATASETS = ("moons", "circles", "spirals", "digits")
+DATASETS = ("moons", "circles", "spirals", "digits", "leak_alarm")
 _TARGETS = ("predicted", "true")
 _OBJECTIVES = ("expected_loss", "predictive", "margin")
 # Arguments the sweep sets itself and so may not appear among a method's hyper-parameters.

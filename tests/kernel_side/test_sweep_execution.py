@@ -275,3 +275,19 @@ method = "fgsm"
 method = "pgd"
 steps = 5
 """
+
+
+def test_the_demo_leak_alarm_data_runs_through_a_sweep(tmp_path):
+    # The scenario's data set is a sweep data set like the others; its rows carry its name
+    # and the run's data are jostle.datasets.leak_alarm with the same arguments.
+    from jostle.sweep_run import load_run_data
+
+    sweep = jostle.Sweep(**dict(TINY, datasets=[{"name": "leak_alarm", "n_test": 40}], seeds=[0]))
+    run = sweep.runs()[0]
+    assert run["data"] == {"name": "leak_alarm", "n_train": 40, "n_test": 40, "noise": 0.2, "seed": 0}
+    direct = jostle.datasets.leak_alarm(n_train=40, n_test=40)
+    loaded = load_run_data(run["data"])
+    assert np.array_equal(loaded.x_train.numpy(), direct.x_train.numpy()) and loaded.classes == ["steady", "leak"]
+    summary = sweep.run(store=tmp_path / "runs.sqlite", progress_bar=False)
+    assert summary.finished == 2
+    assert set(sweep.results()["dataset"]) == {"leak_alarm"}
