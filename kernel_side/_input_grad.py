@@ -76,7 +76,7 @@ class ExpectedLossGradient:
 
     def __init__(self, layers, flatten: bool, labels: Tensor, sign: float, members: int, chunk_bytes: int):
         self.flatten = flatten
-        self.labels = labels
+        self.labels = labels.to(device=layers[0][0].device, dtype=torch.long)
         self.sign = sign
         self.members = members
         self.layers = layers  # [(weight [s, out, in], bias [s, out] | None, activation | None)]
@@ -103,9 +103,9 @@ class ExpectedLossGradient:
                                   dtype=dtype, device=device)
         where = torch.arange(points, device=device)
         if self.narrow:
-            self.onehot[0, labels, where] = 1
+            self.onehot[0, self.labels, where] = 1
         else:
-            self.onehot[0, where, labels] = 1
+            self.onehot[0, where, self.labels] = 1
         # two classes: [1, 1, n], +1 where the label is 0 and -1 where it is 1
         self.signs = (1 - 2 * self.onehot[:, 1:2]) if self.classes == 2 else None
         self.ones = torch.ones(min(points, self.point_chunk), 1, dtype=dtype, device=device)
