@@ -88,7 +88,7 @@ def bnn_fit() -> None:
     began, cpu = time.perf_counter(), time.process_time()
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", ConvergenceWarning)
-        ens = jostle.fit_hmc(net, data, samples=100, chains=4, seed=0)
+        ens = jostle.fit_hmc(net, data, samples=100, chains=4, seed=0, progress=False)
     wall, cpu = time.perf_counter() - began, time.process_time() - cpu
     d = ens.meta["diagnostics"]
     accuracy = float((ens.predict(data.x_test).label == data.y_test).double().mean())
