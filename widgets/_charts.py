@@ -172,7 +172,7 @@ def fade_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
     reference = bq.Lines(x=[1.0], y=[1.0], scales=scales, colors=[INK], line_style="dashed", stroke_width=1)
     current = bq.Lines(x=[1.0, 1.0], y=[1.0, 1.0], scales=scales, colors=[INK], stroke_width=1, line_style="dotted")
     x_axis = bq.Axis(scale=xs, label="posterior samples S", tick_format="d", tick_values=np.array([1, 10]))
-    y_axis = bq.Axis(scale=ys, side="left", label="gradient norm", tick_format=".0e", num_ticks=3)
+    y_axis = bq.Axis(scale=ys, side="left", label="gradient norm", tick_format=".2~g", tick_values=np.array([1.0]))
     figure = _figure("fade-chart", "expected gradient against samples", [band, mean, reference, current],
                      [x_axis, y_axis])
 
@@ -194,8 +194,31 @@ def fade_chart() -> tuple[bq.Figure, Callable[[Any], None]]:
             s = float(view.state.samples)
             current.x, current.y = np.array([s, s]), np.array([positive.min(), positive.max()])
         x_axis.tick_values = counts[np.unique(np.round(np.linspace(0, len(counts) - 1, min(4, len(counts)))).astype(int))]
+        y_axis.tick_values = log_ticks(float(positive.min()), float(positive.max()))
 
     return figure, update
+
+
+def log_ticks(low: float, high: float, most: int = 4) -> np.ndarray:
+    """Ticks for a log axis over [low, high] (common practice for log axes): the 1-2-5
+    numbers inside it when at most ``most`` of them are, else the powers of ten inside it
+    (thinned evenly to ``most``, ends kept); the two ends rounded to two significant digits
+    when fewer than two nice numbers fall inside."""
+    low, high = max(min(low, high), 1e-300), max(low, high, 1e-300)
+    first, last = math.floor(math.log10(low)), math.ceil(math.log10(high))
+
+    def inside(values):
+        return [v for v in values if low * (1 - 1e-9) <= v <= high * (1 + 1e-9)]
+
+    nice = inside([m * 10.0 ** k for k in range(first, last + 1) for m in (1.0, 2.0, 5.0)])
+    if len(nice) < 2:
+        return np.array(sorted({float(f"{low:.2g}"), float(f"{high:.2g}")}))
+    if len(nice) <= most:
+        return np.array(nice)
+    decades = inside([10.0 ** k for k in range(first, last + 1)])
+    ticks = decades if len(decades) >= 2 else nice
+    keep = np.unique(np.round(np.linspace(0, len(ticks) - 1, min(most, len(ticks)))).astype(int))
+    return np.array([ticks[i] for i in keep])
 
 
 class LossAxis(NamedTuple):

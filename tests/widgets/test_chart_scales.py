@@ -152,3 +152,19 @@ def explorer_view(moons):
     assert ex.wait(60)
     yield ex
     ex.close()
+
+
+def test_log_ticks_are_nice_numbers_inside_the_range():
+    # 1-2-5 ticks on a log axis (common practice), never outside the data, at most 4.
+    from jostle.widgets._charts import log_ticks
+
+    assert log_ticks(0.3, 10.0).tolist() == [1.0, 10.0]          # five 1-2-5 numbers: decades only
+    assert log_ticks(0.15, 0.6).tolist() == [0.2, 0.5]
+    assert log_ticks(0.15, 2.5).tolist() == [0.2, 0.5, 1.0, 2.0]
+    assert log_ticks(1.0, 1000.0).tolist() == [1.0, 10.0, 100.0, 1000.0]
+    narrow = log_ticks(6.1, 6.9)  # no 1-2-5 number inside: the ends, to two digits
+    assert narrow.tolist() == [6.1, 6.9]
+    for low, high in [(1e-6, 3e-6), (0.02, 40.0), (5.0, 5.0), (3e-9, 2e3)]:
+        ticks = log_ticks(low, high)
+        assert 1 <= len(ticks) <= 4
+        assert ticks.min() >= low * 0.95 and ticks.max() <= high * 1.05
