@@ -225,7 +225,8 @@ class ExpectedLossGradient:
         attacks (a widget dragging a point, a budget sweep) reuse them too, and a
         background thread never shares them. The views are built once per kernel.
         """
-        key = (points, like.dtype, like.device)
+        # per thread too: a kernel shared between threads must not share its blocks
+        key = (points, like.dtype, like.device, threading.get_ident())
         if key in self._spaces:
             return self._spaces[key]
         pool = _POOL.__dict__.setdefault("blocks", {})

@@ -313,3 +313,30 @@ def test_runs_on_a_cuda_device_and_matches_the_cpu():
     params = {k: v.detach() for k, v in gpu.params.items()}
     got = ExpectedLossGradient.try_build(gpu._plan.steps, params, labels.cuda(), 1.0)(x.cuda())
     _assert_match([t.cpu() for t in got], want, torch.float64)
+
+
+def test_one_kernel_called_from_two_threads_at_once():
+    # Each thread evaluates on blocks of its own, even through one shared kernel.
+    make, shape, classes = CASES["2d-tanh-2-classes"]
+    ens = _ensemble(make, members=12)
+    labels = _labels(30, classes)
+    kernel = _planned(ens, labels)
+    xs = [_points(30, shape, seed=s) for s in range(4)]
+    wants = [_reference(ens, x, labels) for x in xs]
+    failures = []
+
+    def work(offset):
+        for _ in range(30):
+            for i in range(len(xs)):
+                j = (i + offset) % len(xs)
+                try:
+                    _assert_match(kernel(xs[j]), wants[j], torch.float64)
+                except AssertionError as error:  # pragma: no cover - reported below
+                    failures.append(error)
+
+    threads = [threading.Thread(target=work, args=(k,)) for k in (0, 1)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert not failures
