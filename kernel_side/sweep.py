@@ -118,7 +118,9 @@ class Sweep:
         client : dask.distributed.Client, optional
             Send each run to this cluster as its own task; None runs them here, one by one.
         save_ensembles : bool
-            Save each fitted ensemble as ``<store>.ensembles/<key>.safetensors``.
+            Save each fitted ensemble as ``<store>.ensembles/<key>.safetensors``. Stored
+            runs without a saved ensemble then run again to save one (runs are seeded, so
+            they reproduce their stored results).
         retry_failed : bool
             Run again the runs stored as failed (default); False leaves them as they are.
         progress : callable, optional
@@ -134,8 +136,17 @@ class Sweep:
         configs = self.runs()
         with RunStore(path) as db:
             stored = db.statuses(run_key(c) for c in configs)
-            pending = [c for c in configs if run_key(c) not in stored
-                       or (retry_failed and stored[run_key(c)] == "failed")]
+
+            def wanted(key: str) -> bool:
+                if key not in stored:
+                    return True
+                if stored[key] == "failed":
+                    return retry_failed
+                # asked to save ensembles: a stored run without one runs again (it is seeded)
+                saved = db.ensemble_file(key) if save_ensembles else None
+                return save_ensembles and (saved is None or not saved.exists())
+
+            pending = [c for c in configs if wanted(run_key(c))]
             summary = SweepSummary(total=len(configs), skipped=len(configs) - len(pending))
             with _progress_bar(len(pending), self.name, progress_bar) as bar:
                 def commit(record: dict) -> None:

@@ -158,6 +158,31 @@ def test_saved_ensembles_reload_with_the_same_predictions(tmp_path):
     assert jostle.metrics.accuracy(ens.predict(data.x_test), data.y_test) == pytest.approx(accuracy, abs=1e-12)
 
 
+
+def test_asking_for_saved_ensembles_later_runs_the_stored_runs_again(tmp_path):
+    # Stored without ensembles, then asked to save them: each run is fitted again (the
+    # same seeded run, so the same metrics) and its ensemble written; a third call skips.
+    path = tmp_path / "runs.sqlite"
+    sweep = jostle.Sweep(**dict(TINY, methods=TINY["methods"][:1]))
+    first = sweep.run(store=path, progress_bar=False)
+    assert first.finished == 2
+    with RunStore(path, readonly=True) as db:
+        before = {r["key"]: r["accuracy"] for r in db.runs()}
+        assert all(db.ensemble_file(k) is None for k in before)
+    second = sweep.run(store=path, save_ensembles=True, progress_bar=False)
+    assert (second.skipped, second.finished) == (0, 2)
+    with RunStore(path, readonly=True) as db:
+        for run in db.runs():
+            assert run["accuracy"] == before[run["key"]] and run["attempts"] == 2
+            assert db.ensemble_file(run["key"]).exists()
+    third = sweep.run(store=path, save_ensembles=True, progress_bar=False)
+    assert (third.skipped, third.finished) == (2, 0)
+    # a saved file that went missing is made again
+    with RunStore(path, readonly=True) as db:
+        db.ensemble_file(sweep.keys()[0]).unlink()
+    fourth = sweep.run(store=path, save_ensembles=True, progress_bar=False)
+    assert (fourth.skipped, fourth.finished) == (1, 1)
+
 @pytest.mark.slow
 def test_killing_a_worker_mid_sweep_loses_no_run(client, tmp_path):
     path = tmp_path / "runs.sqlite"
