@@ -28,7 +28,10 @@ an attack step costs little beyond its arithmetic:
   almost nothing.
 
 :meth:`ExpectedLossGradient.member_gradients` runs the same passes and keeps each member's
-gradient apart (for the fading-gradient read-outs).
+gradient apart (for the fading-gradient read-outs), and
+:meth:`ExpectedLossGradient.head_value_and_grad` runs them for any head over all members'
+logits (the predictive loss, the margin), with autograd on the logits alone, when one
+chunk holds every member and point.
 
 Anything else (other activations, a network ending in an activation, a single Linear
 layer) returns None from :meth:`ExpectedLossGradient.try_build` and the caller falls back
@@ -256,6 +259,52 @@ class ExpectedLossGradient:
         self._spaces[key] = spaces
         return spaces
 
+    def _forward(self, chunk: dict, space: dict, x_aug: Tensor, points: int) -> list[Tensor]:
+        """One member chunk's forward pass to the head's input, keeping each activation's
+        output for its derivative: ``kept[0]`` [k, n, width] (a view of the point-by-point
+        first layer), then one [k, n, width] block per hidden layer."""
+        first = space["first"]  # [n, k * width]: point by point
+        torch.mm(x_aug, chunk["first_aug"], out=first)
+        first_act = self.layers[0][2]
+        if first_act is not None:
+            _ACTIVATIONS[first_act][0](first)
+        kept = [first.view(points, chunk["k"], -1).transpose(0, 1)]
+        for index, ((wt, _, bias), layer) in enumerate(zip(chunk["hidden"], self.layers[1:-1])):
+            h = torch.bmm(kept[-1], wt, out=space[f"hidden{index}"])
+            if bias is not None:
+                h.add_(bias)
+            if layer[2] is not None:
+                _ACTIVATIONS[layer[2]][0](h)
+            kept.append(h)
+        return kept
+
+    def _logits(self, chunk: dict, kept: list[Tensor]) -> Tensor:
+        """The chunk's logits: [k, C, n] for a narrow head, [k, n, C] for a wide one."""
+        if self.narrow:
+            return torch.baddbmm(chunk["head_b"], chunk["head_w"], kept[-1].transpose(1, 2))
+        logits = torch.bmm(kept[-1], chunk["head_wt"])
+        return logits if chunk["head_b"] is None else logits.add_(chunk["head_b"])
+
+    def _backward(self, chunk: dict, space: dict, kept: list[Tensor], delta: Tensor, points: int) -> Tensor:
+        """From the gradient at the head's input [k, n, width] back through the hidden layers
+        and the first layer's activation; returns the point-by-point gradient at the first
+        layer's output, ``spread`` [n, k * width], and leaves its [k, n, width] view in
+        ``space["spread_view"]``."""
+        for index in range(len(chunk["hidden"]), 0, -1):
+            act = self.layers[index][2]
+            if act is not None:
+                _ACTIVATIONS[act][1](delta, kept[index], delta)
+            delta = torch.bmm(delta, chunk["hidden"][index - 1][1], out=space[f"delta{index - 1}"])
+        spread = space["spread"]
+        target = spread.view(points, chunk["k"], -1).transpose(0, 1)
+        first_act = self.layers[0][2]
+        if first_act is not None:
+            _ACTIVATIONS[first_act][1](delta, kept[0], target)
+        else:
+            target.copy_(delta)
+        space["spread_view"] = target
+        return spread
+
     def _points(self, x: Tensor, where: slice, members_out: Tensor | None = None) -> tuple[Tensor, Tensor] | None:
         """Summed log-probability of the labels and summed loss gradient over all members;
         with ``members_out`` [s, n, in], each member's own loss gradient written there instead."""
@@ -265,23 +314,9 @@ class ExpectedLossGradient:
         grad_t = torch.zeros(self.in_features, points, dtype=x.dtype, device=x.device)  # [in, n]
         log_prob = None
         x_aug = torch.cat([x, self.ones[:points]], 1)
-        first_act = self.layers[0][2]
-        hidden_acts = [layer[2] for layer in self.layers[1:-1]]
         for chunk, space in zip(self.chunks, self._workspace(points, x)):
             k = chunk["k"]
-            # ---- forward, keeping each activation's output for its derivative
-            first = space["first"]  # [n, k * width]: point by point
-            torch.mm(x_aug, chunk["first_aug"], out=first)
-            if first_act is not None:
-                _ACTIVATIONS[first_act][0](first)
-            kept = [first.view(points, k, -1).transpose(0, 1)]  # [k, n, width], a view
-            for index, ((wt, _, bias), act) in enumerate(zip(chunk["hidden"], hidden_acts)):
-                h = torch.bmm(kept[-1], wt, out=space[f"hidden{index}"])
-                if bias is not None:
-                    h.add_(bias)
-                if act is not None:
-                    _ACTIVATIONS[act][0](h)
-                kept.append(h)
+            kept = self._forward(chunk, space, x_aug, points)
             delta = space["delta_head"]
             if self.classes == 2:
                 # Two classes: only t = s (z_0 - z_1) matters, s = +1 for label 0 and -1 for
@@ -293,37 +328,17 @@ class ExpectedLossGradient:
                 summed = torch.nn.functional.logsigmoid(t).sum(0)
                 log_prob = summed if log_prob is None else log_prob.add_(summed)
                 torch.mul(t.neg_().sigmoid_().transpose(1, 2), chunk["head_diff"], out=delta)
-            elif self.narrow:
-                logits = torch.baddbmm(chunk["head_b"], chunk["head_w"], kept[-1].transpose(1, 2))  # [k, C, n]
             else:
-                logits = torch.bmm(kept[-1], chunk["head_wt"])  # [k, n, C]
-                if chunk["head_b"] is not None:
-                    logits.add_(chunk["head_b"])
-            if self.classes != 2:
-                log_p = torch.log_softmax(logits, 1 if self.narrow else 2)
+                log_p = torch.log_softmax(self._logits(chunk, kept), 1 if self.narrow else 2)
                 summed = log_p.sum(0)
                 log_prob = summed if log_prob is None else log_prob.add_(summed)
-                # ---- backward: d CE / d logits = softmax - onehot
+                # d CE / d logits = softmax - onehot
                 upstream = log_p.exp_().sub_(onehot)
-                if self.narrow:
-                    torch.bmm(upstream.transpose(1, 2), chunk["head_w"], out=delta)
-                else:
-                    torch.bmm(upstream, chunk["head_w"], out=delta)
-            for index in range(len(chunk["hidden"]), 0, -1):
-                act = hidden_acts[index - 1]
-                if act is not None:
-                    _ACTIVATIONS[act][1](delta, kept[index], delta)
-                delta = torch.bmm(delta, chunk["hidden"][index - 1][1], out=space[f"delta{index - 1}"])
-            # back to the point-by-point layout of the first layer, through its activation
-            spread = space["spread"]
-            target = spread.view(points, k, -1).transpose(0, 1)
-            if first_act is not None:
-                _ACTIVATIONS[first_act][1](delta, kept[0], target)
-            else:
-                target.copy_(delta)
+                torch.bmm(upstream.transpose(1, 2) if self.narrow else upstream, chunk["head_w"], out=delta)
+            spread = self._backward(chunk, space, kept, delta, points)
             if members_out is not None:
                 # per member, as W_s^T-side products: [k, in, width] @ [k, width, n]
-                per_member = torch.bmm(chunk["first_w"].transpose(1, 2), target.transpose(1, 2))
+                per_member = torch.bmm(chunk["first_w"].transpose(1, 2), space["spread_view"].transpose(1, 2))
                 if self.classes == 2:
                     per_member.mul_(signs).neg_()
                 members_out[chunk["start"]:chunk["start"] + k].copy_(per_member.transpose(1, 2))
@@ -339,6 +354,38 @@ class ExpectedLossGradient:
         value = log_prob.gather(0 if self.narrow else 1, label_index).view(-1)
         return value, grad_t.T.contiguous()
 
+    # ------------------------------------------------------------------ any head
+    @property
+    def takes_any_head(self) -> bool:
+        """Whether :meth:`head_value_and_grad` can run: one chunk holds every member and point."""
+        return len(self.chunks) == 1 and self.point_chunk >= self.points
+
+    @torch.no_grad()
+    def head_value_and_grad(self, x: Tensor, head) -> tuple[Tensor, Tensor]:
+        """``head(logits [s, n, C], slice) -> [n]`` over every member's logits, and its input
+        gradient: the same planned passes, with autograd on the head alone (for objectives
+        that are not a mean of per-member terms, such as the predictive loss or the
+        margin). Needs :attr:`takes_any_head`; the labels given at build time are unused."""
+        if not self.takes_any_head:
+            raise ValueError("head_value_and_grad needs every member and point in one chunk; "
+                             f"this plan has {len(self.chunks)} member chunks of {self.point_chunk} points")
+        shape = x.shape
+        flat = x.reshape(shape[0], -1) if self.flatten else x
+        self._check(flat, shape)
+        points = int(flat.shape[0])
+        chunk, space = self.chunks[0], self._workspace(points, flat)[0]
+        x_aug = torch.cat([flat, self.ones[:points]], 1)
+        kept = self._forward(chunk, space, x_aug, points)
+        logits = self._logits(chunk, kept)
+        with torch.enable_grad():
+            leaf = (logits.transpose(1, 2) if self.narrow else logits).detach().requires_grad_(True)
+            value = head(leaf, slice(0, points))
+            (upstream,) = torch.autograd.grad(value.sum(), leaf)  # [s, n, C]
+        delta = space["delta_head"]
+        torch.bmm(upstream, chunk["head_w"], out=delta)
+        spread = self._backward(chunk, space, kept, delta, points)
+        grad_t = torch.mm(chunk["first_cat"], spread.T)
+        return value.detach(), grad_t.T.contiguous().reshape(shape)
 
 def _numel(shape: tuple) -> int:
     numel = 1

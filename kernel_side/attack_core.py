@@ -211,15 +211,16 @@ class AttackProblem:
         labels = self.target if self.target is not None else self.label
         sign = -1.0 if self.target is not None else 1.0
         chosen = self.members()
-        if name == "expected_loss":
-            kernel = self._planned_kernel(chosen, labels, sign)
-            if kernel is not None:
-                return kernel(self.ens._prepare_input(x_adv.detach()))
 
         def head(logits: Tensor, where: slice) -> Tensor:
             return sign * _objective(logits, labels[where], name)
 
         x = self.ens._prepare_input(x_adv.detach())
+        kernel = self._planned_kernel(chosen, labels, sign)
+        if kernel is not None and name == "expected_loss":
+            return kernel(x)
+        if kernel is not None and kernel.takes_any_head:
+            return kernel.head_value_and_grad(x, head)
         params = {k: v.detach() for k, v in self.ens._selected(chosen).items()}
         return self.ens._plan.value_and_input_grad(params, x, self.ens.memory_budget, head,
                                                    separable=name == "expected_loss")

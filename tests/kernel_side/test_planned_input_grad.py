@@ -340,3 +340,58 @@ def test_one_kernel_called_from_two_threads_at_once():
     for t in threads:
         t.join()
     assert not failures
+
+
+def _reference_head(ens, x, labels, objective, sign=1.0):
+    from jostle.attack_core import _objective
+
+    leaf = x.detach().clone().requires_grad_(True)
+    value = sign * _objective(ens.logits(leaf), labels, objective)
+    (grad,) = torch.autograd.grad(value.sum(), leaf)
+    return value.detach(), grad
+
+
+@pytest.mark.parametrize("objective", ["predictive", "margin", "expected_loss"])
+@pytest.mark.parametrize("case", sorted(CASES))
+def test_any_head_matches_autograd(case, objective):
+    # Reference: torch.autograd through ens.logits of the attack objectives themselves.
+    from jostle.attack_core import _objective
+
+    make, shape, classes = CASES[case]
+    ens = _ensemble(make)
+    x = _points(8, shape)
+    labels = _labels(8, classes)
+    kernel = _planned(ens, labels)
+    assert kernel.takes_any_head
+    for sign in (1.0, -1.0):
+        got = kernel.head_value_and_grad(x, lambda logits, where: sign * _objective(logits, labels[where], objective))
+        _assert_match(got, _reference_head(ens, x, labels, objective, sign), torch.float64)
+
+
+def test_any_head_needs_one_chunk():
+    make, shape, classes = CASES["2d-tanh-2-classes"]
+    ens = _ensemble(make)
+    kernel = _planned(ens, _labels(5, classes), chunk_bytes=300)
+    assert not kernel.takes_any_head
+    with pytest.raises(ValueError, match="head_value_and_grad needs every member and point in one chunk"):
+        kernel.head_value_and_grad(_points(5, shape), lambda logits, where: logits.sum((0, 2)))
+
+
+@pytest.mark.parametrize("objective", ["predictive", "margin"])
+def test_attack_problem_takes_the_planned_head_or_falls_back(monkeypatch, objective):
+    # One chunk: the planned passes with autograd on the head; forced into several
+    # chunks: the general hand backward. Both equal the autograd path (HAND_BACKWARD off).
+    ens = _ensemble(CASES["2d-relu-3-classes"][0])
+    x = _points(6, (2,))
+    results = []
+    for hand, chunk in ((True, None), (True, 300), (False, None)):
+        monkeypatch.setattr(attack_core, "HAND_BACKWARD", hand)
+        if chunk is not None:
+            monkeypatch.setattr(_input_grad, "CHUNK_BYTES", chunk)
+        problem = build_problem(ens, x, None, eps=0.1, norm="inf", objective=objective, samples=None,
+                                resample=False, target=None, bounds=None, seed=3)
+        results.append(problem.objective_and_grad(x + 0.01))
+        if hand:
+            assert problem._planned is not None and problem._planned.takes_any_head == (chunk is None)
+    for got in results[:2]:
+        _assert_match(got, results[2], torch.float64)
