@@ -1,34 +1,9 @@
 // jostle input map: background layer, member boundaries, training points, eps-ball, attack path.
 // Pick the input by click/drag or arrow keys (Shift for larger steps). User strings are text only.
+// typed() and rgb() come from _canvas_helpers.js, served ahead of this module.
 
-/** @typedef {{shape: number[], dtype: string, buffer: DataView}} WireArray */
-
-const TYPED = { float32: Float32Array, float64: Float64Array, int32: Int32Array, uint8: Uint8Array };
 const VIEW_KEYS = ["view_revision", "background", "layer_values", "layer_shown", "layer_max", "segments", "path", "ball_budget",
   "ball_norm", "ball_centre", "success", "train_points", "train_labels", "bounds", "point"];
-
-/** @param {WireArray} w */
-function typed(w) {
-  if (!w || !w.buffer) return new Float32Array(0);
-  const T = TYPED[w.dtype] || Float32Array;
-  const b = w.buffer;
-  if (b.byteOffset % T.BYTES_PER_ELEMENT) return new T(b.buffer.slice(b.byteOffset, b.byteOffset + b.byteLength));
-  return new T(b.buffer, b.byteOffset, b.byteLength / T.BYTES_PER_ELEMENT);
-}
-
-/** Any CSS colour (hex, rgb(), names) as [r, g, b], resolved by the canvas itself. */
-const probe = document.createElement("canvas").getContext("2d");
-function rgb(colour) {
-  probe.fillStyle = "#888888";
-  probe.fillStyle = (colour || "").trim() || "#888888";
-  const value = String(probe.fillStyle);
-  if (value.startsWith("#")) {
-    const n = parseInt(value.slice(1, 7), 16);
-    return [(n >> 16) & 255, (n >> 8) & 255, n & 255];
-  }
-  const parts = value.match(/[\d.]+/g) || [];
-  return parts.length >= 3 ? parts.slice(0, 3).map(Number) : [136, 136, 136];
-}
 
 /** @param {HTMLElement} root */
 function palette(root) {

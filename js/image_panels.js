@@ -1,31 +1,9 @@
 // jostle image panels: the chosen image, the perturbation on a diverging scale, the attacked image.
-
-/** @typedef {{shape: number[], dtype: string, buffer: DataView}} WireArray */
-
-/** @param {WireArray} w */
-function floats(w) {
-  if (!w || !w.buffer) return new Float32Array(0);
-  const b = w.buffer;
-  return new Float32Array(b.buffer.slice(b.byteOffset, b.byteOffset + b.byteLength));
-}
-
-/** Any CSS colour (hex, rgb(), names) as [r, g, b], resolved by the canvas itself. */
-const probe = document.createElement("canvas").getContext("2d");
-function rgb(colour) {
-  probe.fillStyle = "#888888";
-  probe.fillStyle = (colour || "").trim() || "#888888";
-  const value = String(probe.fillStyle);
-  if (value.startsWith("#")) {
-    const n = parseInt(value.slice(1, 7), 16);
-    return [(n >> 16) & 255, (n >> 8) & 255, n & 255];
-  }
-  const parts = value.match(/[\d.]+/g) || [];
-  return parts.length >= 3 ? parts.slice(0, 3).map(Number) : [136, 136, 136];
-}
+// typed() and rgb() come from _canvas_helpers.js, served ahead of this module.
 
 /** @param {HTMLCanvasElement} canvas @param {WireArray} w @param {(v: number) => number[]} colour */
 function paint(canvas, w, colour) {
-  const values = floats(w);
+  const values = typed(w);
   if (!w || w.shape.length !== 2 || values.length === 0) { canvas.width = canvas.width; return; }
   const [height, width] = w.shape;
   canvas.width = width; canvas.height = height;

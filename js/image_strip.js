@@ -1,28 +1,6 @@
 // jostle image strip: choose a test image by click, or Enter / Space on a focused thumbnail.
 // Arrow keys move the focus along the strip. Captions are text only.
-
-/** @typedef {{shape: number[], dtype: string, buffer: DataView}} WireArray */
-
-/** @param {WireArray} w */
-function floats(w) {
-  if (!w || !w.buffer) return new Float32Array(0);
-  const b = w.buffer;
-  return new Float32Array(b.buffer.slice(b.byteOffset, b.byteOffset + b.byteLength));
-}
-
-/** Any CSS colour (hex, rgb(), names) as [r, g, b], resolved by the canvas itself. */
-const probe = document.createElement("canvas").getContext("2d");
-function rgb(colour) {
-  probe.fillStyle = "#888888";
-  probe.fillStyle = (colour || "").trim() || "#888888";
-  const value = String(probe.fillStyle);
-  if (value.startsWith("#")) {
-    const n = parseInt(value.slice(1, 7), 16);
-    return [(n >> 16) & 255, (n >> 8) & 255, n & 255];
-  }
-  const parts = value.match(/[\d.]+/g) || [];
-  return parts.length >= 3 ? parts.slice(0, 3).map(Number) : [136, 136, 136];
-}
+// typed() and rgb() come from _canvas_helpers.js, served ahead of this module.
 
 /** Grey ramp from the theme's surface (low) to its ink (high). */
 function paintImage(canvas, values, offset, height, width, range, root) {
@@ -49,7 +27,7 @@ function render({ model, el }) {
   const choose = (k) => { model.set("selected", k); model.save_changes(); };
   const build = () => {
     if (!root.isConnected) return; // theme colours resolve only in the page; the observer calls again
-    const w = model.get("images"), values = floats(w), captions = model.get("captions");
+    const w = model.get("images"), values = typed(w), captions = model.get("captions");
     root.replaceChildren(); items = [];
     if (!w || w.shape.length !== 3) return;
     const [n, height, width] = w.shape;

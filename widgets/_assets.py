@@ -20,3 +20,9 @@ def asset_path(name: str) -> Path:
 
 def read_asset(name: str) -> str:
     return asset_path(name).read_text(encoding="utf-8")
+
+
+def canvas_module(name: str) -> str:
+    """A canvas view's ES module as served: the shared helpers of ``_canvas_helpers.js``
+    (wire arrays, theme colours) placed ahead of the module's own source."""
+    return read_asset("_canvas_helpers.js") + "\n" + read_asset(name)

@@ -4,7 +4,7 @@ from __future__ import annotations
 import anywidget
 import traitlets as t
 
-from ._assets import asset_path
+from ._assets import asset_path, canvas_module
 from ._wire import empty_wire
 
 LAYER_LABELS = {
@@ -21,7 +21,7 @@ class ExplorerMap(anywidget.AnyWidget):
     writes only ``point`` and ``layer``.
     """
 
-    _esm = asset_path("explorer_map.js")
+    _esm = canvas_module("explorer_map.js")
     _css = asset_path("theme.css")
 
     point = t.List(t.Float(), [0.0, 0.0], help="picked input (x, y) in data units; set by click, drag or arrow keys").tag(sync=True)

@@ -4,14 +4,14 @@ from __future__ import annotations
 import anywidget
 import traitlets as t
 
-from ._assets import asset_path
+from ._assets import asset_path, canvas_module
 from ._wire import empty_wire
 
 
 class ImagePanels(anywidget.AnyWidget):
     """Three canvases; captions are plain text written by the kernel."""
 
-    _esm = asset_path("image_panels.js")
+    _esm = canvas_module("image_panels.js")
     _css = asset_path("theme.css")
 
     original = t.Dict(empty_wire(None), help="the chosen image, float32 (height, width)").tag(sync=True)

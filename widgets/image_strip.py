@@ -4,14 +4,14 @@ from __future__ import annotations
 import anywidget
 import traitlets as t
 
-from ._assets import asset_path
+from ._assets import asset_path, canvas_module
 from ._wire import empty_wire
 
 
 class ImageStrip(anywidget.AnyWidget):
     """Thumbnails of test images; ``selected`` is the chosen one's position in the strip."""
 
-    _esm = asset_path("image_strip.js")
+    _esm = canvas_module("image_strip.js")
     _css = asset_path("theme.css")
 
     images = t.Dict(empty_wire(None), help="images, float32 (n, height, width)").tag(sync=True)
