@@ -279,7 +279,7 @@ class MLPPlan(ForwardPlan):
                 weight = params[step[1]]
                 bias = params[step[2]] if step[2] is not None else None
                 tape.append(("linear", weight, shared))
-                hidden = _batched_linear(hidden, weight, bias, shared) if shared else _kept_linear(hidden, weight, bias)
+                hidden = _batched_linear(hidden, weight, bias, shared)
                 shared, owned = False, True
             elif kind == "flatten":
                 tape.append(("flatten", hidden.shape))

@@ -39,6 +39,7 @@ to the general hand-written backward of :class:`jostle._forward.MLPPlan`.
 """
 from __future__ import annotations
 
+import math
 import threading
 
 import torch
@@ -86,18 +87,10 @@ class ExpectedLossGradient:
         self._spaces: dict[tuple, list[dict]] = {}
         self.in_features = int(layers[0][0].shape[2])
         self.classes = int(layers[-1][0].shape[1])
-        self.widest = max(int(w.shape[1]) for w, _, _ in layers)
         self.narrow = self.classes <= _NARROW
         dtype, device = layers[0][0].dtype, layers[0][0].device
         points = self.points = int(labels.shape[0])
-        self.element = torch.empty((), dtype=dtype).element_size()
-        per_member = points * self.widest * self.element
-        if per_member <= chunk_bytes:
-            self.point_chunk = points
-            member_chunk = max(1, min(members, chunk_bytes // per_member))
-        else:
-            self.point_chunk = max(1, chunk_bytes // (self.widest * self.element))
-            member_chunk = 1
+        member_chunk, self.point_chunk = _chunking(layers, members, points, chunk_bytes)
         # Equal chunks: 100 members at a cap of 40 run as 34 + 33 + 33, not 40 + 40 + 20.
         count = -(-members // member_chunk)
         bounds = [round(i * members / count) for i in range(count + 1)]
@@ -233,28 +226,20 @@ class ExpectedLossGradient:
         if key in self._spaces:
             return self._spaces[key]
         pool = _POOL.__dict__.setdefault("blocks", {})
-
-        def take(name: str, shape: tuple) -> None:
-            slot = (name, like.dtype, like.device)
-            if slot not in pool or pool[slot].numel() < _numel(shape):
-                pool[slot] = torch.empty(_numel(shape), dtype=like.dtype, device=like.device)
-
-        layouts = []
+        spaces = []
         for chunk in self.chunks:
-            k = chunk["k"]
-            width = chunk["first_cat"].shape[1] // k
-            shapes = {"first": (points, k * width), "spread": (points, k * width),
+            k, first_width = chunk["k"], chunk["first_cat"].shape[1]
+            shapes = {"first": (points, first_width), "spread": (points, first_width),
                       "delta_head": (k, points, chunk["head_w"].shape[2])}
             for index, (wt, _, _) in enumerate(chunk["hidden"]):
                 shapes[f"hidden{index}"] = (k, points, wt.shape[2])
                 shapes[f"delta{index}"] = (k, points, wt.shape[1])
-            layouts.append(shapes)
+            views = {}
             for name, shape in shapes.items():
-                take(name, shape)
-        spaces = []
-        for shapes in layouts:
-            views = {name: pool[(name, like.dtype, like.device)][:_numel(shape)].view(shape)
-                     for name, shape in shapes.items()}
+                slot, size = (name, like.dtype, like.device), math.prod(shape)
+                if slot not in pool or pool[slot].numel() < size:
+                    pool[slot] = torch.empty(size, dtype=like.dtype, device=like.device)
+                views[name] = pool[slot][:size].view(shape)
             spaces.append(views)
         self._spaces[key] = spaces
         return spaces
@@ -387,8 +372,11 @@ class ExpectedLossGradient:
         grad_t = torch.mm(chunk["first_cat"], spread.T)
         return value.detach(), grad_t.T.contiguous().reshape(shape)
 
-def _numel(shape: tuple) -> int:
-    numel = 1
-    for size in shape:
-        numel *= int(size)
-    return numel
+def _chunking(layers, members: int, points: int, chunk_bytes: int) -> tuple[int, int]:
+    """(members, points) of one chunk: as many members as keep each layer's block under
+    ``chunk_bytes``, or one member and as many points as fit."""
+    weight = layers[0][0]
+    per_member = points * max(int(w.shape[1]) for w, _, _ in layers) * weight.element_size()
+    if per_member <= chunk_bytes:
+        return max(1, min(members, chunk_bytes // per_member)), points
+    return 1, max(1, chunk_bytes * points // per_member)
