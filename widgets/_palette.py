@@ -19,7 +19,3 @@ CLASS_COLOURS = (
 )
 ATTACK_COLOUR = "#ee7733"
 INPUT_COLOUR = "#8a8a8a"
-
-
-def class_colour(index: int) -> str:
-    return CLASS_COLOURS[index % len(CLASS_COLOURS)]
