@@ -203,12 +203,8 @@ def _propose(problem: AttackProblem, delta: Tensor, active: Tensor, shape, fract
         # query tries a new corner; for plain vectors a window has no spatial meaning.
         return torch.where(mask, -delta, delta)
     channels, height, width = shape
-    side = max(1, min(height - 1, int(round((fraction * height * width) ** 0.5))))
-    top = torch.randint(0, height - side + 1, (n, 1), generator=problem.generator)
-    left = torch.randint(0, width - side + 1, (n, 1), generator=problem.generator)
-    rows = (torch.arange(height) >= top) & (torch.arange(height) < top + side)
-    cols = (torch.arange(width) >= left) & (torch.arange(width) < left + side)
-    window = (rows[:, :, None] & cols[:, None, :]).unsqueeze(1).to(delta.device)
+    side = _window_side(fraction, height, width)
+    window = _window_masks(n, height, width, side, problem.generator)[0].to(delta.device)
     signs = _rademacher((n, channels, 1, 1), problem)
     image = delta.reshape(n, channels, height, width)
     scale = eps_b.reshape(n, 1, 1, 1)
@@ -228,6 +224,16 @@ def _bump(side: int, dtype) -> Tensor:
     weight = (1.0 / (torch.arange(rings, dtype=torch.float64) + 1) ** 2).flip(0).cumsum(0).flip(0)
     bump = weight[ring]
     return (bump / bump.norm()).to(dtype)
+
+
+def _window_side(fraction: float, height: int, width: int) -> int:
+    """Side of a square window holding about ``fraction`` of an image's pixels."""
+    return max(1, min(height - 1, int(round((fraction * height * width) ** 0.5))))
+
+
+def _onto_sphere(v: Tensor, radius) -> Tensor:
+    """Each point's ``v`` [n, ...] rescaled to L2 norm ``radius`` (a number or [n, 1, ...])."""
+    return v / v.flatten(1).norm(dim=1).clamp_min(1e-30).view((-1,) + (1,) * (v.ndim - 1)) * radius
 
 
 def _window_masks(n: int, height: int, width: int, side: int, generator: torch.Generator) -> tuple[Tensor, Tensor, Tensor]:
@@ -253,9 +259,7 @@ def _initial_sphere(problem: AttackProblem, shape: tuple[int, ...] | None) -> Te
         signs = _rademacher((n, channels, tiles_h, tiles_w), problem).cpu()
         signs = signs.repeat_interleave(side, 2).repeat_interleave(side, 3)[:, :, :height, :width]
         direction = (signs * bump).reshape(problem.x.shape)
-    direction = direction.to(problem.x.device)
-    size = direction.flatten(1).norm(dim=1).clamp_min(1e-30)
-    return direction / size.view((-1,) + (1,) * (direction.ndim - 1))
+    return _onto_sphere(direction.to(problem.x.device), 1.0)
 
 
 def _propose_sphere(problem: AttackProblem, delta: Tensor, active: Tensor, shape, fraction: float,
@@ -273,11 +277,9 @@ def _propose_sphere(problem: AttackProblem, delta: Tensor, active: Tensor, shape
         step = step.to(delta.device).view_as(delta)
         # A step of half the radius at p_init, shrinking as sqrt(p) along the schedule.
         scale = 0.5 * (fraction / p_init) ** 0.5
-        step = step / step.flatten(1).norm(dim=1).clamp_min(1e-30).view(dims) * eps_b * scale
-        moved = delta + step
-        return moved / moved.flatten(1).norm(dim=1).clamp_min(1e-30).view(dims) * eps_b
+        return _onto_sphere(delta + _onto_sphere(step, eps_b * scale), eps_b)
     channels, height, width = shape
-    side = max(1, min(height - 1, int(round((fraction * height * width) ** 0.5))))
+    side = _window_side(fraction, height, width)
     image = delta.reshape(n, channels, height, width)
     into, top, left = _window_masks(n, height, width, side, problem.generator)
     out_of, _, _ = _window_masks(n, height, width, side, problem.generator)
@@ -305,5 +307,4 @@ def _propose_sphere(problem: AttackProblem, delta: Tensor, active: Tensor, shape
     moved = torch.where(both, grown * (amount / size), image).reshape(delta.shape)
     # Only a borrowed share changes the norm: put those points back on their sphere.
     borrowed = empty.flatten(1).any(1).view(dims)
-    rescaled = moved / moved.flatten(1).norm(dim=1).clamp_min(1e-30).view(dims) * eps_b
-    return torch.where(borrowed, rescaled, moved)
+    return torch.where(borrowed, _onto_sphere(moved, eps_b), moved)
