@@ -73,7 +73,8 @@ class AttackResult:
         Whether the judged predictive at ``x_adv`` no longer predicts ``label``
         (untargeted) or predicts ``target`` (targeted).
     label : Tensor of shape (n_points,)
-        The attacked label: ``y`` if given, else the full ensemble's prediction at ``x``.
+        The attacked label: ``y`` if given, else the judged predictive's prediction at
+        ``x`` (the full ensemble's, or the attacker's samples' with ``judge="attacker"``).
     clean_probs, adv_probs : Tensor of shape (n_points, n_classes)
         The judged posterior predictive at ``x`` and at ``x_adv``.
     distance : Tensor of shape (n_points,)

@@ -34,11 +34,15 @@ def attack(ens, x: Any, y: Any = None, method: str = "pgd", eps: Any = 0.1, norm
     ens : Ensemble
     x : Tensor of shape (n_points, *input_shape)
     y : Tensor of shape (n_points,), optional
-        Labels to push away from; None attacks the label the full ensemble predicts.
+        Labels to push away from. None attacks the label that the judged predictive
+        predicts at ``x``: the full ensemble's prediction with ``judge="ensemble"`` (the
+        default), the attacker's samples' prediction with ``judge="attacker"``.
     method : {"fgsm", "pgd", "cw", "spsa", "square"}
-    eps : float >= 0, or Tensor of shape (n_points,) for ``pgd``
-        Budget in the chosen norm. ``cw`` searches for the smallest perturbation and
-        counts success only within ``eps``.
+    eps : float >= 0, or Tensor of shape (n_points,) for ``pgd`` and ``fgsm``
+        Budget in the chosen norm. Every method returns ``x_adv`` inside the eps-ball and
+        the bounds. ``cw`` searches for the smallest flipping perturbation at any distance;
+        its closest flip beyond the ball is reported in ``info["closest_flip"]`` and
+        ``info["closest_flip_distance"]``, and ``x_adv`` is its best point inside the ball.
     norm : {"inf", "2"}
     steps : int
         Iterations (``pgd``, ``spsa``, ``square``), Adam steps per binary-search round
@@ -57,7 +61,8 @@ def attack(ens, x: Any, y: Any = None, method: str = "pgd", eps: Any = 0.1, norm
     bounds : pair (lo, hi), optional
         The input box; defaults to ``ens.meta["bounds"]``, else unbounded.
     judge : {"ensemble", "attacker"}
-        Judge success on the whole ensemble (default) or on the attacker's samples.
+        Judge success on the whole ensemble (default) or on the attacker's samples; the
+        same predictive supplies the default label when ``y`` is None.
     threads : "auto", int or None
         Torch threads while the attack runs (restored afterwards): ``"auto"`` uses one for
         small evaluations, where thread barriers cost more than they save; None leaves
@@ -159,10 +164,17 @@ def cw(problem: AttackProblem, steps: int = 40, kappa: float = 0.0, search_steps
     Minimises ``|x' - x|^2 + c * max(margin(x'), -kappa)`` with Adam, where
     ``x' = mid + half * tanh(w)`` keeps every iterate inside the bounds (unbounded inputs
     are optimised directly). A per-point binary search over ``c`` (x10 until a success,
-    then bisection) finds the smallest successful perturbation; ``x_adv`` is the closest
-    successful iterate seen (or ``x`` where none succeeded). Success requires
-    ``|x' - x|_2 <= eps``; ``info["flipped"]`` says whether any distance flipped the point.
-    ``path`` holds the best point after each round, ``path[0] = x``.
+    then bisection) drives the search towards the smallest flipping perturbation, at any
+    distance.
+
+    ``x_adv`` always lies inside the eps-ball: every iterate is projected onto the ball
+    (the identity for iterates already inside), and each point keeps the best projected
+    iterate: a flip (judged predictive changed and attacker margin <= -kappa) at the
+    smallest distance, else the lowest attacker margin; ``x`` itself where nothing beats
+    it. ``success`` is judged at ``x_adv``. The closest flip found at any distance goes in
+    ``info``: ``closest_flip`` (NaN where none), ``closest_flip_distance`` (inf where
+    none), ``flipped`` (found at all) and ``beyond_budget`` (found, but only outside the
+    ball). ``path`` holds the in-ball best after each round, ``path[0] = x``.
     """
     kappa = check_float("kappa", kappa, low=0.0)
     search_steps = check_int("search_steps", search_steps, low=1)
@@ -171,22 +183,20 @@ def cw(problem: AttackProblem, steps: int = 40, kappa: float = 0.0, search_steps
     learning_rate = check_float("learning_rate", learning_rate, low=0.0, low_open=True)
     encode, decode = _tanh_box(problem)
     c_low, c_high = torch.zeros_like(c), torch.full_like(c, math.inf)
-    best_x, best_dist = problem.x.clone(), torch.full_like(c, math.inf)
+    search = _CWSearch.start(problem, kappa)
     path = [problem.x]
     for _ in range(search_steps):
-        found, best_x, best_dist = _cw_round(problem, encode, decode, c, kappa, steps, learning_rate,
-                                             best_x, best_dist)
+        found = _cw_round(problem, encode, decode, c, kappa, steps, learning_rate, search)
         c_high = torch.where(found, torch.minimum(c_high, c), c_high)
         c_low = torch.where(found, c_low, torch.maximum(c_low, c))
         c = torch.where(torch.isfinite(c_high), (c_low + c_high) / 2, c * 10)
-        path.append(best_x)
+        path.append(search.inside_x)
     margins = torch.stack([problem.margin(p) for p in path])
-    queries = torch.full((problem.points,), steps * search_steps + len(path), dtype=torch.long)
-    flipped = torch.isfinite(best_dist)
-    result = finish(problem, best_x, torch.stack(path) if record_path else None, -margins, queries, "cw",
-                    success=flipped & (best_dist <= problem.eps), norm="2")
+    queries = search.queries.cpu() + steps * search_steps + len(path)
+    result = finish(problem, search.inside_x, torch.stack(path) if record_path else None, -margins, queries,
+                    "cw", norm="2")
     result.margin = margins
-    result.info.update(flipped=flipped.cpu().numpy(), c=c.cpu().numpy(), kappa=kappa)
+    result.info.update(search.report(problem), c=c.cpu().numpy(), kappa=kappa)
     return result
 
 
@@ -256,8 +266,68 @@ def _tanh_box(problem: AttackProblem):
     return encode, decode
 
 
-def _cw_round(problem, encode, decode, c, kappa, steps, learning_rate, best_x, best_dist):
-    """One round of Adam at fixed ``c``; returns which points succeeded and the best so far."""
+class _CWSearch:
+    """What C&W keeps per point: the closest flip at any distance, and the best point
+    inside the eps-ball (a flip at the smallest distance, else the lowest margin)."""
+
+    def __init__(self, kappa: float, flip_x: Tensor, flip_distance: Tensor, inside_x: Tensor, inside_ok: Tensor,
+                 inside_margin: Tensor, inside_distance: Tensor, queries: Tensor):
+        self.kappa = kappa
+        self.flip_x, self.flip_distance = flip_x, flip_distance
+        self.inside_x, self.inside_ok = inside_x, inside_ok
+        self.inside_margin, self.inside_distance = inside_margin, inside_distance
+        self.queries = queries
+
+    @classmethod
+    def start(cls, problem: AttackProblem, kappa: float) -> "_CWSearch":
+        x = problem.x
+        ok, _ = problem.judge(x)
+        margin = problem.margin(x)
+        if kappa > 0:
+            ok = ok & (margin <= -kappa)
+        none = torch.full((problem.points,), math.inf, dtype=x.dtype, device=x.device)
+        return cls(kappa, torch.full_like(x, math.nan), none, x.clone(), ok, margin, torch.zeros_like(none),
+                   torch.zeros(problem.points, dtype=torch.long, device=x.device))
+
+    def offer(self, problem: AttackProblem, candidate: Tensor, ok: Tensor, margin: Tensor) -> None:
+        """Consider one iterate (``ok``: it flips; ``margin``: the attacker's, at ``candidate``)."""
+        distance = norm_of(candidate - problem.x, "2")
+        closer = ok & (distance < self.flip_distance)
+        self.flip_distance = torch.where(closer, distance, self.flip_distance)
+        self.flip_x = torch.where(_per_point(closer, candidate), candidate, self.flip_x)
+        beyond = distance > problem.eps
+        if bool(beyond.any()):
+            # Outside the ball: judge its projection instead (one more attacker query).
+            candidate = problem.project(candidate)
+            distance = norm_of(candidate - problem.x, "2")
+            projected_ok, _ = problem.judge(candidate)
+            projected_margin = problem.margin(candidate)
+            if self.kappa > 0:
+                projected_ok = projected_ok & (projected_margin <= -self.kappa)
+            ok = torch.where(beyond, projected_ok, ok)
+            margin = torch.where(beyond, projected_margin, margin)
+            self.queries += beyond.long()
+        better = (ok & ~self.inside_ok) | (ok & self.inside_ok & (distance < self.inside_distance)) | \
+            (~ok & ~self.inside_ok & (margin < self.inside_margin))
+        self.inside_x = torch.where(_per_point(better, candidate), candidate, self.inside_x)
+        self.inside_ok = torch.where(better, ok, self.inside_ok)
+        self.inside_margin = torch.where(better, margin, self.inside_margin)
+        self.inside_distance = torch.where(better, distance, self.inside_distance)
+
+    def report(self, problem: AttackProblem) -> dict:
+        flipped = torch.isfinite(self.flip_distance)
+        return {"flipped": flipped.cpu().numpy(), "beyond_budget": (flipped & (self.flip_distance > problem.eps)).cpu().numpy(),
+                "closest_flip": self.flip_x.detach().cpu().numpy(),
+                "closest_flip_distance": self.flip_distance.detach().cpu().numpy()}
+
+
+def _per_point(mask: Tensor, like: Tensor) -> Tensor:
+    return mask.view((-1,) + (1,) * (like.ndim - 1))
+
+
+def _cw_round(problem, encode, decode, c, kappa, steps, learning_rate, search: _CWSearch) -> Tensor:
+    """One round of Adam at fixed ``c``; offers every iterate to ``search`` and returns
+    which points flipped (at any distance) in this round."""
     w = encode(problem.x).detach().requires_grad_(True)
     optimiser = torch.optim.Adam([w], lr=learning_rate)
     found = torch.zeros(problem.points, dtype=torch.bool, device=problem.x.device)
@@ -269,13 +339,11 @@ def _cw_round(problem, encode, decode, c, kappa, steps, learning_rate, best_x, b
             total = (distance2 + c * margin.clamp_min(-kappa)).sum()
             optimiser.zero_grad(set_to_none=True)
             total.backward()
-        candidate = x_adv.detach()
+        candidate, margin = x_adv.detach(), margin.detach()
         success, _ = problem.judge(candidate)
         if kappa > 0:
-            success = success & (margin.detach() <= -kappa)
-        closer = success & (distance2.detach().sqrt() < best_dist)
+            success = success & (margin <= -kappa)
         found |= success
-        best_dist = torch.where(closer, distance2.detach().sqrt(), best_dist)
-        best_x = torch.where(closer.view((-1,) + (1,) * (candidate.ndim - 1)), candidate, best_x)
+        search.offer(problem, candidate, success, margin)
         optimiser.step()
-    return found, best_x, best_dist
+    return found
