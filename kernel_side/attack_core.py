@@ -237,10 +237,11 @@ class AttackProblem:
             self._planned = kernel
         return kernel
 
-    def margin(self, x_adv: Tensor, index: Tensor | None = None) -> Tensor:
-        """The attacker's margin [n]: negative once the attack succeeds on the attacker's view."""
+    def margin(self, x_adv: Tensor, index: Tensor | None = None, members: Any = "draw") -> Tensor:
+        """The attacker's margin [n]: negative once the attack succeeds on the attacker's view
+        (``members``: a selection from :meth:`members`, or ``"draw"`` for a fresh one)."""
         with torch.no_grad():
-            return -self.objective(x_adv, "margin", index=index)
+            return -self.objective(x_adv, "margin", index=index, members=members)
 
     # -------------------------------------------------------------- geometry
     def project(self, x_adv: Tensor, eps_b: Tensor | None = None, x: Tensor | None = None) -> Tensor:

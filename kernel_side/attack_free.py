@@ -107,6 +107,11 @@ def square(problem: AttackProblem, steps: int = 40, p_init: float = 0.05, image_
 
     A point stops being queried once its margin is negative. One query per active point per
     iteration. ``loss`` is the negative margin; ``margin`` holds the margin itself.
+
+    With ``resample=True`` every iteration draws one member subset and compares the current
+    point's margin with the proposal's under that same draw (two queries per active point
+    and iteration); ``margin`` then records each iteration's margin under its own draw, so
+    it falls only within an iteration, not necessarily from one iteration to the next.
     """
     p_init = check_float("p_init", p_init, low=0.0, high=1.0, low_open=True)
     shape = _image_shape(problem, image_shape)
@@ -123,7 +128,13 @@ def square(problem: AttackProblem, steps: int = 40, p_init: float = 0.05, image_
                 fraction = square_fraction(p_init, i, steps)
                 proposal = propose(problem, delta[active], active, shape, fraction, p_init)
                 x_new = problem.project(problem.x[active] + proposal, problem.eps_b[active], problem.x[active])
-                new_margin = problem.margin(x_new, index=active)
+                members = problem.members()
+                if problem.resample:
+                    # Both margins under this iteration's draw, so the draw cannot decide.
+                    margin = margin.clone()
+                    margin[active] = problem.margin(x_best[active], index=active, members=members)
+                    queries[active] += 1
+                new_margin = problem.margin(x_new, index=active, members=members)
                 better = new_margin < margin[active]
                 chosen = active[better]
                 delta[chosen] = proposal[better]
