@@ -24,9 +24,8 @@ target label: it pulls the target's probability up.
 from __future__ import annotations
 
 import contextlib
-import copy
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any, Iterator
 
 import numpy as np
@@ -133,41 +132,63 @@ class AttackResult:
         )
 
 
+@dataclass(frozen=True, eq=False)
 class AttackProblem:
-    """Inputs, labels, budget, bounds and the attacker's view of one attack.
+    """Inputs, labels, budget, bounds and the attacker's view of one attack (immutable).
 
     Built by :func:`build_problem`, which validates everything; the attack functions use
     :meth:`objective`, :meth:`objective_and_grad`, :meth:`project` and :meth:`judge`.
+    :meth:`subset` makes the problem of some of its points; a problem and its subsets
+    share no mutable state (each keeps its own planned-gradient cache and, unless told
+    otherwise, its own copy of the random stream).
     """
 
-    def __init__(self, ens, x: Tensor, label: Tensor, target: Tensor | None, eps: Tensor, norm: str,
-                 objective: str, bounds: tuple[Tensor, Tensor] | None, samples: Any, resample: bool,
-                 judge_samples: Any, generator: torch.Generator, clean_probs: Tensor):
-        self.ens = ens
-        self.x = x
-        self.label = label
-        self.target = target
-        self.eps = eps
-        self.eps_b = eps.view((-1,) + (1,) * (x.ndim - 1))
-        self.norm = norm
-        self.objective_name = objective
-        self.bounds = bounds
-        self.samples = samples
-        self.resample = resample
-        self.judge_samples = judge_samples
-        self.generator = generator
-        self.clean_probs = clean_probs
+    ens: Any
+    x: Tensor
+    label: Tensor
+    target: Tensor | None
+    eps: Tensor
+    norm: str
+    objective_name: str
+    bounds: tuple[Tensor, Tensor] | None
+    samples: Any
+    resample: bool
+    judge_samples: Any
+    generator: torch.Generator
+    clean_probs: Tensor
+    eps_b: Tensor = field(init=False, repr=False)
+    _kernels: dict = field(init=False, repr=False, default_factory=dict)
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "eps_b", self.eps.view((-1,) + (1,) * (self.x.ndim - 1)))
 
     @property
     def points(self) -> int:
         return int(self.x.shape[0])
 
-    def with_eps(self, eps: Tensor) -> "AttackProblem":
-        """The same problem (sharing its generator) with per-point budgets ``eps`` [n]."""
-        clone = copy.copy(self)
-        clone.eps = eps
-        clone.eps_b = eps.view((-1,) + tuple(self.eps_b.shape[1:]))
-        return clone
+    def subset(self, index: Any = None, eps: Tensor | None = None,
+               generator: torch.Generator | None = None) -> "AttackProblem":
+        """The problem of points ``index`` (indices or a bool mask; None: all points).
+
+        ``eps`` [k] replaces their budgets. ``generator`` continues a given random stream
+        (pass ``problem.generator`` to share it on purpose); by default the subset gets a
+        copy of this problem's stream in its current state.
+        """
+        where = slice(None) if index is None else torch.as_tensor(index, device=self.x.device)
+        if isinstance(where, Tensor) and where.dtype == torch.bool:
+            where = where.nonzero().flatten()
+        x = self.x[where]
+        if eps is None:
+            eps = self.eps[where]
+        elif eps.numel() != x.shape[0]:
+            raise ValueError(f"eps must hold one budget per chosen point ({x.shape[0]}); got {eps.numel()}")
+        if generator is None:
+            generator = torch.Generator(device=self.generator.device)
+            generator.set_state(self.generator.get_state())
+        return replace(self, x=x, label=self.label[where],
+                       target=None if self.target is None else self.target[where],
+                       eps=eps.to(device=self.x.device, dtype=self.x.dtype).flatten(),
+                       clean_probs=self.clean_probs[where], generator=generator)
 
     # -------------------------------------------------------------- attacker's objective
     def members(self) -> Any:
@@ -229,12 +250,12 @@ class AttackProblem:
     def _planned_kernel(self, chosen: Any, labels: Tensor, sign: float) -> ExpectedLossGradient | None:
         """The expected loss planned for the attacker's members: built once and kept for a
         fixed attacker, built per evaluation when resampling; None for stacks it does not cover."""
-        if not self.resample and "_planned" in self.__dict__:
-            return self._planned
+        if not self.resample and "planned" in self._kernels:
+            return self._kernels["planned"]
         params = {k: v.detach() for k, v in self.ens._selected(chosen).items()}
         kernel = ExpectedLossGradient.try_build(self.ens._plan.steps, params, labels, sign)
         if not self.resample:
-            self._planned = kernel
+            self._kernels["planned"] = kernel
         return kernel
 
     def margin(self, x_adv: Tensor, index: Tensor | None = None, members: Any = "draw") -> Tensor:

@@ -2,7 +2,8 @@
 
 Each weight gets q(w) = N(mean, softplus(rho)^2); the loss per training point is the
 expected cross-entropy plus ``kl_weight * KL(q || N(0, prior_std^2)) / n_train``
-(the negative ELBO over n_train). The KL is in closed form. For Linear + elementwise
+(the negative ELBO over n_train when ``kl_weight`` is 1; a tempered ELBO otherwise, and
+named so in ``meta["method"]``). The KL is in closed form. For Linear + elementwise
 stacks the local reparameterisation trick (Kingma et al. 2015) samples each layer's
 pre-activations instead of its weights: given inputs h the pre-activation is Gaussian
 with mean h M' + b and variance h^2 V' + v, so every point gets independent noise at
@@ -27,7 +28,16 @@ from .datasets import Dataset
 from .ensemble import Ensemble
 from .variational import gaussian_kl, softplus_inverse
 
-__all__ = ["fit_vi", "VariationalPosterior"]
+__all__ = ["fit_vi", "VariationalPosterior", "vi_method_label", "DEFAULT_KL_WEIGHT"]
+
+#: fit_vi's default KL weight: a tempered ELBO (see fit_vi's kl_weight).
+DEFAULT_KL_WEIGHT = 0.1
+
+
+def vi_method_label(kl_weight: float) -> str:
+    """How a VI fit is named wherever its method is shown: ``"vi"`` (Bayes by Backprop) for
+    the full ELBO, ``"vi (tempered, kl_weight=0.1)"`` for a weighted KL."""
+    return "vi" if float(kl_weight) == 1.0 else f"vi (tempered, kl_weight={float(kl_weight):g})"
 
 
 class VariationalPosterior:
@@ -73,9 +83,15 @@ class VariationalPosterior:
             noise = torch.randn(samples, *mean.shape, generator=generator, device=device, dtype=mean.dtype)
             params[name] = mean + F.softplus(self.rho[name]) * noise
         meta = {**copy.deepcopy(self.meta), "samples": samples, "draw_seed": seed}
-        ensemble = Ensemble(copy.deepcopy(self.template), params, meta=meta)
-        ensemble.posterior = self
-        return ensemble
+        return Ensemble(copy.deepcopy(self.template), params, meta=meta, posterior=self)
+
+    def to(self, device: Any = None, dtype: torch.dtype | None = None) -> "VariationalPosterior":
+        """A copy on another device or floating dtype (draws then land there)."""
+        def move(values: dict[str, Tensor]) -> dict[str, Tensor]:
+            return {k: v.to(device=device, dtype=dtype if v.is_floating_point() else None) for k, v in values.items()}
+
+        template = copy.deepcopy(self.template).to(device=device, dtype=dtype)
+        return VariationalPosterior(template, move(self.mean), move(self.rho), self.prior_std, copy.deepcopy(self.meta))
 
     def __repr__(self) -> str:
         count = sum(int(v.numel()) for v in self.rho.values())
@@ -88,7 +104,8 @@ def fit_vi(
     samples: int = 100,
     *,
     prior_std: float = 1.0,
-    kl_weight: float = 0.1,
+    kl_weight: float = DEFAULT_KL_WEIGHT,
+    kl_anneal: float = 0.0,
     init_std: float = 1e-3,
     train_draws: int = 1,
     local_reparameterisation: bool = True,
@@ -113,9 +130,17 @@ def fit_vi(
     prior_std : float
         Standard deviation of the N(0, prior_std^2) prior on every parameter.
     kl_weight : float
-        Multiplies the KL term. 1 is the exact ELBO; the default 0.1 tempers the KL (a
-        sharper posterior), because mean-field VI with the full KL underfits small data
-        sets: on 300 moons points it reaches about 0.88 test accuracy against 0.97.
+        Multiplies the KL term. 1 is the exact ELBO (Bayes by Backprop proper); the default
+        0.1 tempers the KL (a sharper posterior), and the fit is then recorded as
+        ``meta["method"] == "vi (tempered, kl_weight=0.1)"``. Measured with 50 draws, seed 0:
+        on ``leak_alarm()`` (2-16-16-2 tanh, 50 epochs) the tempered fit reaches 0.980 test
+        accuracy, the full ELBO 0.980 unannealed but 0.865-0.895 with ``kl_anneal=0.5``
+        (lr 0.01-0.03, 50-200 epochs); on 300 noise-0.2 moons (2-32-32-2, 100 epochs) the
+        tempered fit 0.967, the full ELBO 0.86-0.89 unannealed (any epoch count up to 300)
+        and 0.96-0.97 with ``kl_anneal=0.5`` at lr 0.03 or over 200-300 epochs.
+    kl_anneal : float in [0, 1]
+        Share of the epochs over which the KL weight ramps linearly from 0 up to
+        ``kl_weight`` ("warm-up", Sonderby et al. 2016); 0 uses ``kl_weight`` throughout.
     init_std : float
         Starting posterior standard deviation.
     train_draws : int
@@ -132,13 +157,14 @@ def fit_vi(
     Returns
     -------
     Ensemble
-        ``samples`` draws, ``meta["method"] == "vi"``; its ``posterior`` attribute is the
-        :class:`VariationalPosterior` (not kept by slicing or saving).
+        ``samples`` draws, ``meta["method"]`` from :func:`vi_method_label`; its ``posterior`` attribute is the :class:`VariationalPosterior`
+        (kept by slicing and ``.to``, not by saving).
     """
     seed = check_int("seed", seed, low=0)
     samples = check_int("samples", samples, low=1)
     prior_std = check_float("prior_std", prior_std, low=0.0, low_open=True)
     kl_weight = check_float("kl_weight", kl_weight, low=0.0)
+    kl_anneal = check_float("kl_anneal", kl_anneal, low=0.0, high=1.0)
     init_std = check_float("init_std", init_std, low=0.0, low_open=True)
     train_draws = check_int("train_draws", train_draws, low=1)
     config = check_config(epochs, batch_size, lr, 0.0, "adam", 0.0, validation, patience)
@@ -153,11 +179,16 @@ def fit_vi(
     plan = make_plan(template, {k: v.detach() for k, v in start.items()})
     local = bool(local_reparameterisation) and isinstance(plan, MLPPlan)
     noise = torch.Generator(device=device).manual_seed(stream_seed(seed, 1))
-    scale = kl_weight / int(x_fit.shape[0])
+    n_fit = int(x_fit.shape[0])
+    ramp_steps = round(kl_anneal * config.epochs) * -(-n_fit // config.batch_size)
+    step = [0]
 
     def member_loss(params, xb, yb):
         logits = _sampled_logits(plan, params, xb[0], train_draws, noise, local)
         nll = cross_entropy_per_member(logits, yb[0]).mean()
+        step[0] += 1
+        ramp = min(1.0, step[0] / ramp_steps) if ramp_steps else 1.0
+        scale = kl_weight * ramp / n_fit
         return (nll + scale * _kl(_means(params), _rhos(params), prior_std)).unsqueeze(0)
 
     def validation_loss(params):
@@ -168,10 +199,10 @@ def fit_vi(
         variational, member_loss, x_fit, y_fit, generators, config,
         validation_loss=validation_loss if x_val is not None else None, progress=bool(progress), desc="vi",
     )
-    hyper = dict(prior_std=prior_std, kl_weight=kl_weight, init_std=init_std, train_draws=train_draws,
+    hyper = dict(prior_std=prior_std, kl_weight=kl_weight, kl_anneal=kl_anneal, init_std=init_std, train_draws=train_draws,
                  local_reparameterisation=local, **config.as_meta())
     del hyper["weight_decay"], hyper["optimizer"], hyper["momentum"]
-    meta = fit_meta("vi", data, module, seed, record.seconds, **hyper, epochs_run=record.epochs_run,
+    meta = fit_meta(vi_method_label(kl_weight), data, module, seed, record.seconds, **hyper, epochs_run=record.epochs_run,
                     final_loss=record.final_loss, best_epoch=record.best_epoch)
     posterior = VariationalPosterior(template, _means(variational), _rhos(variational), prior_std, meta)
     posterior.meta["kl"] = posterior.kl()

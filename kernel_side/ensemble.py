@@ -38,6 +38,13 @@ class Ensemble:
         JSON-serialisable record: class names, data bounds, how the posterior was made.
     memory_budget : int
         Upper bound in bytes on the activations one chunk of a forward pass may hold.
+    posterior : object, optional
+        The distribution the members were drawn from (``fit_vi``'s
+        :class:`VariationalPosterior`, ``fit_laplace``'s :class:`LastLayerLaplace`): anything
+        with ``draw(samples, seed) -> Ensemble`` and ``to(device, dtype)``. Slicing and
+        :meth:`subset` keep it (a slice of draws still comes from it), :meth:`to` moves it
+        with the members; :meth:`save` stores the draws only, so a loaded ensemble has
+        ``posterior`` None.
 
     Examples
     --------
@@ -54,6 +61,7 @@ class Ensemble:
         params: dict[str, Tensor],
         meta: dict | None = None,
         memory_budget: int = DEFAULT_MEMORY_BUDGET,
+        posterior: Any = None,
     ):
         if not isinstance(template, nn.Module):
             raise TypeError(f"template must be a torch.nn.Module; got {type(template).__name__}")
@@ -84,7 +92,20 @@ class Ensemble:
         if "architecture" not in self.meta:
             self.meta["architecture"] = architecture_of(template)
         self.memory_budget = check_int("memory_budget", memory_budget, low=1)
+        self.posterior = posterior
         self._plan: ForwardPlan = make_plan(self.template, self.params)
+
+    @property
+    def posterior(self) -> Any:
+        """The distribution the members were drawn from, or None (see the class docstring)."""
+        return self._posterior
+
+    @posterior.setter
+    def posterior(self, value: Any) -> None:
+        if value is not None and not (callable(getattr(value, "draw", None)) and callable(getattr(value, "to", None))):
+            raise TypeError(f"posterior must be None or have draw(samples, seed) and to(device, dtype) methods; "
+                            f"got {type(value).__name__}")
+        self._posterior = value
 
     # ------------------------------------------------------------------ construction
     @classmethod
@@ -162,7 +183,9 @@ class Ensemble:
             name: value.to(device=device, dtype=dtype if value.is_floating_point() else None)
             for name, value in self.params.items()
         }
-        return self._with(moved, template=copy.deepcopy(self.template).to(device=device, dtype=dtype))
+        posterior = None if self.posterior is None else self.posterior.to(device=device, dtype=dtype)
+        return self._with(moved, template=copy.deepcopy(self.template).to(device=device, dtype=dtype),
+                          posterior=posterior)
 
     def module(self, i: int) -> nn.Module:
         """Member ``i`` as an ordinary ``nn.Module`` (a copy)."""
@@ -251,18 +274,24 @@ class Ensemble:
 
     # ------------------------------------------------------------------ persistence
     def save(self, path: str, extra_meta: dict | None = None) -> None:
-        """Write safetensors plus JSON metadata atomically (temp file, then rename)."""
+        """Write safetensors plus JSON metadata atomically (temp file, then rename).
+
+        Only the members and ``meta`` are written; ``posterior`` is not (a loaded ensemble
+        has ``posterior`` None; keep the fitted object, or refit, to draw more members).
+        """
         from .storage import save_ensemble
 
         save_ensemble(self, path, extra_meta=extra_meta)
 
     # ------------------------------------------------------------------ helpers
-    def _with(self, params: dict[str, Tensor], template: nn.Module | None = None) -> "Ensemble":
+    def _with(self, params: dict[str, Tensor], template: nn.Module | None = None,
+              posterior: Any = "same") -> "Ensemble":
         clone = object.__new__(Ensemble)
         clone.template = self.template if template is None else template
         clone.params = params
         clone.meta = copy.deepcopy(self.meta)
         clone.memory_budget = self.memory_budget
+        clone.posterior = self.posterior if isinstance(posterior, str) else posterior
         clone._plan = make_plan(clone.template, params)
         return clone
 

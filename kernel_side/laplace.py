@@ -158,9 +158,15 @@ class LastLayerLaplace:
         if bias_name is not None:
             params[bias_name] = rows[:, :, width].contiguous()
         meta = {**copy.deepcopy(self.meta), "samples": samples, "draw_seed": int(seed)}
-        ensemble = Ensemble(copy.deepcopy(self.point.template), params, meta=meta)
-        ensemble.posterior = self
-        return ensemble
+        return Ensemble(copy.deepcopy(self.point.template), params, meta=meta, posterior=self)
+
+    def to(self, device: Any = None, dtype: torch.dtype | None = None) -> "LastLayerLaplace":
+        """A copy whose MAP network (and so every draw) sits on another device or dtype; the
+        curvature stays in float64 on the CPU, where the draws are made."""
+        moved = copy.copy(self)
+        moved.point = self.point.to(device=device, dtype=dtype)
+        moved.meta = copy.deepcopy(self.meta)
+        return moved
 
 
 @dataclass(frozen=True)

@@ -354,10 +354,8 @@ def _attack_at(problem, eps: Tensor, steps: int, random_start: bool, state: dict
     if not bool(active.any()):
         return torch.zeros_like(active)
     where = active.nonzero().flatten()
-    sub = problem.with_eps(eps[where])
-    sub.x, sub.label = problem.x[where], problem.label[where]
-    sub.target = None if problem.target is None else problem.target[where]
-    sub.clean_probs = problem.clean_probs[where]
+    # One random stream across the bisection's rounds: each round's random starts are new.
+    sub = problem.subset(where, eps=eps[where], generator=problem.generator)
     result = pgd(sub, steps, random_start=random_start, record_path=False)
     flipped = torch.zeros_like(active)
     flipped[where] = result.success

@@ -122,7 +122,7 @@ def _describe(row: Any) -> str:
     hyper = json.loads(row["method_settings"]) if isinstance(row.get("method_settings"), str) else {}
     settings = ", ".join(f"{k}={v}" for k, v in sorted(hyper.items()))
     parts = [
-        f"{row['method']}" + (f" ({settings})" if settings else ""),
+        f"{_method_label(row['method'], hyper)}" + (f" ({settings})" if settings else ""),
         f"{row['dataset']} n_train={row['n_train']}",
         f"depth {row['depth']} x width {row['width']} {row['activation']}",
         f"seed {row['seed']}",
@@ -130,3 +130,12 @@ def _describe(row: Any) -> str:
         f"{row['attack']} eps={row['budget']:g}: success {row['success_rate']:.3f}, robustness {row['robustness']:.3f}",
     ]
     return "\n".join(parts)
+
+
+def _method_label(method: str, hyper: dict) -> str:
+    """The fit's own name for its method: VI runs say whether their ELBO was tempered."""
+    if method != "vi":
+        return method
+    from .bayes_by_backprop import DEFAULT_KL_WEIGHT, vi_method_label
+
+    return vi_method_label(hyper.get("kl_weight", DEFAULT_KL_WEIGHT))

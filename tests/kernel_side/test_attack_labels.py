@@ -1,13 +1,16 @@
-"""What an attack compares and attacks: Square's accept rule under resampling, the default label.
+"""Labels that match the method: Square's accept rule under resampling, an attack's default
+label, and the name a VI fit is shown under.
 
 Square Attack (Andriushchenko et al. 2020) keeps a proposal only if it lowers the margin;
 with a fresh member draw per evaluation, the two margins must come from the same draw, or
 an offset between members decides instead of the proposal.
 """
+import pytest
 import torch
 from torch import nn
 
 import jostle
+from jostle.sweep_view import _method_label
 from tests.conftest import random_mlp_ensemble
 
 W = torch.tensor([1.0, -2.0, 0.5])
@@ -56,3 +59,31 @@ def test_default_label_is_the_judged_prediction():
     assert bool((whole != attacker).any())  # the two rules differ on these points
     assert torch.equal(jostle.attack(ens, x, eps=0.1, steps=2, samples=2).label, whole)
     assert torch.equal(jostle.attack(ens, x, eps=0.1, steps=2, samples=2, judge="attacker").label, attacker)
+
+
+def test_vi_is_named_for_the_elbo_it_fits():
+    # kl_weight = 1 is the ELBO of Bayes by Backprop (Blundell et al. 2015); any other
+    # weight is a tempered ELBO and is shown as one (fit meta, describe, sweep notes).
+    data = jostle.datasets.moons(n_train=32, n_test=8, noise=0.2, seed=0)
+    net = jostle.mlp(2, 2, hidden=(4,))
+    tempered = jostle.fit_vi(net, data, samples=3, epochs=1, progress=False)
+    assert tempered.meta["method"] == "vi (tempered, kl_weight=0.1)"
+    assert jostle.describe(tempered).startswith("vi (tempered, kl_weight=0.1) posterior")
+    full = jostle.fit_vi(net, data, samples=3, epochs=1, kl_weight=1.0, progress=False)
+    assert full.meta["method"] == "vi"
+    assert _method_label("vi", {}) == "vi (tempered, kl_weight=0.1)"
+    assert _method_label("vi", {"kl_weight": 1.0}) == "vi" and _method_label("map", {}) == "map"
+
+
+def test_kl_annealing_ramps_the_kl_weight_up_from_zero():
+    # With the KL weight ramped up from 0 over the only epoch, the fit is less pulled
+    # towards the prior than with the full weight throughout, so its KL stays larger.
+    data = jostle.datasets.moons(n_train=64, n_test=8, noise=0.2, seed=0)
+    net = jostle.mlp(2, 2, hidden=(8,))
+    settings = dict(samples=2, epochs=1, kl_weight=1.0, init_std=0.1, progress=False)
+    ramped = jostle.fit_vi(net, data, kl_anneal=1.0, **settings)
+    steady = jostle.fit_vi(net, data, kl_anneal=0.0, **settings)
+    assert ramped.posterior.kl() > steady.posterior.kl()
+    assert ramped.meta["kl_anneal"] == 1.0
+    with pytest.raises(ValueError, match="kl_anneal must be a finite float >= 0 and <= 1; got 2"):
+        jostle.fit_vi(net, data, kl_anneal=2.0)

@@ -392,6 +392,6 @@ def test_attack_problem_takes_the_planned_head_or_falls_back(monkeypatch, object
                                 resample=False, target=None, bounds=None, seed=3)
         results.append(problem.objective_and_grad(x + 0.01))
         if hand:
-            assert problem._planned is not None and problem._planned.takes_any_head == (chunk is None)
+            assert problem._kernels["planned"] is not None and problem._kernels["planned"].takes_any_head == (chunk is None)
     for got in results[:2]:
         _assert_match(got, results[2], torch.float64)
