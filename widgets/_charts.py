@@ -14,8 +14,9 @@ import numpy as np
 
 from ._palette import ATTACK_COLOUR, INPUT_COLOUR
 
-INK = "var(--jp-ui-font-color1, #333333)"
-MUTED = "var(--jp-ui-font-color2, #777777)"
+# the same fallbacks as js/theme.css (--jostle-ink, --jostle-muted)
+INK = "var(--jp-ui-font-color1, #26241f)"
+MUTED = "var(--jp-ui-font-color2, #615c53)"
 # The title sits in the top margin, centred half-way up it: 40 px leaves a 12 px title clear
 # of the plot area and of the top tick label.
 _MARGIN = dict(top=40, bottom=40, left=62, right=56)
