@@ -191,5 +191,6 @@ def failed_checks(record: dict, chains: int) -> list[str]:
         failed.append(f"{RHAT_QUANTILE_NAME} of test-probability R-hat {tp[RHAT_QUANTILE_KEY]:.3f} > {RHAT_LIMIT} "
                       f"({tp['share_rhat_over_1.01']:.0%} of test points above)")
     if not tp["ess_bulk_median"] >= need:
-        failed.append(f"median test-probability bulk ESS {tp['ess_bulk_median']:.0f} < {need} ({ESS_PER_CHAIN} per chain)")
+        failed.append(f"median test-probability bulk ESS {tp['ess_bulk_median']:.0f} < {need} "
+                      f"({ESS_PER_CHAIN} per chain)")
     return failed

@@ -84,7 +84,8 @@ def test_test_point_rhat_check_uses_the_95th_percentile_not_the_median():
     # among the 1.05s, so the check fails and says so.
     record = _record([1.0] * 60 + [1.05] * 40)
     tp = record["test_probs"]
-    assert tp["rhat_median"] == 1.0 and tp["rhat_q95"] == pytest.approx(1.05, abs=1e-15)  # interpolation between equal values
+    assert tp["rhat_median"] == 1.0
+    assert tp["rhat_q95"] == pytest.approx(1.05, abs=1e-15)  # interpolates between two equal values
     assert tp["share_rhat_over_1.01"] == pytest.approx(0.4, abs=1e-15)  # 40 / 100 in float64
     failed = failed_checks(record, chains=4)
     assert failed == ["95th percentile of test-probability R-hat 1.050 > 1.01 (40% of test points above)"]
