@@ -26,17 +26,13 @@ function node(tag, attrs = {}, parent = null, ns = null) {
   return el;
 }
 
-function ticks(lo, hi, count) {
-  const step = (hi - lo) / (count - 1);
-  return Array.from({ length: count }, (_, i) => lo + i * step);
-}
-
-// Both axes are shares in [0, 1]: pad the data range a little but never past those ends.
-function domain(values) {
-  const lo = Math.min(...values), hi = Math.max(...values);
-  if (!isFinite(lo)) return [0, 1];
-  const pad = Math.max((hi - lo) * 0.08, 0.01);
-  return [Math.max(lo - pad, 0), Math.min(hi + pad, 1)];
+// The kernel sends each axis: its domain (shares padded a little, within [0, 1]) and round
+// 1-2-5 ticks with their labels, from the same helper as the explorer's charts.
+function axisOf(model, name) {
+  const axis = model.get(name) || {};
+  const low = Number(axis.low), high = Number(axis.high);
+  const ok = isFinite(low) && isFinite(high) && high > low;
+  return { low: ok ? low : 0, high: ok ? high : 1, ticks: axis.ticks || [], labels: axis.labels || [] };
 }
 
 // ipywidgets containers cannot carry attributes; their jostle-tid-<id> classes become data-testids.
@@ -97,18 +93,21 @@ function drawChart(model, svg, tooltip) {
   const x = unpack(model.get("accuracy")), y = unpack(model.get("value"));
   const family = unpack(model.get("family")), keys = model.get("point_keys");
   const notes = model.get("point_notes"), selected = model.get("selected_key");
-  const [x0, x1] = domain(Array.from(x)), [y0, y1] = domain(Array.from(y));
+  const xAxis = axisOf(model, "x_axis"), yAxis = axisOf(model, "y_axis");
+  const [x0, x1] = [xAxis.low, xAxis.high], [y0, y1] = [yAxis.low, yAxis.high];
   const px = (v) => SIZE.left + ((v - x0) / (x1 - x0)) * (SIZE.width - SIZE.left - SIZE.right);
   const py = (v) => SIZE.height - SIZE.bottom - ((v - y0) / (y1 - y0)) * (SIZE.height - SIZE.top - SIZE.bottom);
   const axes = node("g", { class: "jostle-sweep-axes" }, svg, SVG);
-  for (const t of ticks(x0, x1, 5)) {
+  xAxis.ticks.forEach((t, i) => {
     node("line", { x1: px(t), x2: px(t), y1: SIZE.top, y2: SIZE.height - SIZE.bottom }, axes, SVG);
-    node("text", { x: px(t), y: SIZE.height - SIZE.bottom + 14, "text-anchor": "middle" }, axes, SVG).textContent = t.toFixed(2);
-  }
-  for (const t of ticks(y0, y1, 5)) {
+    node("text", { x: px(t), y: SIZE.height - SIZE.bottom + 14, "text-anchor": "middle" }, axes, SVG).textContent =
+      String(xAxis.labels[i] ?? t);
+  });
+  yAxis.ticks.forEach((t, i) => {
     node("line", { x1: SIZE.left, x2: SIZE.width - SIZE.right, y1: py(t), y2: py(t) }, axes, SVG);
-    node("text", { x: SIZE.left - 4, y: py(t) + 4, "text-anchor": "end" }, axes, SVG).textContent = t.toFixed(2);
-  }
+    node("text", { x: SIZE.left - 4, y: py(t) + 4, "text-anchor": "end" }, axes, SVG).textContent =
+      String(yAxis.labels[i] ?? t);
+  });
   node("text", { x: (SIZE.left + SIZE.width) / 2, y: SIZE.height - 6, "text-anchor": "middle", class: "jostle-sweep-title" },
     svg, SVG).textContent = model.get("x_title");
   node("text", { x: 12, y: SIZE.height / 2, transform: `rotate(-90 12 ${SIZE.height / 2})`, "text-anchor": "middle",
@@ -141,7 +140,7 @@ function drawChart(model, svg, tooltip) {
 function fillTable(model, table) {
   table.replaceChildren();
   const head = node("tr", {}, node("thead", {}, table));
-  for (const title of ["family", "n", "Pearson r", "p", "Spearman rho", "p"]) node("th", {}, head).textContent = title;
+  for (const title of ["family", "n", "Pearson r", "p", "Spearman rho", "p", "p from"]) node("th", {}, head).textContent = title;
   const body = node("tbody", {}, table);
   for (const row of model.get("correlations")) {
     const tr = node("tr", {}, body);

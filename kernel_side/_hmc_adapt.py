@@ -1,8 +1,9 @@
 """Warm-up adaptation for HMC: dual averaging of the step size and windowed mass estimates.
 
-Both are vectorised over chains: every chain adapts its own step size and its own
-diagonal inverse metric, so chains that settle in different modes are not forced to
-share a scale.
+The sampling loop adapts one step size shared by every chain, on the chains' pooled
+acceptance (the dual-averaging state then has shape (1,)); each chain estimates its own
+diagonal inverse metric, so chains that settle in different modes keep their own scales.
+The functions here are elementwise and work for any leading shape.
 """
 from __future__ import annotations
 
@@ -26,7 +27,7 @@ _BASE_WINDOW = 25
 
 
 class DualAveraging(NamedTuple):
-    """Per-chain state of Hoffman & Gelman's dual averaging, all tensors of shape (C,)."""
+    """State of Hoffman & Gelman's dual averaging, tensors of one shape: (1,) for the shared step."""
 
     log_step: Tensor
     log_step_avg: Tensor
@@ -42,7 +43,8 @@ def dual_averaging_start(step_size: Tensor) -> DualAveraging:
 
 
 def dual_averaging_update(state: DualAveraging, accept_prob: Tensor, target: float) -> DualAveraging:
-    """One update of Algorithm 5 given this iteration's acceptance probabilities (C,)."""
+    """One update of Algorithm 5 given this iteration's acceptance statistic, shaped like the
+    state (the loop passes the chains' mean acceptance probability, shape (1,))."""
     accept_prob = torch.nan_to_num(accept_prob, nan=0.0).clamp(0.0, 1.0)
     count = state.count + 1
     eta = 1.0 / (count + DA_T0)

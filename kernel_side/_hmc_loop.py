@@ -84,8 +84,9 @@ class _Run:
         return per_chain.log().mean(0, keepdim=True).exp()
 
     def find_step_size(self, start: Tensor) -> Tensor:
-        """Hoffman & Gelman 2014, Algorithm 4, per chain: double or halve until the
-        acceptance probability of one leapfrog step crosses 1/2."""
+        """Hoffman & Gelman 2014, Algorithm 4, run per chain (double or halve until the
+        acceptance probability of one leapfrog step crosses 1/2); the shared step returned,
+        shape (1,), is the geometric mean of the chains' steps."""
         like = self.state.position
         noise = torch.randn(like.shape, generator=self.generator, dtype=like.dtype).to(like.device)
         momentum = noise / self.inverse_mass.sqrt()

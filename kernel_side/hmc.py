@@ -4,9 +4,10 @@ The sampler is built from small pure functions over tensors and a named-tuple st
 :func:`evaluate` (log density and its gradient for every chain in one backward pass),
 :func:`leapfrog` (a trajectory per chain, each with its own step size and step count)
 and :func:`hmc_transition` (momentum, trajectory, Metropolis correction).
-:func:`sample_hmc` strings them together with dual averaging of the step size
-(Hoffman & Gelman 2014, Algorithm 5) and a diagonal inverse metric estimated in
-expanding warm-up windows.
+:func:`sample_hmc` strings them together with dual averaging of one step size shared
+by every chain and adapted on their pooled acceptance (Hoffman & Gelman 2014,
+Algorithm 5; each iteration jitters it per chain), and a diagonal inverse metric per
+chain estimated in expanding warm-up windows.
 """
 from __future__ import annotations
 
@@ -56,7 +57,8 @@ class HMCDraws:
         Post-warm-up positions of C chains (T draws each; fewer if interrupted).
     log_density : Tensor of shape (C, T)
     accept_prob : Tensor of shape (C, T)
-        Metropolis acceptance probability min(1, exp(-dH)) of each iteration.
+        Metropolis acceptance probability min(1, exp(-dH)) of each iteration; 0 for a
+        divergent one (always rejected).
     divergent : Tensor of shape (C, T), bool
     num_steps : Tensor of shape (C, T)
         Leapfrog steps taken in each iteration.
@@ -65,7 +67,8 @@ class HMCDraws:
     divergences : Tensor of shape (C,)
         Divergent transitions after warm-up; ``warmup_divergences`` counts those before.
     step_size : Tensor of shape (C,)
-        The adapted step size (before jitter), one value shared by every chain.
+        The adapted step size (before jitter): one value, shared by every chain and
+        repeated C times.
     inverse_mass : Tensor of shape (C, P)
         Adapted diagonal inverse metric of each chain.
     rhat, ess, ess_tail : Tensor of shape (P,)
@@ -154,7 +157,11 @@ def sample_hmc(
         Estimate each chain's diagonal inverse metric in expanding warm-up windows (else
         identity). Needs ``warmup >= 150``; shorter warm-ups adapt the step size only.
     divergence_threshold : float
-        An energy error above this (or a non-finite one) counts as a divergence.
+        An energy error above this (or a non-finite one) counts as a divergence, and a
+        divergent transition is always rejected. Keep it large: rejecting a proposal
+        whose reverse move would be accepted breaks detailed balance, so a small threshold
+        biases the draws. At the default, a divergence's Metropolis probability
+        ``exp(-1000)`` already underflows to 0, and rejecting it changes nothing.
     diagnostics : bool
         Compute arviz R-hat and bulk / tail ESS per coordinate (costly for large P).
     seed : int
@@ -292,7 +299,9 @@ def hmc_transition(
 ) -> Transition:
     """One HMC iteration per chain: fresh momentum, a leapfrog trajectory, accept or reject.
 
-    Rejected, divergent and non-finite proposals leave the chain where it was.
+    A transition is divergent when its energy error is not finite or exceeds
+    ``divergence_threshold``; divergent transitions are always rejected (acceptance
+    probability 0), whatever the threshold. Rejected proposals leave the chain where it was.
     """
     like = state.position
     noise = torch.randn(like.shape, generator=generator, dtype=like.dtype).to(like.device)
@@ -303,9 +312,11 @@ def hmc_transition(
     finite = torch.isfinite(energy_error)
     energy_error = torch.where(finite, energy_error, torch.full_like(energy_error, float("inf")))
     divergent = ~finite | (energy_error > divergence_threshold)
-    accept_prob = torch.exp(torch.clamp(-energy_error, max=0.0))
+    # A divergent transition is always rejected, so its acceptance probability is 0.
+    metropolis = torch.exp(torch.clamp(-energy_error, max=0.0))
+    accept_prob = torch.where(divergent, torch.zeros_like(metropolis), metropolis)
     uniform = torch.rand(like.shape[0], generator=generator, dtype=like.dtype).to(like.device)
-    accepted = (uniform < accept_prob) & finite
+    accepted = (uniform < accept_prob) & ~divergent
     new_state = HMCState(
         torch.where(accepted[:, None], end.position, state.position),
         torch.where(accepted, end.log_density, state.log_density),

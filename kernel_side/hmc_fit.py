@@ -19,7 +19,10 @@ from torch import Tensor, nn
 
 from ._checks import _show, check_choice, check_float, check_int
 from ._threads import torch_threads
-from ._hmc_posterior import NetworkPosterior, function_space_diagnostics, map_start, prior_start
+from ._fitting import stream_seed
+from ._hmc_posterior import (
+    NetworkPosterior, convergence_checks, function_space_diagnostics, map_start, prior_start,
+)
 from .diagnostics import ConvergenceWarning
 from .ensemble import Ensemble
 from .hmc import HMCDraws, sample_hmc
@@ -76,6 +79,7 @@ def fit_hmc(
         Start each chain from its own short MAP run (Adam, ``map_steps`` steps at
         ``map_lr``, from a seeded default initialisation) or from a prior draw.
     seed : int
+        Seeds the initialisation; the sampler draws from a stream derived from it.
     device : torch device, optional
         Where to compute (default: where ``data`` lives).
     progress : bool
@@ -89,8 +93,9 @@ def fit_hmc(
     Ensemble
         ``meta`` holds ``method="hmc"``, ``classes``, ``bounds``, ``data``,
         ``architecture``, ``seed``, ``seconds``, ``hyperparameters`` and
-        ``diagnostics`` (acceptance, divergences, step sizes, R-hat and ESS of the
-        function-space quantities, and the list of failed checks).
+        ``diagnostics`` (acceptance, divergences, the shared step size, R-hat and ESS of
+        the function-space quantities, ``checks``: the checks applied, in words, and
+        ``problems``: those that failed).
 
     Raises
     ------
@@ -103,7 +108,8 @@ def fit_hmc(
     Warns
     -----
     ConvergenceWarning
-        When R-hat exceeds 1.01, bulk ESS is under 100 per chain, or transitions diverged.
+        When the train log-likelihood's R-hat or the 95th percentile of the test points'
+        R-hat exceeds 1.01, bulk ESS is under 100 per chain, or transitions diverged.
     """
     started = time.perf_counter()
     settings = _check_arguments(module, data, samples, chains, warmup, draws_per_chain, prior_std,
@@ -126,10 +132,13 @@ def _fit(posterior: NetworkPosterior, data, settings: dict, started: float, prog
         initial = map_start(posterior, chains, settings["map_steps"], settings["map_lr"], seed)
     else:
         initial = prior_start(posterior, chains, seed)
+    # The sampler's momenta and jitter come from a stream of their own: with the
+    # initialisation's stream, the first momentum would replay the prior draw.
     draws = sample_hmc(
         posterior, initial, num_samples=settings["draws_per_chain"], warmup=settings["warmup"],
         trajectory_length=settings["trajectory_length"], max_steps=settings["max_steps"],
-        target_accept=settings["target_accept"], diagnostics=False, seed=seed, progress=progress,
+        target_accept=settings["target_accept"], diagnostics=False, seed=stream_seed(seed, 1),
+        progress=progress,
     )
     if draws.num_draws == 0:
         raise KeyboardInterrupt("sampling was interrupted before the first draw")
@@ -235,5 +244,6 @@ def _diagnostics(posterior: NetworkPosterior, draws: HMCDraws, data, settings: d
         "gradient_evaluations": draws.gradient_evaluations,
         "sampling_seconds": draws.seconds,
         **found,
+        "checks": convergence_checks(draws.num_chains) + ["no divergent transitions after warm-up"],
         "problems": problems,
     }

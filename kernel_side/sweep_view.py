@@ -5,6 +5,7 @@ the widget holds no numerical code and these can be checked against scipy direct
 """
 from __future__ import annotations
 
+import itertools
 import json
 from dataclasses import dataclass
 from typing import Any, Sequence
@@ -14,7 +15,7 @@ import numpy as np
 from ._checks import check_choice
 
 __all__ = ["SweepPoints", "Correlation", "ROBUSTNESS_MEASURES", "sweep_view", "sweep_points",
-           "family_correlations", "FAMILIES"]
+           "family_correlations", "exact_permutation_p", "FAMILIES"]
 
 #: y-axis choices: column or derived quantity -> axis title (higher is more robust for both)
 ROBUSTNESS_MEASURES = {
@@ -22,6 +23,11 @@ ROBUSTNESS_MEASURES = {
     "unflipped": "share of points the attack did not flip (1 - success rate)",
 }
 FAMILIES = ("deterministic", "Bayesian")
+#: below this many runs no p-value is given: the exact permutation p of a perfect rank order
+#: of 3 runs is already 1/3, and the asymptotic one would be meaningless
+MIN_RUNS_FOR_P = 4
+#: up to this many runs p is exact, over all n! pairings (8! = 40,320); above, scipy's t approximation
+EXACT_MAX_RUNS = 8
 
 
 @dataclass(frozen=True)
@@ -45,7 +51,10 @@ class SweepPoints:
 class Correlation:
     """Pearson and Spearman correlation of robustness with accuracy within one family.
 
-    Statistics are NaN when n < 3 or either variable is constant (no correlation defined).
+    Coefficients are NaN when n < 3 or either variable is constant (no correlation defined);
+    p-values are NaN as well when n < 4. ``p_method`` says how the p-values were found:
+    ``"exact permutation"`` (n <= 8), ``"t approximation"`` (scipy's, n > 8), ``"n too small"``
+    or ``"constant values"`` (none).
     """
 
     family: str
@@ -54,6 +63,7 @@ class Correlation:
     pearson_p: float
     spearman_rho: float
     spearman_p: float
+    p_method: str = ""
 
 
 def sweep_view(frame: Any, methods: Sequence[str] | None, budget: float, attack: str,
@@ -100,22 +110,56 @@ def sweep_points(frame: Any, methods: Sequence[str] | None, budget: float, attac
 
 def family_correlations(points: SweepPoints) -> list[Correlation]:
     """Pearson (``scipy.stats.pearsonr``) and Spearman (``scipy.stats.spearmanr``) correlation
-    between accuracy and the robustness value, separately for each family."""
+    between accuracy and the robustness value, separately for each family.
+
+    Two-sided p-values: none below 4 runs, exact permutation p-values (:func:`exact_permutation_p`)
+    up to 8 runs, and scipy's t approximation above.
+    """
     from scipy import stats
 
     out = []
+    nan = float("nan")
     for code, family in enumerate(FAMILIES):
         chosen = points.family == code
         x, y = points.accuracy[chosen], points.value[chosen]
         n = int(chosen.sum())
         if n < 3 or np.ptp(x) == 0 or np.ptp(y) == 0:
-            out.append(Correlation(family, n, *(float("nan"),) * 4))
+            reason = "n too small" if n < MIN_RUNS_FOR_P else "constant values"
+            out.append(Correlation(family, n, nan, nan, nan, nan, reason))
             continue
-        pearson = stats.pearsonr(x, y)
-        spearman = stats.spearmanr(x, y)
-        out.append(Correlation(family, n, float(pearson.statistic), float(pearson.pvalue),
-                               float(spearman.statistic), float(spearman.pvalue)))
+        pearson, spearman = stats.pearsonr(x, y), stats.spearmanr(x, y)
+        if n < MIN_RUNS_FOR_P:
+            p_values, method = (nan, nan), "n too small"
+        elif n <= EXACT_MAX_RUNS:
+            ranks = (stats.rankdata(x), stats.rankdata(y))  # Spearman's rho is Pearson's r of the ranks
+            p_values, method = (exact_permutation_p(x, y), exact_permutation_p(*ranks)), "exact permutation"
+        else:
+            p_values, method = (float(pearson.pvalue), float(spearman.pvalue)), "t approximation"
+        out.append(Correlation(family, n, float(pearson.statistic), p_values[0],
+                               float(spearman.statistic), p_values[1], method))
     return out
+
+
+def exact_permutation_p(x: Any, y: Any) -> float:
+    """Two-sided exact permutation p-value of Pearson's r between ``x`` and ``y`` (Pitman 1937).
+
+    Every one of the n! pairings of ``y`` with ``x`` is equally likely under no association;
+    with ``r*`` over them, p = min(1, 2 min(P(r* <= r), P(r* >= r))), the two-sided rule of
+    ``scipy.stats.permutation_test``. Meant for small n (n! rows are enumerated).
+    """
+    x = np.asarray(x, dtype=np.float64)
+    y = np.asarray(y, dtype=np.float64)
+    xc, yc = x - x.mean(), y - y.mean()
+    scale = np.linalg.norm(xc) * np.linalg.norm(yc)
+    pairings = np.array(list(itertools.permutations(range(len(y)))))
+    null = (yc[pairings] @ xc) / scale
+    observed = float(xc @ yc / scale)
+    # r lies in [-1, 1] and each value is a sum of at most 8 rounded products: pairings with the
+    # same r agree to a few 1e-16, far inside 1e-12, so ties count as ties
+    tie = 1e-12
+    less = float(np.mean(null <= observed + tie))
+    greater = float(np.mean(null >= observed - tie))
+    return min(1.0, 2.0 * min(less, greater))
 
 
 def _describe(row: Any) -> str:

@@ -45,6 +45,8 @@ def test_wheel_installs_and_finds_its_files(tmp_path):
         capture_output=True, text=True, timeout=300,
     )
     assert built.returncode == 0, built.stderr
+    # a newcomer's build is quiet: no setuptools deprecation or package-data warnings
+    assert "Warning" not in built.stderr, built.stderr
     (wheel,) = wheel_dir.glob("jostle-*.whl")
     names = set(zipfile.ZipFile(wheel).namelist())
     demo = ("01_first_tour", "02_fading_gradient", "03_meter_cards", "04_robustness_vs_accuracy", "05_bring_your_own")

@@ -14,8 +14,9 @@ import numpy as np
 
 from ._palette import ATTACK_COLOUR, INPUT_COLOUR
 
-INK = "var(--jp-ui-font-color1, #333333)"
-MUTED = "var(--jp-ui-font-color2, #777777)"
+# the same fallbacks as js/theme.css (--jostle-ink, --jostle-muted)
+INK = "var(--jp-ui-font-color1, #26241f)"
+MUTED = "var(--jp-ui-font-color2, #615c53)"
 # The title sits in the top margin, centred half-way up it: 40 px leaves a 12 px title clear
 # of the plot area and of the top tick label.
 _MARGIN = dict(top=40, bottom=40, left=62, right=56)
@@ -250,6 +251,35 @@ def loss_axis_for(loss: Any) -> LossAxis:
     ticks = ticks[(ticks >= low - 1e-9 * span) & (ticks <= high + 1e-9 * span)]
     fmt = ".0f" if step >= 1 else (f".{min(6, -math.floor(math.log10(step)))}f" if step >= 1e-3 else ".0e")
     return LossAxis(low - 0.05 * span, high + 0.08 * span, ticks, fmt)
+
+
+class ShareAxis(NamedTuple):
+    """Domain, 1-2-5 ticks inside it and their labels, for an axis of shares in [0, 1]."""
+
+    low: float
+    high: float
+    ticks: np.ndarray
+    labels: list[str]
+
+
+def share_axis(values: Any) -> ShareAxis:
+    """An axis for shares (accuracy, robustness): the finite values padded by 8% of their
+    span (at least 0.01), never past 0 or 1 (0..1 if none is finite), with 2 to 7 ticks at
+    multiples of 1, 2 or 5 times a power of ten, labelled to the step's decimals."""
+    values = np.asarray(values, dtype=np.float64).ravel()
+    values = values[np.isfinite(values)]
+    low, high = (float(values.min()), float(values.max())) if values.size else (0.0, 1.0)
+    pad = max(0.08 * (high - low), 0.01)
+    low, high = max(low - pad, 0.0), min(high + pad, 1.0)
+    if high <= low:  # every value at 0 or at 1 exactly
+        low, high = (0.0, 0.01) if high <= 0.0 else (0.99, 1.0)
+    # a step of at least span / 6 gives at most 7 ticks; 1-2-5 steps grow at most 2.5-fold,
+    # so the step is below span / 2.4 and at least 2 multiples fall inside
+    step = _nice_step((high - low) / 6.0)
+    first, last = math.ceil(low / step - 1e-9), math.floor(high / step + 1e-9)
+    decimals = max(0, -math.floor(math.log10(step) + 1e-9))
+    ticks = np.array([round(k * step, decimals + 3) for k in range(first, last + 1)])
+    return ShareAxis(low, high, ticks, [f"{t:.{decimals}f}" for t in ticks])
 
 
 def count_axis(most: float) -> tuple[float, np.ndarray]:

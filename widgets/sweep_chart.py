@@ -33,8 +33,13 @@ class SweepChart(anywidget.AnyWidget):
     measure_titles = t.List(t.Unicode(), [], help="readable name of each robustness measure").tag(sync=True)
     measure = t.Unicode("robustness", help="robustness measure on the y axis").tag(sync=True)
     x_title = t.Unicode("test accuracy", help="x axis title").tag(sync=True)
+    x_axis = t.Dict({"low": 0.0, "high": 1.0, "ticks": [], "labels": []},
+                    help="x domain and its 1-2-5 ticks with their labels").tag(sync=True)
+    y_axis = t.Dict({"low": 0.0, "high": 1.0, "ticks": [], "labels": []},
+                    help="y domain and its 1-2-5 ticks with their labels").tag(sync=True)
     y_title = t.Unicode("", help="y axis title").tag(sync=True)
-    correlations = t.List(t.List(t.Unicode()), [], help="rows: family, n, Pearson r, p, Spearman rho, p (text)").tag(sync=True)
+    correlations = t.List(t.List(t.Unicode()), [],
+                          help="rows: family, n, Pearson r, p, Spearman rho, p, how p was found (text)").tag(sync=True)
     selected_key = t.Unicode("", help="run chosen by clicking a mark ('' for none)").tag(sync=True)
     note = t.Unicode("", help="one line under the chart, plain text").tag(sync=True)
     revision = t.Int(0, help="bumped after each full update so the view redraws once").tag(sync=True)

@@ -11,6 +11,7 @@ import traitlets as t
 from jostle.store import RunStore
 from jostle.sweep_view import ROBUSTNESS_MEASURES, sweep_view
 
+from ._charts import share_axis
 from ._wire import to_wire
 from .sweep_chart import SweepChart
 
@@ -22,7 +23,8 @@ class SweepExplorer(ipw.HBox):
 
     Deterministic runs are rose triangles, Bayesian runs indigo circles. Filters choose
     the methods, the attack and the budget; a table gives Pearson and Spearman
-    correlations of robustness with accuracy per family, with the number of runs n.
+    correlations of robustness with accuracy per family, with the number of runs n and
+    two-sided p-values (none below 4 runs, exact permutation p-values up to 8).
     Hovering a mark shows the run's configuration; clicking a run whose ensemble was
     saved (``save_ensembles=True``) opens it in an Explorer, or an ImageExplorer for
     image data, beside the chart.
@@ -143,6 +145,8 @@ class SweepExplorer(ipw.HBox):
             self.chart.accuracy = to_wire(points.accuracy if points else [], "float64")
             self.chart.value = to_wire(points.value if points else [], "float64")
             self.chart.family = to_wire(points.family if points else [], "uint8")
+            self.chart.x_axis = _axis(points.accuracy if points else [])
+            self.chart.y_axis = _axis(points.value if points else [])
             self.chart.point_keys = points.keys if points else []
             self.chart.point_notes = points.descriptions if points else []
             self.chart.correlations = [_correlation_row(c) for c in self.correlations]
@@ -241,11 +245,20 @@ def _explorer_for(path: Path, config: dict, settings: dict):
         return widget(ens, data)
 
 
-def _correlation_row(c) -> list[str]:
-    def show(v: float) -> str:
-        return "n/a" if math.isnan(v) else f"{v:.3f}"
+def _axis(values) -> dict:
+    axis = share_axis(values)
+    return {"low": axis.low, "high": axis.high, "ticks": axis.ticks.tolist(), "labels": axis.labels}
 
-    return [c.family, str(c.n), show(c.pearson_r), show(c.pearson_p), show(c.spearman_rho), show(c.spearman_p)]
+
+def _correlation_row(c) -> list[str]:
+    """family, n, r, p, rho, p, how p was found; "n too small" where n allows no value."""
+    def show(v: float) -> str:
+        if math.isnan(v):
+            return "n too small" if c.p_method == "n too small" else "n/a"
+        return f"{v:.3f}"
+
+    return [c.family, str(c.n), show(c.pearson_r), show(c.pearson_p), show(c.spearman_rho), show(c.spearman_p),
+            c.p_method]
 
 
 def _summary(points) -> str:

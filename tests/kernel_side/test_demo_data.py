@@ -79,6 +79,8 @@ def test_shipped_hmc_posterior_passed_its_convergence_checks():
     assert diagnostics["divergences"] == 0
     assert diagnostics["train_log_likelihood"]["rhat"] < 1.01
     assert diagnostics["train_log_likelihood"]["ess_bulk"] > 100 * 4
+    assert diagnostics["test_probs"]["rhat_q95"] <= 1.01  # a high quantile over test points, not the median
+    assert "95th percentile of test-probability R-hat <= 1.01" in diagnostics["checks"]
 
 
 def test_hmc_members_disagree_away_from_the_data_and_the_deterministic_net_cannot():

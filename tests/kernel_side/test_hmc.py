@@ -10,7 +10,7 @@ import torch
 
 import jostle
 from jostle.diagnostics import SamplingInterruptedWarning
-from jostle.hmc import HMCState, evaluate, kinetic_energy, leapfrog
+from jostle.hmc import HMCState, evaluate, hmc_transition, kinetic_energy, leapfrog
 
 F64 = torch.float64
 
@@ -196,6 +196,51 @@ def test_forbidden_regions_are_rejected_divergences_and_never_reach_the_draws():
     assert float(first.abs().max()) <= 1.0
     expected = scipy.stats.truncnorm(-1, 1).var()
     assert float(first.var()) == pytest.approx(expected, rel=0.1)
+
+
+def _walled_normal(q):
+    # standard normal with a NaN wall beyond q0 > 1.5: trajectories crossing it are non-finite
+    value = -0.5 * (q ** 2).sum(-1)
+    return torch.where(q[:, 0] > 1.5, torch.full_like(value, float("nan")), value)
+
+
+@pytest.mark.parametrize("threshold", [0.05, 1e300])
+def test_a_transition_flagged_divergent_is_never_accepted(threshold):
+    # A divergent transition is rejected whatever divergence_threshold is: a divergence marks a
+    # failed integration (Betancourt 2017, "A conceptual introduction to Hamiltonian Monte Carlo",
+    # arXiv:1701.02434; from memory). A small threshold flags finite energy errors whose
+    # Metropolis probability exp(-dH) is far from 0; the huge one leaves only non-finite ones.
+    chains, dims = 4000, 5
+    g = torch.Generator().manual_seed(3)
+    start = evaluate(_walled_normal, torch.randn(chains, dims, generator=g, dtype=F64).clamp(max=1.4))
+    step = torch.full((chains,), 0.9, dtype=F64)
+    move = hmc_transition(_walled_normal, start, step, torch.full((chains,), 5), torch.ones(chains, dims, dtype=F64),
+                          g, divergence_threshold=threshold)
+    divergent = move.divergent
+    finite_divergent = divergent & torch.isfinite(move.energy_error)
+    if threshold < 1:
+        # the case that matters: many flagged transitions would pass a Metropolis test
+        assert int((finite_divergent & (torch.exp(-move.energy_error) > 0.5)).sum()) > 100
+    else:
+        assert not bool(finite_divergent.any())
+    assert int((~torch.isfinite(move.energy_error)).sum()) > 10
+    assert not bool((move.accepted & divergent).any())
+    assert bool((move.accept_prob[divergent] == 0).all())
+    # a rejected chain keeps its position exactly (a copy)
+    assert torch.equal(move.state.position[divergent], start.position[divergent])
+    assert bool(move.accepted[~divergent].any())
+
+
+def test_sampler_draws_stay_put_at_every_divergent_iteration():
+    # Same rule through sample_hmc: at a divergent iteration the draw repeats the previous one.
+    log_density, _ = scaled_gaussian(3)
+    draws = jostle.sample_hmc(log_density, torch.zeros(4, 3, dtype=F64), num_samples=150, warmup=30,
+                              divergence_threshold=0.1, diagnostics=False, seed=4)
+    flagged = draws.divergent[:, 1:]
+    assert int(flagged.sum()) > 20
+    repeated = (draws.samples[:, 1:] == draws.samples[:, :-1]).all(-1)
+    assert bool(repeated[flagged].all())
+    assert bool((draws.accept_prob[draws.divergent] == 0).all())
 
 
 def test_same_seed_same_draws_and_global_rng_untouched():

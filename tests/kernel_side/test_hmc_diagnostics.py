@@ -6,6 +6,7 @@ import pytest
 import torch
 
 import jostle
+from jostle._hmc_posterior import convergence_checks, failed_checks, point_rhat_summary
 from jostle.diagnostics import chain_diagnostics
 from jostle.hmc_fit import _thin_interleaved
 
@@ -68,3 +69,46 @@ def test_describe_reports_what_the_meta_holds_for_any_method():
     assert "time taken: 1.2 s" in text or "time taken: 1.3 s" in text
     assert "final_loss: 0.1235" in text
     assert jostle.describe(jostle.Ensemble.from_modules(nets)).startswith("unspecified posterior")
+
+
+def _record(rhat):
+    # a function-space record whose train log-likelihood and ESS pass, with the given test-point R-hats
+    tp = point_rhat_summary(np.asarray(rhat), np.full(len(rhat), 2000.0))
+    return {"train_log_likelihood": {"rhat": 1.001, "ess_bulk": 2000.0}, "test_probs": tp}
+
+
+def test_test_point_rhat_check_uses_the_95th_percentile_not_the_median():
+    # 60 points at 1.00 and 40 at 1.05: the median (1.00) passes the 1.01 limit (common practice,
+    # Vehtari et al. 2021 sec. 4) but 40% of points exceed it. numpy's default (linear, Hyndman &
+    # Fan 1996 type 7) 95th percentile of 100 sorted values sits at position 0.95 * 99 = 94.05,
+    # among the 1.05s, so the check fails and says so.
+    record = _record([1.0] * 60 + [1.05] * 40)
+    tp = record["test_probs"]
+    assert tp["rhat_median"] == 1.0
+    assert tp["rhat_q95"] == pytest.approx(1.05, abs=1e-15)  # interpolates between two equal values
+    assert tp["share_rhat_over_1.01"] == pytest.approx(0.4, abs=1e-15)  # 40 / 100 in float64
+    failed = failed_checks(record, chains=4)
+    assert failed == ["95th percentile of test-probability R-hat 1.050 > 1.01 (40% of test points above)"]
+
+
+def test_test_point_rhat_check_passes_when_only_a_few_points_exceed_the_limit():
+    # 96 at 1.00 and 4 at 1.50: position 94.05 falls between two 1.00s, so the 95th percentile is
+    # 1.00 and passes, while the maximum (also recorded) shows the outliers.
+    record = _record([1.0] * 96 + [1.5] * 4)
+    assert record["test_probs"]["rhat_q95"] == 1.0 and record["test_probs"]["rhat_max"] == 1.5
+    assert failed_checks(record, chains=4) == []
+    assert failed_checks(_record([float("nan")] * 3), chains=4)[0].startswith("95th percentile")
+
+
+def test_describe_names_the_checks_that_passed():
+    nets = [jostle.mlp(2, 2, hidden=(3,)) for _ in range(2)]
+    checks = convergence_checks(4) + ["no divergent transitions after warm-up"]
+    meta = {"method": "hmc", "diagnostics": {"problems": [], "checks": checks, "step_size": [0.1, 0.1]}}
+    text = jostle.describe(jostle.Ensemble.from_modules(nets, meta=meta))
+    assert "checks passed: train log-likelihood R-hat <= 1.01" in text
+    assert "95th percentile of test-probability R-hat <= 1.01" in text
+    assert "median test-probability bulk ESS >= 400 (100 per chain)" in text
+    assert "step size (shared by the chains): 0.1" in text
+    old = {"method": "hmc", "diagnostics": {"problems": []}}
+    text = jostle.describe(jostle.Ensemble.from_modules(nets, meta=old))
+    assert "checks passed" not in text and "no failed checks recorded" in text

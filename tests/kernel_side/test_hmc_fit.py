@@ -54,6 +54,8 @@ def test_short_fit_records_diagnostics_and_warns_about_too_few_draws(moons, caps
     assert set(diagnostics["train_log_likelihood"]) >= {"mean", "rhat", "ess_bulk", "ess_tail"}
     assert diagnostics["test_probs"]["points"] == 300
     assert any("bulk ESS" in p for p in diagnostics["problems"])
+    assert "95th percentile of test-probability R-hat <= 1.01" in diagnostics["checks"]
+    assert diagnostics["test_probs"]["rhat_q95"] >= diagnostics["test_probs"]["rhat_median"]
     ens.info()
     shown = capsys.readouterr().out
     for phrase in ("hmc posterior: 6 members", "acceptance (per chain)", "divergences after warm-up",
@@ -72,6 +74,38 @@ def test_same_seed_same_posterior(moons):
     for name in a.params:
         assert torch.equal(a.params[name], b.params[name])
         assert not torch.equal(a.params[name], c.params[name])
+
+
+def test_first_momentum_is_not_a_replay_of_the_prior_start(moons, monkeypatch):
+    # The chains' initialisation and the sampler's momenta come from different streams: with one
+    # seed for both, the first momentum drawn (identity metric) equalled theta0 / prior_std.
+    import jostle._hmc_loop as loop
+    import jostle.hmc_fit as hmc_fit
+
+    seen = {}
+    start, kinetic = hmc_fit.prior_start, loop.kinetic_energy
+
+    def recording_start(*args, **kwargs):
+        seen["initial"] = start(*args, **kwargs)
+        return seen["initial"]
+
+    def recording_kinetic(momentum, inverse_mass):
+        seen.setdefault("momentum", momentum.clone())
+        return kinetic(momentum, inverse_mass)
+
+    monkeypatch.setattr(hmc_fit, "prior_start", recording_start)
+    monkeypatch.setattr(loop, "kinetic_energy", recording_kinetic)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ConvergenceWarning)
+        jostle.fit_hmc(jostle.mlp(2, 2, hidden=(3,)), moons, samples=2, chains=3, warmup=0, draws_per_chain=2,
+                       init="prior", prior_std=0.5, max_steps=2, seed=5, progress=False)
+    initial, momentum = seen["initial"], seen["momentum"]
+    assert momentum.shape == initial.shape
+    scaled = initial / 0.5
+    assert not torch.allclose(momentum, scaled, rtol=1e-3, atol=1e-3)
+    # independent standard normals: their correlation is small (|r| < 4 / sqrt(n), n = 3 * 17)
+    r = float(torch.corrcoef(torch.stack([momentum.flatten(), scaled.flatten()]))[0, 1])
+    assert abs(r) < 4 / initial.numel() ** 0.5
 
 
 @pytest.mark.slow

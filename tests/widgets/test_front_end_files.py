@@ -6,7 +6,7 @@ from pathlib import Path
 
 import pytest
 
-from jostle.widgets import _palette
+from jostle.widgets import _charts, _palette
 from jostle.widgets._assets import asset_path
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -57,3 +57,23 @@ def test_css_is_scoped_and_themed():
             assert part.strip().startswith(".jostle-"), part  # every rule under a jostle class
     for variable in re.findall(r"var\((--jp-[a-z0-9-]+)(,?)", css):
         assert variable[1] == ",", f"{variable[0]} has no fallback"
+
+
+def _relative_luminance(hex_colour: str) -> float:
+    # WCAG 2.1, "relative luminance" (sRGB linearised, weights 0.2126, 0.7152, 0.0722)
+    channels = [int(hex_colour[i:i + 2], 16) / 255 for i in (1, 3, 5)]
+    linear = [c / 12.92 if c <= 0.04045 else ((c + 0.055) / 1.055) ** 2.4 for c in channels]
+    return 0.2126 * linear[0] + 0.7152 * linear[1] + 0.0722 * linear[2]
+
+
+def test_fallback_text_colours_meet_wcag_aa_contrast():
+    # WCAG 2.1 success criterion 1.4.3: text contrast (L1 + 0.05) / (L2 + 0.05) >= 4.5 : 1,
+    # for the colours used outside JupyterLab (the --jp-* fallbacks)
+    css = asset_path("theme.css").read_text()
+    fallback = dict(re.findall(r"--jostle-([a-z]+): var\(--jp-[a-z0-9-]+, (#[0-9a-f]{6})\)", css))
+    assert {"ink", "muted", "surface", "raised", "border", "focus", "error"} <= set(fallback)
+    for text in ("ink", "muted", "focus", "error"):
+        for ground in ("surface", "raised"):
+            light, dark = sorted((_relative_luminance(fallback[text]), _relative_luminance(fallback[ground])))[::-1]
+            assert (light + 0.05) / (dark + 0.05) >= 4.5, (text, ground)
+    assert fallback["ink"] in _charts.INK and fallback["muted"] in _charts.MUTED  # bqplot charts agree

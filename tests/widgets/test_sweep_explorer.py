@@ -71,9 +71,17 @@ def test_correlations_match_scipy(store):
         ref_p, ref_s = stats.pearsonr(x, y), stats.spearmanr(x, y)  # scipy.stats as the reference
         got = by_family[family]
         assert got.n == len(x)
-        np.testing.assert_allclose([got.pearson_r, got.pearson_p], [ref_p.statistic, ref_p.pvalue], rtol=1e-12)
-        np.testing.assert_allclose([got.spearman_rho, got.spearman_p], [ref_s.statistic, ref_s.pvalue], rtol=1e-12)
-    assert w.chart.correlations[1][:2] == ["Bayesian", "10"]
+        # same formulas on the same float64 data: agreement to rounding
+        np.testing.assert_allclose([got.pearson_r, got.spearman_rho], [ref_p.statistic, ref_s.statistic], rtol=1e-12)
+        if len(x) > 8:  # scipy's t approximation
+            np.testing.assert_allclose([got.pearson_p, got.spearman_p], [ref_p.pvalue, ref_s.pvalue], rtol=1e-12)
+        else:  # 5 deterministic runs: exact permutation p (scipy.stats.permutation_test enumerates all 5!)
+            exact = [stats.permutation_test((y,), lambda yy: corr(x, yy).statistic, permutation_type="pairings",
+                                            n_resamples=120, vectorized=False).pvalue
+                     for corr in (stats.pearsonr, stats.spearmanr)]
+            np.testing.assert_allclose([got.pearson_p, got.spearman_p], exact, atol=1e-12)  # counts / 120
+    assert w.chart.correlations[0][:2] == ["deterministic", "5"] and w.chart.correlations[0][6] == "exact permutation"
+    assert w.chart.correlations[1][:2] == ["Bayesian", "10"] and w.chart.correlations[1][6] == "t approximation"
 
 
 def test_method_filter_and_measure(store):
@@ -94,7 +102,58 @@ def test_too_few_runs_give_no_correlation(store):
     w.methods = ["map"]
     bayes = [c for c in w.correlations if c.family == "Bayesian"][0]
     assert bayes.n == 0 and np.isnan(bayes.pearson_r)
-    assert w.chart.correlations[1][2] == "n/a"
+    assert w.chart.correlations[1][2:] == ["n too small"] * 5
+
+
+def test_three_runs_show_their_coefficients_but_say_n_too_small_for_p(tmp_path):
+    # For n = 3 the exact two-sided permutation p of a perfect rank order is 2/3! = 1/3 (Pitman 1937);
+    # an asymptotic p near 0 would mislead, so the table gives none.
+    path = tmp_path / "three.sqlite"
+    sweep = jostle.Sweep(datasets=[{"name": "moons", "n_test": 20}], methods=["map"],
+                         architectures=[{"depth": 1, "width": 4}], train_sizes=[20], seeds=[0, 1, 2],
+                         evaluation={"budgets": [0.1], "points": 5, "attacks": [{"method": "fgsm"}]})
+    rng = np.random.default_rng(3)
+    with RunStore(path) as db:
+        for config in sweep.runs():
+            db.record(_fake_record(config, rng))
+    row = SweepExplorer(path).chart.correlations[0]
+    assert row[:2] == ["deterministic", "3"]
+    assert row[2] not in ("n/a", "n too small") and row[4] not in ("n/a", "n too small")
+    assert row[3] == row[5] == row[6] == "n too small"
+
+
+def _is_round(step: float) -> bool:
+    # 1, 2 or 5 times a power of ten (common practice for axis ticks)
+    mantissa = step / 10.0 ** np.floor(np.log10(step))
+    return any(abs(mantissa - m) < 1e-9 for m in (1.0, 2.0, 5.0))
+
+
+def test_sweep_chart_axes_tick_at_round_numbers_inside_their_domain(store):
+    w = SweepExplorer(store)
+    for measure in ("robustness", "unflipped"):
+        w.measure = measure
+        for axis, values in ((w.chart.x_axis, w.points.accuracy), (w.chart.y_axis, w.points.value)):
+            ticks = np.array(axis["ticks"])
+            assert 2 <= len(ticks) <= 7
+            assert axis["low"] <= values.min() and values.max() <= axis["high"]
+            assert 0.0 <= axis["low"] and axis["high"] <= 1.0
+            assert ticks.min() >= axis["low"] - 1e-12 and ticks.max() <= axis["high"] + 1e-12
+            steps = np.diff(ticks)
+            assert np.allclose(steps, steps[0], rtol=1e-9) and _is_round(float(steps[0]))
+            # each tick a whole multiple of the step (to the rounding of k * step)
+            assert np.allclose(ticks / steps[0], np.round(ticks / steps[0]), atol=1e-9)
+            assert axis["labels"] == [f"{t:.{max(0, -int(np.floor(np.log10(steps[0]))))}f}" for t in ticks]
+
+
+def test_share_axis_ticks_where_even_spacing_did_not():
+    # the old even split of a padded range gave 0.61, 0.69, 0.77-style ticks; round steps instead
+    from jostle.widgets._charts import share_axis
+
+    axis = share_axis([0.6416, 0.7384])
+    assert axis.ticks.tolist() == [0.64, 0.66, 0.68, 0.7, 0.72, 0.74]
+    assert axis.labels == ["0.64", "0.66", "0.68", "0.70", "0.72", "0.74"]
+    assert share_axis([]).ticks.tolist() == [0.0, 0.2, 0.4, 0.6, 0.8, 1.0]
+    assert share_axis([0.2758, 0.597]).labels == ["0.3", "0.4", "0.5", "0.6"]
 
 
 def test_bad_choices_are_refused(store):
