@@ -33,7 +33,12 @@ def test_spsa_is_unbiased_on_a_quadratic_with_the_rademacher_variance():
     assert float((estimates.abs() - estimates.abs()[:, :1]).abs().max()) < 1e-9
     standard_error = (grad.norm() ** 2 - grad ** 2).sqrt() / draws ** 0.5
     assert bool(((estimates.mean(0) - grad).abs() <= 4 * standard_error).all())
-    torch.testing.assert_close(estimates.var(0), grad.norm() ** 2 - grad ** 2, rtol=0.05, atol=0)
+    # Coordinate i is g_i + Z with Z = sum_{j != i} g_j u_j, u Rademacher: Var Z = s2 and
+    # E Z^4 = 3 s2^2 - 2 s4 (s_k = sum_{j != i} g_j^k), so the sample variance has standard
+    # error sqrt((E Z^4 - s2^2) / n); allow 5 of them.
+    s2, s4 = grad.norm() ** 2 - grad ** 2, (grad ** 4).sum() - grad ** 4
+    variance_error = ((2 * s2 ** 2 - 2 * s4) / draws).sqrt()
+    assert bool(((estimates.var(0) - s2).abs() <= 5 * variance_error).all())
 
 
 def test_spsa_attack_matches_the_affine_optimum():

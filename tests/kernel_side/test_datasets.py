@@ -1,4 +1,4 @@
-"""Data sets against scikit-learn's generators and loaders (CHECKS.md, Data)."""
+"""Data sets against scikit-learn's generators and loaders (Pedregosa et al. 2011; sklearn.datasets docs)."""
 import numpy as np
 import pytest
 import torch
@@ -9,7 +9,8 @@ from jostle import datasets
 
 
 def test_moons_are_sklearns_arrays():
-    # make_moons(n): n//2 points in class 0; same random_state, same arrays (CHECKS.md).
+    # make_moons(n): n//2 points in class 0; same random_state, same arrays (scikit-learn
+    # documentation of sklearn.datasets.make_moons).
     data = datasets.moons(n_train=301, n_test=50, noise=0.2, seed=4)
     x, y = make_moons(301, noise=0.2, random_state=4)
     np.testing.assert_allclose(data.x_train.numpy(), x.astype(np.float32))

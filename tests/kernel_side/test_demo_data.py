@@ -22,7 +22,7 @@ def _mapped(x: np.ndarray) -> np.ndarray:
 
 
 def test_leak_alarm_is_make_moons_through_the_fixed_affine_map():
-    # reference: scikit-learn's make_moons with the same random_state (CHECKS.md, data)
+    # reference: scikit-learn's make_moons with the same random_state (sklearn.datasets docs)
     data = leak_alarm(n_train=120, n_test=80, noise=0.2, seed=3)
     x_train, y_train = make_moons(120, noise=0.2, random_state=3)
     x_test, y_test = make_moons(80, noise=0.2, random_state=3 + TEST_SEED_OFFSET)
