@@ -9,6 +9,16 @@ import torch
 os.environ.setdefault("OMP_NUM_THREADS", "2")
 
 
+def pytest_configure(config):
+    # JOSTLE_TEST_THREADS=1 runs the whole suite with torch on one thread; the suite must
+    # pass both ways, since the thread count changes the order of float reductions.
+    threads = os.environ.get("JOSTLE_TEST_THREADS")
+    if threads:
+        if not threads.isdigit() or int(threads) < 1:
+            raise pytest.UsageError(f"JOSTLE_TEST_THREADS must be an integer >= 1; got {threads!r}")
+        torch.set_num_threads(int(threads))
+
+
 @pytest.fixture
 def generator() -> torch.Generator:
     return torch.Generator().manual_seed(1234)

@@ -104,6 +104,7 @@ def test_pgd_is_deterministic_under_a_seed():
     first = jostle.attack(ens, x, eps=0.3, seed=7, samples=2, resample=True)
     again = jostle.attack(ens, x, eps=0.3, seed=7, samples=2, resample=True)
     other = jostle.attack(ens, x, eps=0.3, seed=8, samples=2, resample=True)
+    # same call, same seed, one process: exact
     assert torch.equal(first.path, again.path) and torch.equal(first.loss, again.loss)
     assert not torch.equal(first.path, other.path)
 
@@ -136,6 +137,8 @@ def test_thread_setting_is_restored(threads):
     plain = jostle.attack(ens, x, eps=0.2, threads=None)
     limited = jostle.attack(ens, x, eps=0.2, threads=threads)
     assert torch.get_num_threads() == before
+    # An affine model's gradient is w whatever the thread count, so the L-inf sign steps
+    # (and the whole path) are the same floats: exact.
     assert torch.equal(plain.path, limited.path)
 
 
@@ -157,6 +160,8 @@ def test_small_memory_budget_changes_nothing():
     tight = jostle.Ensemble(ens.template, ens.params, memory_budget=4096)
     x = torch.randn(50, 2, generator=torch.Generator().manual_seed(10))
     wide, narrow = jostle.attack(ens, x, eps=0.3, steps=10), jostle.attack(tight, x, eps=0.3, steps=10)
+    # Chunked and whole products may round differently (float32), but sign steps take the
+    # same floats unless a sign flips, which would move a point by a whole step (0.075).
     torch.testing.assert_close(wide.path, narrow.path, atol=1e-6, rtol=0)
 
 
@@ -168,6 +173,7 @@ def test_l2_fgsm_follows_each_objective_gradient():
     for objective in ("expected_loss", "predictive", "margin"):
         g = jostle.expected_gradient(ens, x, objective=objective)
         adv = jostle.attack(ens, x, method="fgsm", norm="2", eps=0.2, objective=objective)
+        # float32: the normalised step of size 0.2 and x + delta round to a few ulp of |x| <= 4
         torch.testing.assert_close(adv.x_adv - x, 0.2 * g / g.norm(dim=1, keepdim=True), atol=1e-6, rtol=0)
     expected = jostle.attack(ens, x, method="fgsm", norm="2", eps=0.2).x_adv
     predictive = jostle.attack(ens, x, method="fgsm", norm="2", eps=0.2, objective="predictive").x_adv
@@ -180,5 +186,6 @@ def test_every_method_is_deterministic_under_a_seed(method, norm):
     ens, _ = random_mlp_ensemble(members=3, classes=2, hidden=(8,), seed=12)
     x = torch.randn(6, 2, generator=torch.Generator().manual_seed(12))
     runs = [jostle.attack(ens, x, method=method, norm=norm, eps=0.3, steps=8, seed=4) for _ in range(2)]
+    # same call, same seed, one process: exact
     assert torch.equal(runs[0].x_adv, runs[1].x_adv) and torch.equal(runs[0].loss, runs[1].loss)
     assert runs[0].to_dict()["x_adv"].shape == (6, 2)

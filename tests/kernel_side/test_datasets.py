@@ -1,4 +1,4 @@
-"""Data sets against scikit-learn's generators and loaders (CHECKS.md, Data)."""
+"""Data sets against scikit-learn's generators and loaders (Pedregosa et al. 2011; sklearn.datasets docs)."""
 import numpy as np
 import pytest
 import torch
@@ -9,7 +9,8 @@ from jostle import datasets
 
 
 def test_moons_are_sklearns_arrays():
-    # make_moons(n): n//2 points in class 0; same random_state, same arrays (CHECKS.md).
+    # make_moons(n): n//2 points in class 0; same random_state, same arrays (scikit-learn
+    # documentation of sklearn.datasets.make_moons).
     data = datasets.moons(n_train=301, n_test=50, noise=0.2, seed=4)
     x, y = make_moons(301, noise=0.2, random_state=4)
     np.testing.assert_allclose(data.x_train.numpy(), x.astype(np.float32))
@@ -19,7 +20,7 @@ def test_moons_are_sklearns_arrays():
     np.testing.assert_allclose(data.x_test.numpy(), xt.astype(np.float32))
     assert int((datasets.moons(n_train=300).y_train == 0).sum()) == 150
     again = datasets.moons(n_train=301, n_test=50, noise=0.2, seed=4)
-    assert torch.equal(again.x_train, data.x_train)
+    assert torch.equal(again.x_train, data.x_train)  # same function, same seed, one process: exact
     lo, hi = data.bounds
     assert bool((data.x_train >= lo).all() and (data.x_train <= hi).all())
 
@@ -32,7 +33,7 @@ def test_digits_facts():
     assert data.x_train.shape[1] == 64 and data.image_shape == (8, 8)
     assert data.classes == [str(d) for d in range(10)]
     allx = torch.cat([data.x_train, data.x_test]).numpy()
-    assert allx.min() == 0.0 and allx.max() == 1.0
+    assert allx.min() == 0.0 and allx.max() == 1.0  # integers 0..16 over 16 are exact in binary floats
     np.testing.assert_allclose(np.unique(allx * 16), np.arange(17))
     raw = load_digits()
     assert sorted(map(tuple, (allx * 16).round().astype(int))) == sorted(map(tuple, raw.data.astype(int)))
@@ -42,6 +43,7 @@ def test_digits_facts():
 def test_circles_and_spirals_are_seeded_and_balanced():
     for make in (datasets.circles, datasets.spirals):
         a, b = make(seed=3), make(seed=3)
+        # same function, same seed, one process: exact
         assert torch.equal(a.x_train, b.x_train) and torch.equal(a.y_test, b.y_test)
         assert not torch.equal(a.x_train, make(seed=4).x_train)
         assert abs(int(a.y_train.sum()) - 150) <= 1
@@ -106,4 +108,4 @@ def test_seeded_initialisation_matches_pytorch_bounds():
     w = net[0].weight.detach()
     assert float(w.abs().max()) <= bound and float(w.abs().max()) > 0.95 * bound
     again = jostle.init_parameters(jostle.mlp(16, 2, hidden=(200,)), torch.Generator().manual_seed(0))
-    assert torch.equal(again[0].weight, w)
+    assert torch.equal(again[0].weight, w)  # same generator seed, one process: exact

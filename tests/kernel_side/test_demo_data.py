@@ -22,7 +22,7 @@ def _mapped(x: np.ndarray) -> np.ndarray:
 
 
 def test_leak_alarm_is_make_moons_through_the_fixed_affine_map():
-    # reference: scikit-learn's make_moons with the same random_state (CHECKS.md, data)
+    # reference: scikit-learn's make_moons with the same random_state (sklearn.datasets docs)
     data = leak_alarm(n_train=120, n_test=80, noise=0.2, seed=3)
     x_train, y_train = make_moons(120, noise=0.2, random_state=3)
     x_test, y_test = make_moons(80, noise=0.2, random_state=3 + TEST_SEED_OFFSET)
@@ -87,7 +87,9 @@ def test_hmc_members_disagree_away_from_the_data_and_the_deterministic_net_canno
     far = torch.tensor([[3.0, -4.5]])
     hmc, net = jostle.demo_posterior("leak_alarm_hmc"), jostle.demo_posterior("leak_alarm_map")
     assert float(hmc.predict(far).epistemic[0]) > 0.1
-    assert float(net.predict(far).epistemic[0]) == 0.0  # one member: mutual information is 0
+    # one member: the mean of one distribution is itself, so total and aleatoric entropy are the
+    # same floats and their difference, the mutual information, is exactly 0
+    assert float(net.predict(far).epistemic[0]) == 0.0
 
 
 def test_unknown_demo_posterior_is_refused_by_name():
@@ -104,8 +106,13 @@ def _generator_script():
 
 @pytest.mark.slow
 def test_generator_script_reproduces_the_shipped_deterministic_net(tmp_path):
-    # the HMC file takes about a minute to regenerate (`--check` does it); the MAP net
-    # shows the recipe and the seeding reproduce the shipped parameters bit for bit
+    # The HMC file takes about a minute to regenerate (`--check` does it); the MAP net shows
+    # that the recipe and the seeding reproduce the shipped net. On the CPU model and torch
+    # build that wrote the file the refit is bit for bit the same; elsewhere some float32
+    # reductions round differently and 1400 Adam steps carry that drift to ~1e-6, so the
+    # parameters are held to the script's stated tolerance (float32 eps x ~100, relative to
+    # the largest parameter) and, what the tours rely on, the test-set predictions must agree:
+    # labels equal, probabilities within 1e-5.
     script = _generator_script()
     threads = torch.get_num_threads()
     torch.set_num_threads(1)
@@ -113,4 +120,22 @@ def test_generator_script_reproduces_the_shipped_deterministic_net(tmp_path):
         fresh = script.make("leak_alarm_map", tmp_path)
     finally:
         torch.set_num_threads(threads)
-    assert script.compare("leak_alarm_map", fresh) == 0.0
+    comparison = script.compare("leak_alarm_map", fresh)
+    assert comparison.parameter_difference <= comparison.parameter_tolerance, comparison
+    assert comparison.labels_equal, comparison
+    assert comparison.probability_difference <= 1e-5, comparison
+    assert comparison.ok
+
+
+def test_generator_comparison_sees_a_changed_prediction(tmp_path):
+    # The check must be able to fail: a net whose last bias moves by 1 predicts differently.
+    script = _generator_script()
+    net = jostle.demo_posterior("leak_alarm_map")
+    params = {k: v.clone() for k, v in net.params.items()}
+    last_bias = [k for k in params if k.endswith("bias")][-1]
+    params[last_bias][..., 0] += 1.0
+    moved = jostle.Ensemble(net.template, params, meta=net.meta)
+    moved.save(str(tmp_path / "moved.safetensors"))
+    comparison = script.compare("leak_alarm_map", tmp_path / "moved.safetensors")
+    assert comparison.parameter_difference == pytest.approx(1.0, rel=1e-6)  # float32 rounding of +1
+    assert comparison.probability_difference > 1e-3 and not comparison.ok

@@ -173,6 +173,7 @@ def test_general_plan_ensembles_keep_autograd():
     leaf = x.clone().requires_grad_(True)
     loss = sum(nn.functional.cross_entropy(net(leaf), labels, reduction="sum") for net in nets) / len(nets)
     (want,) = torch.autograd.grad(loss, leaf)
+    # float64, vmap vs per-net autograd: a few ulp (2.2e-16) of O(1) values; 1e-10 is a wide margin
     torch.testing.assert_close(grad, want, rtol=1e-10, atol=1e-12)
 
 
@@ -185,7 +186,10 @@ def test_attacks_agree_with_and_without_the_hand_backward(monkeypatch):
     for hand in (True, False):
         monkeypatch.setattr(attack_core, "HAND_BACKWARD", hand)
         runs.append(jostle.attack(ens, x, eps=0.2, steps=10, seed=4, objective="predictive"))
+    # Sign steps: while the signs agree both paths compute the same floats; one flipped sign
+    # would differ by a whole step (0.05), so 1e-12 only tells the two cases apart.
     torch.testing.assert_close(runs[0].x_adv, runs[1].x_adv, rtol=0, atol=1e-12)
+    # the two paths' float64 losses round differently: a few ulp of O(1) values
     torch.testing.assert_close(runs[0].loss, runs[1].loss, rtol=1e-10, atol=1e-12)
 
 

@@ -70,13 +70,13 @@ def test_fit_dropout_gives_a_fixed_ensemble(moons, tmp_path):
     assert ens.meta["classes"] == moons.classes and ens.meta["data"] == moons.describe()
     assert not any(isinstance(layer, nn.Dropout) for layer in ens.template)
     first, second = ens.logits(moons.x_test), ens.logits(moons.x_test)
-    torch.testing.assert_close(first, second, atol=0, rtol=0)
+    torch.testing.assert_close(first, second, atol=0, rtol=0)  # same kernel, same input: exact
     assert float(first.std(0).mean()) > 0  # the masks really differ between members
     ens.save(tmp_path / "mc.safetensors")
     torch.testing.assert_close(jostle.load(tmp_path / "mc.safetensors").logits(moons.x_test), first)
     again = fit_dropout(jostle.mlp(2, 2, hidden=(8, 8), dropout=0.2), moons, samples=20, epochs=3, seed=0,
                         progress=False)
-    torch.testing.assert_close(again.logits(moons.x_test), first, atol=0, rtol=0)
+    torch.testing.assert_close(again.logits(moons.x_test), first, atol=0, rtol=0)  # same seed, one process
 
 
 def test_dropout_is_inserted_or_overridden(moons):

@@ -76,7 +76,9 @@ def test_local_reparameterisation_matches_gaussian_linear_layer():
     expected_mean = (x @ means["0.weight"].T + means["0.bias"])[0].double()
     expected_var = ((x**2) @ var_w.T + var_b)[0].double()
     torch.testing.assert_close(out.mean(0), expected_mean, atol=float(5 * (expected_var.max() / 1e5) ** 0.5), rtol=0)
-    torch.testing.assert_close(out.var(0), expected_var, atol=0, rtol=0.03)
+    # Gaussian draws: the sample variance's relative standard error is sqrt(2 / (n - 1)) = 0.0045;
+    # 5 SE
+    torch.testing.assert_close(out.var(0), expected_var, atol=0, rtol=5 * (2 / (len(out) - 1)) ** 0.5)
 
 
 @pytest.mark.parametrize("local", [True, False])
@@ -96,13 +98,16 @@ def test_fit_vi_returns_draws_and_a_reusable_posterior(moons, local):
     assert ens.meta["kl"] == pytest.approx(reference, rel=1e-5)
     again = fit_vi(jostle.mlp(2, 2, hidden=(8,)), moons, samples=12, epochs=3, seed=0, progress=False,
                    local_reparameterisation=local)
+    # same seeded fit twice in one process, same kernels on the same inputs: exact
     torch.testing.assert_close(again.params["2.weight"], ens.params["2.weight"], atol=0, rtol=0)
 
 
 def test_fit_vi_draw_spread_follows_the_posterior_std(moons):
     ens = fit_vi(jostle.mlp(2, 2, hidden=(4,)), moons, samples=4000, epochs=2, init_std=0.05, progress=False)
     spread = ens.params["0.weight"].std(0)
-    torch.testing.assert_close(spread, ens.posterior.std["0.weight"], atol=0, rtol=0.08)
+    # Gaussian draws: the sample std's relative standard error is 1 / sqrt(2 (n - 1)) = 0.011;
+    # 5 SE over the layer's 8 weights
+    torch.testing.assert_close(spread, ens.posterior.std["0.weight"], atol=0, rtol=5 / (2 * (4000 - 1)) ** 0.5)
 
 
 def test_fit_vi_with_validation_and_custom_module(moons):

@@ -72,7 +72,7 @@ def test_same_seed_same_posterior(moons):
         b = jostle.fit_hmc(net, moons, **kwargs)
         c = jostle.fit_hmc(net, moons, init="prior", **kwargs)
     for name in a.params:
-        assert torch.equal(a.params[name], b.params[name])
+        assert torch.equal(a.params[name], b.params[name])  # same seed, one process: exact
         assert not torch.equal(a.params[name], c.params[name])
 
 

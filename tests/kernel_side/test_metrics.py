@@ -1,4 +1,4 @@
-"""Metrics against scikit-learn (the reference library named in CHECKS.md)."""
+"""Metrics against scikit-learn (Pedregosa et al. 2011, JMLR 12) and their definitions."""
 import numpy as np
 import pytest
 from sklearn.calibration import calibration_curve
@@ -18,13 +18,14 @@ def scored():
 
 def test_ece_bins_match_sklearn_calibration_curve(scored):
     # Equal-width bins (Naeini et al. 2015; Guo et al. 2017); sklearn drops empty bins and
-    # takes top-label correctness and confidence (CHECKS.md).
+    # takes top-label correctness and confidence (sklearn.calibration.calibration_curve docs).
     probs, y = scored
     confidence = probs.max(1)
     correct = (probs.argmax(1) == y).astype(int)
     frac_pos, mean_pred = calibration_curve(correct, confidence, n_bins=10, strategy="uniform")
     table = metrics.reliability(probs, y, n_bins=10)
     filled = table.count > 0
+    # float64 bin means of <= 400 values summed in another order: < 400 x 2.2e-16 ~ 1e-13
     np.testing.assert_allclose(table.accuracy[filled], frac_pos, atol=1e-12)
     np.testing.assert_allclose(table.confidence[filled], mean_pred, atol=1e-12)
     weights = table.count[filled] / len(y)
@@ -38,7 +39,17 @@ def test_ece_is_zero_when_confidence_equals_accuracy():
     assert metrics.ece(probs, y) == pytest.approx(0.0, abs=1e-12)
 
 
-def test_nll_matches_sklearn_log_loss(scored):
+def test_nll_is_the_mean_negative_log_probability_of_the_label(scored):
+    # Definition (Bishop 2006, PRML eq. 4.108, cross-entropy error): -1/n sum_i ln p_i[y_i],
+    # computed here by hand, since jostle.metrics.nll itself calls sklearn's log_loss.
+    # float64 mean of 400 logs: ~400 x 2.2e-16 relative at most, 1e-12 is a wide margin.
+    probs, y = scored
+    by_hand = -np.log(probs[np.arange(len(y)), y]).mean()
+    assert metrics.nll(probs, y) == pytest.approx(by_hand, rel=1e-12)
+
+
+def test_nll_wiring_to_sklearn_log_loss(scored):
+    # Wiring only (the same function underneath): the arguments reach log_loss in order.
     probs, y = scored
     assert metrics.nll(probs, y) == pytest.approx(log_loss(y, probs), rel=1e-12)
 
@@ -59,7 +70,9 @@ def test_brier_multiclass_matches_sklearn(scored):
 
 
 def test_ood_auroc_worked_example():
-    # Scores in [.1,.2,.3] vs out [.25,.4,.5]: 8 of 9 pairs ordered, AUROC 8/9 (CHECKS.md).
+    # Scores in [.1,.2,.3] vs out [.25,.4,.5]: 8 of 9 pairs ordered, AUROC 8/9 (AUROC as the
+    # Mann-Whitney probability that an OOD score exceeds an in-distribution one; Hanley &
+    # McNeil 1982, Radiology 143:29).
     assert metrics.ood_auroc([0.1, 0.2, 0.3], [0.25, 0.4, 0.5]) == pytest.approx(8 / 9)
 
 

@@ -1,4 +1,4 @@
-"""The uncertainty split against scipy, and the worked cases of CHECKS.md."""
+"""The uncertainty split (Houlsby et al. 2011; Depeweg et al. 2018) against scipy and worked cases."""
 import math
 
 import numpy as np
@@ -18,6 +18,7 @@ def test_split_matches_scipy_on_random_members(generator):
     p = member.numpy()
     total = scipy_entropy(p.mean(0), axis=-1)
     aleatoric = scipy_entropy(p, axis=-1).mean(0)
+    # float64 sums of 4 terms p log p and means over 7 members, in another order: a few ulp
     np.testing.assert_allclose(pred.total.numpy(), total, atol=1e-12)
     np.testing.assert_allclose(pred.aleatoric.numpy(), aleatoric, atol=1e-12)
     np.testing.assert_allclose(pred.epistemic.numpy(), total - aleatoric, atol=1e-12)
@@ -25,7 +26,8 @@ def test_split_matches_scipy_on_random_members(generator):
 
 
 def test_disagreeing_certain_members_are_all_epistemic():
-    # Members (1,0) and (0,1): total = MI = ln 2, aleatoric = 0 (CHECKS.md worked case).
+    # Members (1,0) and (0,1): total = MI = ln 2, aleatoric = 0 (worked from the split of
+    # Depeweg et al. 2018: entropy of the mean minus the mean entropy).
     pred = Prediction(torch.tensor([[[1.0, 0.0]], [[0.0, 1.0]]], dtype=torch.float64))
     assert pred.total.item() == pytest.approx(math.log(2), abs=1e-12)
     assert pred.epistemic.item() == pytest.approx(math.log(2), abs=1e-12)
@@ -33,7 +35,7 @@ def test_disagreeing_certain_members_are_all_epistemic():
 
 
 def test_agreeing_uncertain_members_are_all_aleatoric():
-    # Members (.5,.5) twice: aleatoric = ln 2, MI = 0 (CHECKS.md worked case).
+    # Members (.5,.5) twice: aleatoric = ln 2, MI = 0 (the same split, Depeweg et al. 2018).
     pred = Prediction(torch.full((2, 1, 2), 0.5, dtype=torch.float64))
     assert pred.aleatoric.item() == pytest.approx(math.log(2), abs=1e-12)
     assert pred.epistemic.item() == pytest.approx(0.0, abs=1e-12)
@@ -41,7 +43,8 @@ def test_agreeing_uncertain_members_are_all_aleatoric():
 
 def test_probabilities_are_averaged_not_logits():
     # Member logits (0,0) and (4,0): p1 = (0.5 + sigmoid(4)) / 2 = 0.741007; averaging
-    # logits would give sigmoid(2) = 0.880797 (CHECKS.md).
+    # logits would give sigmoid(2) = 0.880797 (the posterior predictive is the mean of the
+    # members' probabilities, Lakshminarayanan et al. 2017, from memory; arithmetic by hand).
     ens = _affine_ensemble([torch.zeros(2), torch.tensor([4.0, 0.0])])
     pred = ens.predict(torch.zeros(1, 1))
     assert pred.probs[0, 0].item() == pytest.approx(0.741007, abs=1e-6)
@@ -60,6 +63,7 @@ def test_bits_are_nats_over_ln2(generator):
 def test_spread_quantiles_agree_with_numpy(generator):
     member = torch.softmax(torch.randn(21, 6, 3, generator=generator, dtype=torch.float64), -1)
     pred = Prediction(member)
+    # float64 interpolation between two order statistics and a 21-term std: a few ulp
     np.testing.assert_allclose(pred.lower.numpy(), np.quantile(member.numpy(), 0.05, axis=0), atol=1e-12)
     np.testing.assert_allclose(pred.upper.numpy(), np.quantile(member.numpy(), 0.95, axis=0), atol=1e-12)
     np.testing.assert_allclose(pred.std.numpy(), member.numpy().std(0), atol=1e-12)
