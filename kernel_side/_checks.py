@@ -105,7 +105,20 @@ def as_float_tensor(
 
 def as_label_tensor(name: str, value: Any, *, n_points: int, classes: int | None = None) -> Tensor:
     """Integer class labels of shape (n_points,) within [0, classes)."""
-    array = np.asarray(value.detach().cpu() if isinstance(value, Tensor) else value)
+    if isinstance(value, Tensor):
+        value = check_has_values(name, value).detach().cpu()
+    try:
+        array = np.asarray(value)
+    except ValueError:
+        raise ValueError(f"{name} must be a 1-d array of integer class labels; got {_show(value)}") from None
+    if array.dtype == object and array.ndim == 1 and all(isinstance(v, Integral) for v in array):
+        low, high = min(array, default=0), max(array, default=0)  # ints past int64: range first
+        if low < 0:
+            raise ValueError(f"{name} must hold labels >= 0; got {low}")
+        if classes is not None and high >= classes:
+            raise ValueError(f"{name} must hold labels < {classes} (the number of classes); got {high}")
+    if array.dtype.kind not in "biuf":
+        raise ValueError(f"{name} must hold integer class labels; got dtype {array.dtype} ({_show(value)})")
     if array.ndim != 1 or array.shape[0] != n_points:
         raise ValueError(f"{name} must have shape ({n_points},); got shape {array.shape}")
     if array.size and not np.issubdtype(array.dtype, np.integer):
@@ -117,3 +130,68 @@ def as_label_tensor(name: str, value: Any, *, n_points: int, classes: int | None
     if classes is not None and labels.numel() and int(labels.max()) >= classes:
         raise ValueError(f"{name} must hold labels < {classes} (the number of classes); got {int(labels.max())}")
     return labels
+
+
+SEED_MAX = 2**63 - 1
+
+
+def check_seed(value: Any, name: str = "seed") -> int:
+    """A seed torch.Generator.manual_seed takes: an integer in [0, 2**63 - 1]."""
+    value = check_int(name, value, low=0)
+    if value > SEED_MAX:
+        raise ValueError(f"{name} must be an integer >= 0 and <= 2**63 - 1; got {value}")
+    return value
+
+
+def check_real_dtype(name: str, tensor: Tensor) -> Tensor:
+    """Refuse complex tensors, whose imaginary part a cast to float would drop silently."""
+    if tensor.is_complex():
+        raise ValueError(f"{name} must hold real numbers; got dtype {tensor.dtype}")
+    return tensor
+
+
+def check_finite(name: str, tensor: Tensor) -> Tensor:
+    """Refuse NaN and inf entries (checked after any cast, so overflow to inf is caught)."""
+    if not bool(torch.isfinite(tensor).all()):
+        raise ValueError(f"{name} must contain only finite values; got NaN or inf")
+    return tensor
+
+
+def check_devices(name: str, device: torch.device, other_name: str, other_device: torch.device) -> None:
+    """Refuse a 'meta' tensor on either side: it holds no values, so nothing can be computed or moved."""
+    device, other_device = torch.device(device), torch.device(other_device)
+    if "meta" in (device.type, other_device.type):
+        raise ValueError(
+            f"{name} is on device {device.type!r} and {other_name} on device {other_device.type!r}; "
+            f"a 'meta' tensor holds no values, so put both on one real device (e.g. .to('cpu'))"
+        )
+
+
+def check_has_values(name: str, tensor: Tensor) -> Tensor:
+    """Refuse a tensor on the 'meta' device, which has a shape but no values."""
+    if tensor.device.type == "meta":
+        raise ValueError(f"{name} is on device 'meta', which holds no values; "
+                         f"pass it on a real device (e.g. .to('cpu'))")
+    return tensor
+
+
+def check_representable(name: str, value: float, dtype: torch.dtype) -> float:
+    """A finite float that stays finite when stored in ``dtype`` (float32 overflows past ~3.4e38)."""
+    largest = torch.finfo(dtype).max
+    if abs(value) > largest:
+        raise ValueError(f"{name} must fit the ensemble's dtype {str(dtype).replace('torch.', '')} "
+                         f"(|{name}| <= {largest:.4g}); got {value:g}")
+    return value
+
+
+def as_numeric_array(name: str, value: Any) -> np.ndarray:
+    """A float64 numpy array from tensors (any device with data) and array-likes."""
+    if isinstance(value, Tensor):
+        check_has_values(name, value)
+        value = value.detach().cpu()
+        check_real_dtype(name, value)
+    try:
+        array = np.asarray(value, dtype=float)
+    except (TypeError, ValueError) as err:
+        raise ValueError(f"{name} must be a numeric array; got {_show(value)} ({err})") from None
+    return array

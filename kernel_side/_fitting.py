@@ -73,9 +73,12 @@ def check_device(device: Any) -> torch.device:
     if device is None:
         return torch.device("cpu")
     try:
-        return torch.device(device)
+        device = torch.device(device)
     except (RuntimeError, TypeError):
         raise ValueError(f"device must name a torch device such as 'cpu' or 'cuda'; got {_show(device)}") from None
+    if device.type == "meta":
+        raise ValueError("device must hold values to train on, such as 'cpu' or 'cuda'; got 'meta'")
+    return device
 
 
 def check_module_and_data(module: Any, data: Any) -> None:
@@ -197,6 +200,11 @@ def _train_loop(params, trainable, member_loss, x, y, generators, config, valida
             total += losses.detach() * index.shape[1]
         epoch_loss = (total / n).cpu()
         history.append(float(epoch_loss.mean()))
+        if not bool(torch.isfinite(epoch_loss).all()):
+            if bar is not None:
+                bar.close()
+            raise ValueError(f"training diverged: the loss became {history[-1]} in epoch {len(history)}; "
+                             f"lr = {config.lr:g} is probably too large")
         epochs_run = epoch + 1
         if bar is not None:
             bar.update(1)

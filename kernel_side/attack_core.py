@@ -32,7 +32,8 @@ import numpy as np
 import torch
 from torch import Tensor
 
-from ._checks import _show, as_label_tensor, check_choice, check_float, check_int
+from ._checks import (_show, as_label_tensor, check_choice, check_devices, check_float, check_int, check_real_dtype,
+                      check_representable, check_seed)
 from ._threads import torch_threads
 from ._forward import MLPPlan
 from ._input_grad import ExpectedLossGradient
@@ -357,7 +358,7 @@ def build_problem(ens, x: Any, y: Any, *, eps: Any, norm: str, objective: str, s
     norm = check_choice("norm", norm, NORMS)
     objective = check_choice("objective", objective, OBJECTIVES)
     judge = check_choice("judge", judge, JUDGES)
-    seed = check_int("seed", seed, low=0)
+    seed = check_seed(seed)
     if not isinstance(resample, bool):
         raise ValueError(f"resample must be True or False; got {_show(resample)}")
     x = _as_points(ens, x)
@@ -434,10 +435,13 @@ def _as_points(ens, x: Any) -> Tensor:
     if x.ndim < 2:
         raise ValueError(f"x must have shape (n_points, *input_shape); got shape {tuple(x.shape)} "
                          f"(use x[None] for a single point)")
-    x = x.detach().to(device=ens.device, dtype=ens.dtype)
+    check_devices("x", x.device, "ens", ens.device)
+    x = check_real_dtype("x", x).detach().to(device=ens.device, dtype=ens.dtype)
     if not bool(torch.isfinite(x).all()):
         raise ValueError("x must contain only finite values; got NaN or inf")
     ens._plan.check_input(x)
+    if x.shape[0] == 0:
+        raise ValueError(f"x must hold at least one point; got shape {tuple(x.shape)}")
     return x
 
 
@@ -450,7 +454,7 @@ def _as_eps(eps: Any, n: int, x: Tensor, per_point: bool) -> Tensor:
         if not bool(torch.isfinite(values).all()) or bool((values < 0).any()):
             raise ValueError(f"eps must hold finite floats >= 0; got {_show(values)}")
         return values.to(x.device)
-    value = check_float("eps", eps, low=0.0)
+    value = check_representable("eps", check_float("eps", eps, low=0.0), x.dtype)
     return torch.full((n,), value, dtype=x.dtype, device=x.device)
 
 

@@ -8,12 +8,20 @@ stays under ``memory_budget`` bytes whatever S and N are.
 from __future__ import annotations
 
 import copy
+from numbers import Integral
 from typing import Any, Callable, Iterable, Sequence
 
 import torch
 from torch import Tensor, nn
 
-from ._checks import _show, check_int
+from ._checks import (
+    _show,
+    check_devices,
+    check_finite,
+    check_int,
+    check_real_dtype,
+    check_seed,
+)
 from ._forward import ForwardPlan, make_plan
 from .models import architecture_of
 from .prediction import Prediction
@@ -84,6 +92,10 @@ class Ensemble:
                     f"params[{name!r}] must have shape (S, {', '.join(map(str, expected[name].shape))}); "
                     f"got {tuple(value.shape)}"
                 )
+        for name, value in params.items():
+            if value.device.type != "meta" and value.is_floating_point() and not bool(torch.isfinite(value).all()):
+                bad = (~torch.isfinite(value.flatten(1))).any(1).nonzero().flatten().tolist()
+                raise ValueError(f"params[{name!r}] must contain only finite values; got NaN or inf in members {bad[:5]}")
         self.template = template.eval()
         for p in self.template.parameters():
             p.requires_grad_(False)
@@ -138,7 +150,12 @@ class Ensemble:
         if not state_dicts:
             raise ValueError("state_dicts must be a non-empty list; got an empty list")
         reference = template.state_dict()
+        first_device = next(iter(state_dicts[0].values())).device if state_dicts[0] else None
         for i, state in enumerate(state_dicts):
+            devices = {value.device for value in state.values()}
+            if first_device is not None and devices - {first_device}:
+                raise ValueError(f"state_dicts[{i}] (modules[{i}]) must be on device {str(first_device)!r} like "
+                                 f"the first; got {sorted(str(d) for d in devices)} (move them with .to(...))")
             if set(state) != set(reference):
                 missing = sorted(set(reference) - set(state))
                 extra = sorted(set(state) - set(reference))
@@ -160,7 +177,7 @@ class Ensemble:
         return int(next(iter(self.params.values())).shape[0])
 
     def __getitem__(self, index: int | slice | Sequence[int] | Tensor) -> "Ensemble":
-        if isinstance(index, int) and not isinstance(index, bool):
+        if isinstance(index, Integral) and not isinstance(index, bool):
             index = [check_int("index", index, low=-len(self), high=len(self) - 1)]
         if isinstance(index, slice):
             chosen = {name: value[index] for name, value in self.params.items()}
@@ -173,7 +190,7 @@ class Ensemble:
     def subset(self, k: int, seed: int = 0) -> "Ensemble":
         """``k`` members drawn at random without replacement (seeded)."""
         k = check_int("k", k, low=1, high=len(self))
-        generator = torch.Generator().manual_seed(check_int("seed", seed))
+        generator = torch.Generator().manual_seed(check_seed(seed))
         order = torch.randperm(len(self), generator=generator)[:k]
         return self[order]
 
@@ -299,12 +316,22 @@ class Ensemble:
         size = len(self)
         if isinstance(samples, Tensor):
             if samples.dtype == torch.bool:
+                if samples.shape != (size,):
+                    raise ValueError(f"{name} as a boolean mask must have shape ({size},); got shape {tuple(samples.shape)}")
                 samples = samples.nonzero().flatten()
+            if samples.is_floating_point() or samples.is_complex():
+                raise ValueError(f"{name} must hold integer member indices; got dtype {samples.dtype}")
             index = samples.to(torch.long).flatten()
         else:
             try:
-                index = torch.as_tensor(list(samples), dtype=torch.long)
-            except (TypeError, ValueError):
+                listed = list(samples)
+                out_of_range = [i for i in listed if isinstance(i, Integral) and not -size <= i < size]
+                if out_of_range:
+                    raise ValueError(f"{name} must index members in [0, {size}); got {_show(listed)}")
+                index = torch.as_tensor(listed, dtype=torch.long)
+            except (TypeError, ValueError, RuntimeError) as err:
+                if str(err).startswith(f"{name} must index"):
+                    raise
                 raise ValueError(f"{name} must be None, an int or a sequence of member indices; got {_show(samples)}") from None
         if index.numel() and (int(index.min()) < -size or int(index.max()) >= size):
             raise ValueError(f"{name} must index members in [0, {size}); got {_show(index)}")
@@ -313,7 +340,7 @@ class Ensemble:
     def _selected(self, samples: Any) -> dict[str, Tensor]:
         if samples is None:
             return self.params
-        if isinstance(samples, int) and not isinstance(samples, bool):
+        if isinstance(samples, Integral) and not isinstance(samples, bool):
             k = check_int("samples", samples, low=1, high=len(self))
             return {name: value[:k] for name, value in self.params.items()}
         index = self._indices(samples)
@@ -332,9 +359,12 @@ class Ensemble:
                 f"x must have shape (n_points, *input_shape); got shape {tuple(x.shape)} "
                 f"(use x[None] for a single point)"
             )
+        check_devices("x", x.device, "ens", self.device)
+        check_real_dtype("x", x)
         if x.dtype != self.dtype or x.device != self.device:
             x = x.to(device=self.device, dtype=self.dtype)
         self._plan.check_input(x)
+        check_finite("x", x)
         return x
 
 

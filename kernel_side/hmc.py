@@ -20,7 +20,7 @@ import torch
 from torch import Tensor
 
 from . import _hmc_adapt as adapt
-from ._checks import _show, check_float, check_int
+from ._checks import _show, check_float, check_has_values, check_int
 from .diagnostics import SamplingInterruptedWarning, chain_diagnostics
 
 __all__ = ["HMCState", "HMCDraws", "sample_hmc", "evaluate", "leapfrog", "hmc_transition", "kinetic_energy"]
@@ -336,6 +336,7 @@ def _check_initial(initial) -> Tensor:
         raise ValueError(f"initial must have shape (C, P) with C, P >= 1; got shape {tuple(initial.shape)}")
     if not initial.is_floating_point():
         raise ValueError(f"initial must be a floating tensor; got dtype {initial.dtype}")
+    check_has_values("initial", initial)
     if not bool(torch.isfinite(initial).all()):
         raise ValueError("initial must contain only finite values; got NaN or inf")
     return initial.detach()

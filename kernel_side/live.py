@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 import torch
 
-from ._checks import _show, check_choice, check_float, check_int
+from ._checks import _show, check_choice, check_float, check_int, check_representable
 from ._live_parts import (AttacksUnavailable, AttackView, FadeView, GridView, PointView, attack_part,
                           fade_part, grid_part, grid_prediction, point_part, SpreadView, spread_part)
 from ._live_worker import LiveWorker, Outcome
@@ -230,9 +230,12 @@ def check_field(ens: Ensemble, name: str, value: Any, n_features: int | None = N
         ``budget must be a finite float >= 0; got -0.1``.
     """
     if name == "point":
-        return _check_point(value, n_features)
+        point = _check_point(value, n_features)
+        for coordinate in point:
+            check_representable("point", coordinate, ens.dtype)
+        return point
     if name == "budget":
-        return check_float("budget", value, low=0.0)
+        return check_representable("budget", check_float("budget", value, low=0.0), ens.dtype)
     if name == "samples":
         return None if value is None else check_int("samples", value, low=1, high=len(ens))
     if name == "steps":

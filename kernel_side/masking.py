@@ -11,6 +11,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+import torch
 
 from ._checks import _show, check_float, check_int
 from .attack_gradient import attack
@@ -129,10 +130,15 @@ def masking_check(ens, x: Any, y: Any = None, eps: float = 0.1, norm: str = "inf
 def _scales(budget_scales: Any) -> list[float]:
     if isinstance(budget_scales, (int, float, str)) or not hasattr(budget_scales, "__iter__"):
         raise ValueError(f"budget_scales must be a sequence of positive floats; got {_show(budget_scales)}")
-    scales = sorted({check_float("budget_scales entry", float(s), low=0.0, low_open=True) for s in budget_scales})
+    scales = sorted({check_float("budget_scales entry", _scalar(s), low=0.0, low_open=True)
+                     for s in budget_scales})
     if len(scales) < 2:
         raise ValueError(f"budget_scales must hold at least two distinct scales; got {_show(budget_scales)}")
     return scales
+
+
+def _scalar(value: Any) -> Any:
+    return value.item() if isinstance(value, (np.generic, torch.Tensor)) and value.ndim == 0 else value
 
 
 def _free_attack(ens, x, y, method, eps, steps, free_steps, common):

@@ -10,9 +10,8 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-import torch
 
-from ._checks import as_label_tensor, check_int
+from ._checks import as_label_tensor, as_numeric_array, check_int
 from .prediction import Prediction
 
 __all__ = ["accuracy", "nll", "brier", "ece", "reliability", "ood_auroc", "Reliability"]
@@ -97,10 +96,21 @@ def ood_auroc(scores_in: Any, scores_out: Any) -> float:
     return float(roc_auc_score(labels, np.r_[inside, outside]))
 
 
+def _check_rows(p: np.ndarray) -> None:
+    rule = "probs must hold finite, non-negative rows that sum to 1"
+    if not np.all(np.isfinite(p)):
+        raise ValueError(f"{rule}; got NaN or inf in row {int(np.flatnonzero(~np.isfinite(p).all(1))[0])}")
+    if p.min() < 0:
+        raise ValueError(f"{rule}; got {p.min():g} in row {int(np.flatnonzero((p < 0).any(1))[0])}")
+    sums = p.sum(1)
+    worst = int(np.argmax(np.abs(sums - 1)))
+    # float32 probabilities sum to 1 within ~C * 1.2e-7; 1e-4 leaves room for C up to ~800
+    if abs(sums[worst] - 1) > 1e-4:
+        raise ValueError(f"{rule}; row {worst} sums to {sums[worst]:g}")
+
+
 def _vector(name: str, value: Any) -> np.ndarray:
-    if isinstance(value, torch.Tensor):
-        value = value.detach().cpu().numpy()
-    array = np.asarray(value, dtype=float)
+    array = as_numeric_array(name, value)
     if array.ndim != 1 or array.size == 0:
         raise ValueError(f"{name} must be a non-empty 1-d array; got shape {array.shape}")
     if not np.all(np.isfinite(array)):
@@ -111,12 +121,11 @@ def _vector(name: str, value: Any) -> np.ndarray:
 def _inputs(probs: Any, y: Any) -> tuple[np.ndarray, np.ndarray]:
     if isinstance(probs, Prediction):
         probs = probs.probs
-    if isinstance(probs, torch.Tensor):
-        probs = probs.detach().cpu().numpy()
-    p = np.asarray(probs, dtype=float)
+    p = as_numeric_array("probs", probs)
     if p.ndim != 2 or p.shape[1] < 2:
         raise ValueError(f"probs must have shape (n_points, n_classes >= 2); got shape {p.shape}")
-    if not np.all(np.isfinite(p)) or p.min() < 0 or np.abs(p.sum(1) - 1).max() > 1e-4:
-        raise ValueError("probs must hold finite, non-negative rows that sum to 1")
+    if p.shape[0] == 0:
+        raise ValueError(f"probs must hold at least one point; got shape {p.shape}")
+    _check_rows(p)
     labels = as_label_tensor("y", y, n_points=p.shape[0], classes=p.shape[1]).numpy()
     return p, labels

@@ -15,7 +15,7 @@ import torch
 from torch import Tensor
 from torch.func import functional_call, grad, vmap
 
-from ._checks import _show, check_choice, check_int
+from ._checks import _show, check_choice, check_devices, check_finite, check_int, check_real_dtype, check_seed
 from . import attack_core
 from ._forward import MLPPlan
 from ._input_grad import ExpectedLossGradient
@@ -177,7 +177,7 @@ def gradient_fade(ens, x: Any, y: Any = None, sample_counts: Any = None, repeats
     members = len(ens)
     counts = _sample_counts(sample_counts, members)
     repeats = check_int("repeats", repeats, low=1)
-    generator = torch.Generator().manual_seed(check_int("seed", seed, low=0))
+    generator = torch.Generator().manual_seed(check_seed(seed))
     per_member = member_gradients(ens, x, y).flatten(2)
     flat = per_member.reshape(members, -1)
     full = per_member.mean(0)
@@ -373,4 +373,8 @@ def _as_batch(ens, x: Any, name: str) -> Tensor:
             raise ValueError(f"{name} must be a numeric array of shape (n_points, ...); got {_show(x)}") from None
     if x.ndim < 2:
         raise ValueError(f"{name} must have shape (n_points, *input_shape); got shape {tuple(x.shape)}")
-    return x.detach().to(device=ens.device, dtype=ens.dtype)
+    check_devices(name, x.device, "ens", ens.device)
+    x = check_real_dtype(name, x).detach().to(device=ens.device, dtype=ens.dtype)
+    if x.shape[0] == 0:
+        raise ValueError(f"{name} must hold at least one point; got shape {tuple(x.shape)}")
+    return check_finite(name, x)

@@ -77,7 +77,11 @@ def load(path: str | os.PathLike, module: nn.Module | None = None, device: str |
     from .ensemble import Ensemble
     from .models import build_architecture
 
+    if not isinstance(path, (str, os.PathLike)):
+        raise TypeError(f"path must be a str or os.PathLike naming a .safetensors file; got {type(path).__name__}")
     path = Path(path)
+    if path.is_dir():
+        raise IsADirectoryError(f"path must name a .safetensors file; got a directory: {path}")
     raw = _read_checked(path)
     header, _ = _parse_header(raw, path)
     try:

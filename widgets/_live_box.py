@@ -18,6 +18,8 @@ from .attack_controls import AttackControls
 from .status_line import StatusLine
 
 CONTROL_NAMES = ("budget", "samples", "method", "norm", "steps", "objective")
+# Traits of ipywidgets' own (layout, children, ...) that set_state passes on unchecked.
+_PLAIN = frozenset(w.VBox.class_trait_names())
 
 
 class LiveBox(w.VBox):
@@ -42,6 +44,7 @@ class LiveBox(w.VBox):
             if value is not None:
                 live.check_field(ens, name, value, n_features=n_features)
         self._ens = ens
+        self._point_features = n_features
         self._cache = live.ViewCache()
         self._result: live.ViewData | None = None
         self._error: str | None = None
@@ -93,6 +96,32 @@ class LiveBox(w.VBox):
             self._controls.close()
             self._status.close()
         super().close()
+
+    def set_state(self, sync_data: dict) -> None:
+        """Apply values from the page (or from code). A value of the wrong type or out of its
+        range is reported in the status line and dropped, like any rejected value, instead of
+        raising out of the comm handler."""
+        accepted = {}
+        for name, value in sync_data.items():
+            error = self._refusal(name, value) if name in self.traits() and name not in _PLAIN else None
+            if error is not None:
+                self._worker.notify(error)
+                continue
+            accepted[name] = value
+        super().set_state(accepted)
+
+    def _refusal(self, name: str, value: Any) -> ValueError | None:
+        if name in live.ExplorerState.__dataclass_fields__:
+            try:
+                live.check_field(self._ens, name, value, n_features=self._point_features)
+            except ValueError as err:
+                return err
+        trait = self.traits()[name]
+        try:
+            trait.validate(self, value)
+        except t.TraitError:
+            return ValueError(f"{name} must be {trait.info()}; got {value!r}")
+        return None
 
     # ---------------------------------------------------------------- main thread
     @t.validate(*CONTROL_NAMES)
