@@ -16,8 +16,8 @@ import torch
 from torch import nn
 
 import jostle
-from jostle import attack_core
-from jostle.robustness import member_gradients
+import jostle.attacks.problem as attack_core
+from jostle.attacks.readouts import member_gradients
 
 from _timing import interleaved, matmul_gflops, median
 

@@ -19,9 +19,9 @@ import warnings
 import torch
 
 import jostle
-from jostle._hmc_posterior import NetworkPosterior
-from jostle.diagnostics import ConvergenceWarning, chain_diagnostics
-from jostle.hmc import evaluate
+from jostle.fitting.hmc.network_density import NetworkPosterior
+from jostle.fitting.hmc.diagnostics import ConvergenceWarning, chain_diagnostics
+from jostle.fitting.hmc.sampler import evaluate
 
 CHAINS = 8
 REPEATS = 5

@@ -16,7 +16,7 @@ import time
 from pathlib import Path
 
 import jostle
-from jostle.store import RunStore
+from jostle.sweeps.results_db import RunStore
 
 RUNS = 16
 WORKERS = 2

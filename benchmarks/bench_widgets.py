@@ -21,7 +21,7 @@ from dataclasses import replace
 import torch
 
 import jostle
-from jostle import live
+import jostle.live.engine as live
 from _timing import interleaved, matmul_gflops, median, percentile
 
 MEMBERS = 100

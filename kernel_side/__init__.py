@@ -1,28 +1,28 @@
 """jostle: how a Bayesian neural network's posterior predictive holds up under attack."""
 from __future__ import annotations
 
-from . import datasets, metrics
-from .datasets import Dataset
-from .ensemble import DEFAULT_MEMORY_BUDGET, Ensemble
-from .models import build_architecture, init_parameters, mlp, register_architecture
-from .prediction import Prediction, entropy
-from .storage import FormatError, load
-from .demo_data import DEMO_POSTERIORS, demo_posterior
-from .diagnostics import ConvergenceWarning, SamplingInterruptedWarning, describe
-from .hmc import HMCDraws, HMCState, sample_hmc
-from .hmc_fit import fit_hmc
-from .attack_core import AttackResult
-from .attack_gradient import attack
-from .masking import MaskingReport, masking_check
-from .robustness import (GradientFade, MinimalBudget, expected_gradient, gradient_fade, minimal_budget,
+from jostle import datasets, metrics
+from jostle.datasets import Dataset
+from jostle.posterior.ensemble import DEFAULT_MEMORY_BUDGET, Ensemble
+from jostle.posterior.architectures import build_architecture, init_parameters, mlp, register_architecture
+from jostle.posterior.prediction import Prediction, entropy
+from jostle.files.posterior_file import FormatError, load
+from jostle.posterior.demo_posteriors import DEMO_POSTERIORS, demo_posterior
+from jostle.fitting.hmc.diagnostics import ConvergenceWarning, SamplingInterruptedWarning, describe
+from jostle.fitting.hmc.sampler import HMCDraws, HMCState, sample_hmc
+from jostle.fitting.hmc.fit import fit_hmc
+from jostle.attacks.problem import AttackResult
+from jostle.attacks.gradient_methods import attack
+from jostle.attacks.masking import MaskingReport, masking_check
+from jostle.attacks.readouts import (GradientFade, MinimalBudget, expected_gradient, gradient_fade, minimal_budget,
                          softmax_robustness)
-from .dropout import fit_dropout
-from .training import fit_deep_ensemble, fit_map
-from .bayes_by_backprop import VariationalPosterior, fit_vi
-from .variational import fit_mean_field
-from .laplace import LastLayerLaplace, fit_laplace
-from .sweep import Sweep, SweepSummary
-from .sweep_config import SweepConfigError
+from jostle.fitting.dropout import fit_dropout
+from jostle.fitting.point_estimates import fit_deep_ensemble, fit_map
+from jostle.fitting.variational import VariationalPosterior, fit_vi
+from jostle.fitting.mean_field_reference import fit_mean_field
+from jostle.fitting.laplace import LastLayerLaplace, fit_laplace
+from jostle.sweeps.sweep import Sweep, SweepSummary
+from jostle.sweeps.spec import SweepConfigError
 
 __version__ = "0.1.0"
 

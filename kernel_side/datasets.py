@@ -13,7 +13,7 @@ import numpy as np
 import torch
 from torch import Tensor
 
-from ._checks import as_float_tensor, as_label_tensor, check_float, check_int
+from jostle.common.checks import as_float_tensor, as_label_tensor, check_float, check_int
 
 __all__ = ["Dataset", "moons", "circles", "spirals", "digits", "leak_alarm", "from_arrays", "TEST_SEED_OFFSET"]
 

@@ -11,8 +11,8 @@ from typing import Any
 
 import numpy as np
 
-from ._checks import as_label_tensor, as_numeric_array, check_int
-from .prediction import Prediction
+from jostle.common.checks import as_label_tensor, as_numeric_array, check_int
+from jostle.posterior.prediction import Prediction
 
 __all__ = ["accuracy", "nll", "brier", "ece", "reliability", "ood_auroc", "Reliability"]
 

@@ -1,6 +1,6 @@
 """The bqplot charts linked to an explorer: predictive, spread, attack path, fading gradient.
 
-Each builder returns a figure plus a function that writes one :class:`jostle.live.ViewData`
+Each builder returns a figure plus a function that writes one :class:`jostle.live.engine.ViewData`
 into its marks. Class names reach bqplot only as tick labels, which it draws as SVG text.
 """
 from __future__ import annotations

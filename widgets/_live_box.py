@@ -12,7 +12,9 @@ from typing import Any
 import ipywidgets as w
 import traitlets as t
 
-from jostle import Ensemble, live
+from jostle import Ensemble
+
+import jostle.live.engine as live
 
 from .attack_controls import AttackControls
 from .status_line import StatusLine

@@ -6,7 +6,7 @@ from typing import Any, Sequence
 import ipywidgets as w
 import traitlets
 
-from jostle._checks import check_int
+from jostle.common.checks import check_int
 
 from .explorer import Explorer
 

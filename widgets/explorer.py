@@ -7,7 +7,7 @@ import ipywidgets as w
 import numpy as np
 import traitlets as t
 
-from jostle import live
+import jostle.live.engine as live
 
 from . import _charts
 from ._live_box import LiveBox

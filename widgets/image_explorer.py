@@ -7,8 +7,8 @@ import ipywidgets as w
 import numpy as np
 import traitlets as t
 
-from jostle import live
-from jostle._checks import check_int
+import jostle.live.engine as live
+from jostle.common.checks import check_int
 
 from . import _charts
 from ._live_box import LiveBox

@@ -8,8 +8,8 @@ from typing import Any
 import ipywidgets as ipw
 import traitlets as t
 
-from jostle.store import RunStore
-from jostle.sweep_view import ROBUSTNESS_MEASURES, sweep_view
+from jostle.sweeps.results_db import RunStore
+from jostle.sweeps.chart_data import ROBUSTNESS_MEASURES, sweep_view
 
 from ._charts import share_axis
 from ._wire import to_wire
@@ -203,7 +203,7 @@ class SweepExplorer(ipw.HBox):
 
 
 def _read_source(source: Any):
-    from jostle.sweep import Sweep
+    from jostle.sweeps.sweep import Sweep
 
     keys = None
     if isinstance(source, Sweep):
@@ -229,7 +229,7 @@ def _explorer_for(path: Path, config: dict, settings: dict):
     """
     import jostle
     import jostle.widgets as widgets
-    from jostle.sweep_run import load_run_data
+    from jostle.sweeps.one_run import load_run_data
 
     data = load_run_data(config["data"])
     name = "ImageExplorer" if data.image_shape else "Explorer"

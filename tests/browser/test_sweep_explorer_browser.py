@@ -14,8 +14,8 @@ SWEEP_CELLS = [
     ("markdown", "# sweep explorer under test"),
     f'''import numpy as np, tempfile, pathlib
 import jostle
-from jostle.store import RunStore
-from jostle.sweep_config import run_key
+from jostle.sweeps.results_db import RunStore
+from jostle.sweeps.spec import run_key
 from jostle.widgets import SweepExplorer
 
 sweep = jostle.Sweep(datasets=[{{"name": "moons", "n_test": 20}}],

@@ -8,7 +8,7 @@ import torch
 from torch import nn
 
 import jostle
-from jostle.attack_free import _bump, _propose_sphere, spsa_gradient, square_fraction
+from jostle.attacks.gradient_free import _bump, _propose_sphere, spsa_gradient, square_fraction
 from tests.conftest import random_mlp_ensemble
 from tests.kernel_side.test_attack_gradient import B, W, affine_ensemble, class0_points
 
@@ -153,7 +153,7 @@ def test_square_l2_bump_is_unit_and_falls_off_ring_by_ring():
 def test_square_l2_proposal_moves_energy_inside_two_windows():
     # One proposal on an image whose perturbation has energy everywhere: the norm is kept,
     # and at most two h x h windows per channel change.
-    from jostle.attack_core import build_problem
+    from jostle.attacks.problem import build_problem
 
     channels, height, width = 2, 6, 6
     ens = jostle.Ensemble.from_modules([nn.Sequential(nn.Flatten(), nn.Linear(72, 3))])

@@ -10,7 +10,7 @@ import torch
 from torch import nn
 
 import jostle
-from jostle.sweep_view import _method_label
+from jostle.sweeps.chart_data import _method_label
 from tests.conftest import random_mlp_ensemble
 
 W = torch.tensor([1.0, -2.0, 0.5])

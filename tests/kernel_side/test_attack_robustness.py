@@ -7,7 +7,7 @@ import torch
 from torch import nn
 
 import jostle
-from jostle.robustness import member_gradients
+from jostle.attacks.readouts import member_gradients
 from tests.conftest import random_mlp_ensemble
 from tests.kernel_side.test_attack_gradient import B, W, affine_ensemble, class0_points
 

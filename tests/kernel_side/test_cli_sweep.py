@@ -12,7 +12,7 @@ from pathlib import Path
 import pytest
 
 import jostle
-from jostle.store import RunStore, StoreError
+from jostle.sweeps.results_db import RunStore, StoreError
 
 needs_attacks = pytest.mark.skipif(
     not all(hasattr(jostle, n) for n in ("attack", "softmax_robustness")),
@@ -70,7 +70,7 @@ def jostle_cli(*args: str, cwd: Path) -> subprocess.CompletedProcess:
 
 def in_process(argv: list[str], capsys, cwd: Path, monkeypatch) -> subprocess.CompletedProcess:
     """The same entry point in this process (no interpreter start-up), for the many error cases."""
-    from jostle.cli import main
+    from jostle.cli.commands import main
 
     monkeypatch.chdir(cwd)
     try:

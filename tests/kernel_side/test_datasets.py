@@ -90,7 +90,7 @@ def test_generator_arguments_are_checked():
 def test_mlp_builder_checks_and_records():
     net = jostle.mlp(2, 2, hidden=(4, 3), activation="relu", dropout=0.1)
     assert [type(m).__name__ for m in net] == ["Linear", "ReLU", "Dropout", "Linear", "ReLU", "Dropout", "Linear"]
-    assert jostle.models.architecture_of(net)["kwargs"]["hidden"] == [4, 3]
+    assert jostle.posterior.architectures.architecture_of(net)["kwargs"]["hidden"] == [4, 3]
     with pytest.raises(ValueError, match="activation must be one of 'tanh'.*; got 'swish'"):
         jostle.mlp(2, 2, activation="swish")
     with pytest.raises(ValueError, match="classes must be an integer >= 2; got 1"):

@@ -187,7 +187,7 @@ def test_inference_layouts_equal_the_member_loop(points, shape):
 
 
 def test_inference_chunks_over_members_equal_the_member_loop(monkeypatch):
-    from jostle import _forward
+    import jostle.posterior.forward as _forward
 
     monkeypatch.setattr(_forward, "_CACHE_BYTES", 3 * 40 * 12 * 4)  # three members per chunk
     ens, nets = random_mlp_ensemble(members=8, hidden=(12, 12))

@@ -10,10 +10,10 @@ import pytest
 import torch
 
 import jostle
-from jostle.attack_core import build_problem
-from jostle.attack_gradient import pgd
-from jostle.bayes_by_backprop import VariationalPosterior
-from jostle.laplace import LastLayerLaplace
+from jostle.attacks.problem import build_problem
+from jostle.attacks.gradient_methods import pgd
+from jostle.fitting.variational import VariationalPosterior
+from jostle.fitting.laplace import LastLayerLaplace
 from tests.conftest import random_mlp_ensemble
 
 

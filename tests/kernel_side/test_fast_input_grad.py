@@ -9,9 +9,10 @@ import torch
 from torch import nn
 
 import jostle
-from jostle import _forward, attack_core
-from jostle._forward import GeneralPlan, MLPPlan
-from jostle.attack_core import _objective, build_problem
+import jostle.posterior.forward as _forward
+import jostle.attacks.problem as attack_core
+from jostle.posterior.forward import GeneralPlan, MLPPlan
+from jostle.attacks.problem import _objective, build_problem
 
 OBJECTIVES = ("expected_loss", "predictive", "margin")
 TOLERANCE = {torch.float32: 1e-5, torch.float64: 1e-10}

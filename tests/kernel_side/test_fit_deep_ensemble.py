@@ -8,7 +8,7 @@ from torch.nn import functional as F
 
 import jostle
 from jostle import Ensemble
-from jostle.training import fit_deep_ensemble, fit_map
+from jostle.fitting.point_estimates import fit_deep_ensemble, fit_map
 
 
 @pytest.fixture(scope="module")
@@ -64,7 +64,7 @@ def test_members_differ_and_meta_is_complete(moons, tmp_path):
     assert meta["classes"] == moons.classes
     assert meta["bounds"] == [moons.bounds[0].tolist(), moons.bounds[1].tolist()]
     assert meta["data"] == moons.describe()
-    assert meta["architecture"] == jostle.models.architecture_of(net)
+    assert meta["architecture"] == jostle.posterior.architectures.architecture_of(net)
     assert meta["epochs"] == 2 and meta["member_seeds"] == [0, 1, 2] and meta["seconds"] >= 0
     assert not any(p.requires_grad for p in ens.params.values())
     ens.save(tmp_path / "de.safetensors")

@@ -4,7 +4,7 @@ import torch
 from torch import nn
 
 import jostle
-from jostle.dropout import fit_dropout, fold_dropout_masks, sample_dropout
+from jostle.fitting.dropout import fit_dropout, fold_dropout_masks, sample_dropout
 
 
 @pytest.fixture(scope="module")

@@ -9,7 +9,7 @@ from torch.autograd.functional import hessian
 from torch.nn import functional as F
 
 import jostle
-from jostle.laplace import (
+from jostle.fitting.laplace import (
     LastLayerLaplace, fit_laplace, laplace_approximation, log_marginal_likelihood, optimise_prior_precision,
     probit_approximation, softmax_hessian,
 )

@@ -8,9 +8,9 @@ from torch.distributions import Normal, kl_divergence
 from torch.nn import functional as F
 
 import jostle
-from jostle._forward import make_plan
-from jostle.bayes_by_backprop import VariationalPosterior, _local_forward, fit_vi
-from jostle.variational import fit_mean_field, gaussian_kl, softplus_inverse
+from jostle.posterior.forward import make_plan
+from jostle.fitting.variational import VariationalPosterior, _local_forward, fit_vi
+from jostle.fitting.mean_field_reference import fit_mean_field, gaussian_kl, softplus_inverse
 
 
 @pytest.fixture(scope="module")

@@ -9,8 +9,8 @@ import scipy.stats
 import torch
 
 import jostle
-from jostle.diagnostics import SamplingInterruptedWarning
-from jostle.hmc import HMCState, evaluate, hmc_transition, kinetic_energy, leapfrog
+from jostle.fitting.hmc.diagnostics import SamplingInterruptedWarning
+from jostle.fitting.hmc.sampler import HMCState, evaluate, hmc_transition, kinetic_energy, leapfrog
 
 F64 = torch.float64
 
@@ -260,7 +260,7 @@ def test_same_seed_same_draws_and_global_rng_untouched():
 
 def test_draws_report_arviz_diagnostics_per_coordinate():
     # Reference: arviz.rhat / arviz.ess on the same draws (Vehtari et al. 2021).
-    from jostle.diagnostics import _arviz
+    from jostle.fitting.hmc.diagnostics import _arviz
 
     az = _arviz()
     log_density, _ = scaled_gaussian(2)
@@ -335,7 +335,7 @@ def test_sample_hmc_rejects_bad_arguments(kwargs, message):
 def test_warmup_windows_expand_between_fast_buffers():
     # Common practice (expanding windows): 75 fast iterations, slow windows of 25, 50, 100, ...
     # the last one stretched to leave 50 fast iterations at the end.
-    from jostle._hmc_adapt import warmup_windows
+    from jostle.fitting.hmc.adaptation import warmup_windows
 
     assert warmup_windows(1000) == [(75, 100), (100, 150), (150, 250), (250, 450), (450, 950)]
     assert warmup_windows(200) == [(75, 100), (100, 150)]

@@ -6,9 +6,9 @@ import pytest
 import torch
 
 import jostle
-from jostle._hmc_posterior import convergence_checks, failed_checks, point_rhat_summary
-from jostle.diagnostics import chain_diagnostics
-from jostle.hmc_fit import _thin_interleaved
+from jostle.fitting.hmc.network_density import convergence_checks, failed_checks, point_rhat_summary
+from jostle.fitting.hmc.diagnostics import chain_diagnostics
+from jostle.fitting.hmc.fit import _thin_interleaved
 
 
 def test_iid_draws_give_rhat_near_one_and_ess_near_the_draw_count():
@@ -34,7 +34,7 @@ def test_rhat_and_ess_are_arvizs_own_numbers_wiring_only():
     # Wiring, not an independent check: jostle hands the draws to arviz unchanged. The
     # statistical checks are the iid and shifted-chain cases above (Vehtari et al. 2021,
     # Bayesian Analysis 16:667, rank-normalised split R-hat and bulk ESS).
-    from jostle.diagnostics import _arviz
+    from jostle.fitting.hmc.diagnostics import _arviz
 
     draws = np.cumsum(np.random.default_rng(2).normal(size=(4, 300)), axis=1)  # strongly autocorrelated
     found = chain_diagnostics(draws)

@@ -9,8 +9,8 @@ import torch
 
 import jostle
 from jostle import ConvergenceWarning
-from jostle._hmc_posterior import NetworkPosterior
-from jostle.models import architecture_of
+from jostle.fitting.hmc.network_density import NetworkPosterior
+from jostle.posterior.architectures import architecture_of
 
 
 @pytest.fixture(scope="module")
@@ -79,8 +79,8 @@ def test_same_seed_same_posterior(moons):
 def test_first_momentum_is_not_a_replay_of_the_prior_start(moons, monkeypatch):
     # The chains' initialisation and the sampler's momenta come from different streams: with one
     # seed for both, the first momentum drawn (identity metric) equalled theta0 / prior_std.
-    import jostle._hmc_loop as loop
-    import jostle.hmc_fit as hmc_fit
+    import jostle.fitting.hmc.leapfrog_loop as loop
+    import jostle.fitting.hmc.fit as hmc_fit
 
     seen = {}
     start, kinetic = hmc_fit.prior_start, loop.kinetic_energy

@@ -1,4 +1,4 @@
-"""The planned expected-loss gradient (jostle._input_grad) against torch.autograd.
+"""The planned expected-loss gradient (jostle.posterior.planned_gradient) against torch.autograd.
 
 Reference: torch.autograd.grad of the mean over members of
 ``torch.nn.functional.cross_entropy`` through the same ensemble's batched forward
@@ -13,9 +13,10 @@ import torch
 from torch import nn
 
 import jostle
-from jostle import _input_grad, attack_core
-from jostle._input_grad import ExpectedLossGradient
-from jostle.attack_core import build_problem
+import jostle.posterior.planned_gradient as _input_grad
+import jostle.attacks.problem as attack_core
+from jostle.posterior.planned_gradient import ExpectedLossGradient
+from jostle.attacks.problem import build_problem
 
 # Hand backward vs autograd, two code paths: unit roundoff (float32 1.2e-7, float64 2.2e-16)
 # x ~100 for products over up to 20 inputs, 4 hidden layers and 12 classes, with margin.
@@ -305,7 +306,7 @@ def test_member_gradients_match_autograd_member_by_member(case, chunk_bytes):
 
 def test_member_gradients_public_function_takes_the_planned_path(monkeypatch):
     # jostle.member_gradients: planned path and the vmap path agree (reference: vmap(grad)).
-    from jostle.robustness import member_gradients
+    from jostle.attacks.readouts import member_gradients
 
     ens = _ensemble(CASES["2d-relu-3-classes"][0])
     x = _points(10, (2,))
@@ -372,7 +373,7 @@ def test_one_kernel_called_from_two_threads_at_once():
 
 
 def _reference_head(ens, x, labels, objective, sign=1.0):
-    from jostle.attack_core import _objective
+    from jostle.attacks.problem import _objective
 
     leaf = x.detach().clone().requires_grad_(True)
     value = sign * _objective(ens.logits(leaf), labels, objective)
@@ -384,7 +385,7 @@ def _reference_head(ens, x, labels, objective, sign=1.0):
 @pytest.mark.parametrize("case", sorted(CASES))
 def test_any_head_matches_autograd(case, objective):
     # Reference: torch.autograd through ens.logits of the attack objectives themselves.
-    from jostle.attack_core import _objective
+    from jostle.attacks.problem import _objective
 
     make, shape, classes = CASES[case]
     ens = _ensemble(make)

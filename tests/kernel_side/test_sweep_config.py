@@ -7,7 +7,7 @@ import json
 import pytest
 
 import jostle
-from jostle.sweep_config import SweepConfigError, canonical_json, check_run, run_key
+from jostle.sweeps.spec import SweepConfigError, canonical_json, check_run, run_key
 
 SMALL = dict(
     datasets=[{"name": "moons", "n_test": 50}],
@@ -169,7 +169,7 @@ def test_example_sweeps_parse(path):
 
 
 def test_example_fit_config_parses():
-    from jostle.sweep_config import read_toml
+    from jostle.sweeps.spec import read_toml
 
     path = EXAMPLES[0].parent / "leak_alarm_fit.toml"
     assert check_run(read_toml(path), need_evaluation=False)["method"]["name"] == "map"

@@ -10,8 +10,8 @@ import numpy as np
 import pytest
 
 import jostle
-from jostle.store import RunStore
-from jostle.sweep_config import run_key
+from jostle.sweeps.results_db import RunStore
+from jostle.sweeps.spec import run_key
 
 distributed = pytest.importorskip("distributed")
 
@@ -228,7 +228,7 @@ TINY_SETTINGS = {
 def test_every_method_runs_through_a_sweep(method, tmp_path):
     import inspect
 
-    from jostle.sweep_config import METHODS
+    from jostle.sweeps.spec import METHODS
 
     # a method the sweep configuration names but jostle does not export is a failure, not a skip
     fit = getattr(jostle, METHODS[method], None)
@@ -252,7 +252,7 @@ def test_every_method_runs_through_a_sweep(method, tmp_path):
 
 
 def test_command_line_sends_runs_to_a_scheduler(in_process, client, tmp_path, monkeypatch, capsys):
-    from jostle.cli import main
+    from jostle.cli.commands import main
 
     sweep, _, _ = in_process
     (tmp_path / "sweep.toml").write_text(SWEEP_TOML)
@@ -305,7 +305,7 @@ steps = 5
 def test_the_demo_leak_alarm_data_runs_through_a_sweep(tmp_path):
     # The scenario's data set is a sweep data set like the others; its rows carry its name
     # and the run's data are jostle.datasets.leak_alarm with the same arguments.
-    from jostle.sweep_run import load_run_data
+    from jostle.sweeps.one_run import load_run_data
 
     sweep = jostle.Sweep(**dict(TINY, datasets=[{"name": "leak_alarm", "n_test": 40}], seeds=[0]))
     run = sweep.runs()[0]

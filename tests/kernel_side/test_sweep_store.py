@@ -8,8 +8,8 @@ import numpy as np
 import pytest
 
 import jostle
-from jostle.store import RunStore, StoreError
-from jostle.sweep_config import run_key
+from jostle.sweeps.results_db import RunStore, StoreError
+from jostle.sweeps.spec import run_key
 
 SWEEP = jostle.Sweep(datasets=[{"name": "moons", "n_test": 20}], methods=["map", "deep_ensemble"],
                      architectures=[{"depth": 1, "width": 4}], train_sizes=[20], seeds=[0],

@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from jostle.sweep_view import SweepPoints, exact_permutation_p, family_correlations
+from jostle.sweeps.chart_data import SweepPoints, exact_permutation_p, family_correlations
 
 
 def _points(accuracy, value, family):

@@ -18,7 +18,7 @@ from pathlib import Path
 import pytest
 
 import jostle.cli
-from jostle.cli_demo import FIRST_TOUR, copy_demo_notebooks
+from jostle.cli.demo import FIRST_TOUR, copy_demo_notebooks
 from tests.browser.harness import START_TIMEOUT_S, JostleCommand, free_port, port_closed, wait_for_http, write_notebook
 
 

@@ -5,7 +5,7 @@ import contourpy
 import numpy as np
 import pytest
 
-from jostle._contours import decision_segments, level_segments
+from jostle.live.contours import decision_segments, level_segments
 
 
 def _grid(n=41):

@@ -9,7 +9,7 @@ import scipy.stats
 import torch
 
 import jostle
-from jostle import live
+import jostle.live.engine as live
 
 from .conftest import has_attacks, has_expected_gradient, tiny_ensemble
 

@@ -7,8 +7,8 @@ import traitlets
 from scipy import stats
 
 import jostle
-from jostle.store import RunStore
-from jostle.sweep_config import run_key
+from jostle.sweeps.results_db import RunStore
+from jostle.sweeps.spec import run_key
 from jostle.widgets.sweep_explorer import SweepExplorer
 from jostle.widgets._wire import from_wire
 
@@ -207,7 +207,7 @@ def test_sweep_source_limits_to_its_runs(store):
 
 
 def test_clicking_a_saved_run_opens_an_explorer_beside_the_chart(tmp_path):
-    from jostle.sweep_run import fit_run
+    from jostle.sweeps.one_run import fit_run
 
     from jostle.widgets import Explorer as explorer_class  # a lost export fails here, it never skips
     small = jostle.Sweep(

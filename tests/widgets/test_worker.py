@@ -6,7 +6,7 @@ import time
 
 import pytest
 
-from jostle.live import LiveWorker
+from jostle.live.engine import LiveWorker
 
 
 class Recorder:

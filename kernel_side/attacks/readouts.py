@@ -1,0 +1,380 @@
+"""Robustness read-outs built on the attacks: the expected gradient and how it fades as
+the attacker averages more posterior samples, the smallest flipping budget per point,
+and how far an attack moves the posterior predictive.
+
+The gradient check for masked gradients lives in :mod:`jostle.masking`.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import torch
+from torch import Tensor
+from torch.func import functional_call, grad, vmap
+
+from jostle.common.checks import _show, check_choice, check_devices, check_finite, check_int, check_real_dtype, check_seed
+import jostle.attacks.problem as attack_core
+from jostle.posterior.forward import MLPPlan
+from jostle.posterior.planned_gradient import ExpectedLossGradient
+from jostle.attacks.problem import build_problem, compute_threads, norm_of
+from jostle.attacks.gradient_methods import pgd
+
+__all__ = ["expected_gradient", "member_gradients", "gradient_fade", "GradientFade", "minimal_budget",
+           "MinimalBudget", "softmax_robustness"]
+
+DEFAULT_SAMPLE_COUNTS = (1, 2, 4, 8, 16, 32, 64)
+QUANTILE_LEVELS = (0.05, 0.25, 0.5, 0.75, 0.95)
+NORM_KINDS = ("l1", "l2", "linf")
+
+
+def expected_gradient(ens, x: Any, y: Any = None, samples: Any = None, objective: str = "expected_loss") -> Tensor:
+    """Input gradient of the attacker's objective, averaged over posterior samples.
+
+    With ``objective="expected_loss"`` this is the gradient of the mean per-sample
+    cross-entropy, which equals the mean of the per-sample gradients (Athalye et al. 2018).
+
+    Parameters
+    ----------
+    ens : Ensemble
+    x : Tensor of shape (n_points, *input_shape)
+    y : Tensor of shape (n_points,), optional
+        Labels; None uses the full ensemble's predicted labels.
+    samples : None, int or sequence of int
+        Members averaged over (an int ``k``: the first ``k``).
+    objective : {"expected_loss", "predictive", "margin"}
+
+    Returns
+    -------
+    Tensor of shape (n_points, *input_shape)
+    """
+    problem = build_problem(ens, x, y, eps=0.0, norm="inf", objective=objective, samples=samples,
+                            resample=False, target=None, bounds=None, seed=0, use_bounds=False)
+    with compute_threads("auto", ens, problem.points):
+        return problem.objective_and_grad(problem.x)[1]
+
+
+def member_gradients(ens, x: Any, y: Any = None) -> Tensor:
+    """Each member's input gradient of its own cross-entropy, in one vectorised pass.
+
+    Linear + tanh/ReLU/sigmoid stacks use the planned hand-written backward of the
+    attacks; any other module ``torch.func.vmap(grad(...))``.
+
+    Returns
+    -------
+    Tensor of shape (n_members, n_points, *input_shape)
+    """
+    problem = build_problem(ens, x, y, eps=0.0, norm="inf", objective="expected_loss", samples=None,
+                            resample=False, target=None, bounds=None, seed=0, use_bounds=False)
+    if attack_core.HAND_BACKWARD and isinstance(ens._plan, MLPPlan):
+        # Linear + tanh/ReLU/sigmoid stacks: the planned hand-written backward, member by member.
+        params = {k: v.detach() for k, v in ens.params.items()}
+        kernel = ExpectedLossGradient.try_build(ens._plan.steps, params, problem.label, 1.0)
+        if kernel is not None:
+            with compute_threads("auto", ens, problem.points):
+                return kernel.member_gradients(ens._prepare_input(problem.x))
+    template = ens.template
+
+    def member_loss(params: dict[str, Tensor], points: Tensor, labels: Tensor) -> Tensor:
+        logits = functional_call(template, params, (points,))
+        return torch.nn.functional.cross_entropy(logits, labels, reduction="sum")
+
+    per_member = vmap(grad(member_loss, argnums=1), in_dims=(0, None, None))
+    # Points are independent, so the sum over a chunk yields each point's own gradient.
+    pair_bytes = 3 * ens._plan.floats_per_pair * problem.x.element_size() * len(ens)
+    chunk = max(1, ens.memory_budget // max(1, pair_bytes))
+    with compute_threads("auto", ens, problem.points):
+        pieces = [per_member(ens.params, problem.x[i:i + chunk], problem.label[i:i + chunk])
+                  for i in range(0, problem.points, chunk)]
+    return torch.cat(pieces, dim=1)
+
+
+@dataclass
+class GradientFade:
+    """How the expected gradient's size changes with the number of samples averaged.
+
+    Attributes
+    ----------
+    sample_counts : ndarray of shape (K,)
+    norms : dict of kind -> ndarray of shape (K, repeats, n_points)
+        ``l1``, ``l2`` and ``linf`` norms of the S-sample expected gradient, for random
+        S-subsets of members (without replacement) drawn ``repeats`` times.
+    norm_mean, reference : dict of kind -> ndarray of shape (K,)
+        Mean norm over repeats and points, and the Monte Carlo reference
+        ``norm_mean[0] * sqrt(S_0 / S)`` (1/sqrt(S) scaled to the smallest count).
+    norm_quantiles : dict of kind -> ndarray of shape (K, Q)
+    component_quantiles : ndarray of shape (K, Q)
+        Quantiles of the gradient's components over repeats, points and features.
+    component_abs_mean : ndarray of shape (K,)
+    error_mean : ndarray of shape (K,)
+        Mean L2 distance to the full ensemble's expected gradient (the Monte Carlo error).
+    full_norm : dict of kind -> ndarray of shape (n_points,)
+        Norms of the expected gradient over every member (the limit the fade tends to).
+    """
+
+    sample_counts: np.ndarray
+    quantile_levels: np.ndarray
+    norms: dict
+    norm_mean: dict
+    norm_quantiles: dict
+    reference: dict
+    component_quantiles: np.ndarray
+    component_abs_mean: np.ndarray
+    error_mean: np.ndarray
+    full_norm: dict
+    repeats: int
+    members: int
+    info: dict = field(default_factory=dict)
+
+    def rows(self) -> list[dict]:
+        """One plain dict per sample count (for tables and plots)."""
+        out = []
+        for k, count in enumerate(self.sample_counts):
+            row = {"samples": int(count)}
+            for kind in NORM_KINDS:
+                row[f"{kind}_mean"] = float(self.norm_mean[kind][k])
+                row[f"{kind}_reference"] = float(self.reference[kind][k])
+                row[f"{kind}_median"] = float(self.norm_quantiles[kind][k, len(self.quantile_levels) // 2])
+            row["component_abs_mean"] = float(self.component_abs_mean[k])
+            row["error_mean"] = float(self.error_mean[k])
+            out.append(row)
+        return out
+
+    def to_dict(self) -> dict:
+        """Numpy arrays and numbers only."""
+        return {
+            "sample_counts": self.sample_counts, "quantile_levels": self.quantile_levels,
+            "norms": dict(self.norms), "norm_mean": dict(self.norm_mean),
+            "norm_quantiles": dict(self.norm_quantiles), "reference": dict(self.reference),
+            "component_quantiles": self.component_quantiles, "component_abs_mean": self.component_abs_mean,
+            "error_mean": self.error_mean, "full_norm": dict(self.full_norm),
+            "repeats": self.repeats, "members": self.members,
+        }
+
+
+def gradient_fade(ens, x: Any, y: Any = None, sample_counts: Any = None, repeats: int = 50,
+                  seed: int = 0) -> GradientFade:
+    """The expected gradient's norm and components as the attacker averages S samples.
+
+    Per-member gradients are computed once (:func:`member_gradients`); each S-sample
+    expected gradient is the mean over a random S-subset of members, drawn ``repeats``
+    times without replacement. For independent members the Monte Carlo error shrinks like
+    1/sqrt(S); where members disagree in sign, the norm itself fades the same way.
+
+    Parameters
+    ----------
+    sample_counts : sequence of int, optional
+        Default ``(1, 2, 4, 8, 16, 32, 64)``, keeping those <= ``len(ens)``.
+    repeats : int
+        Random subsets per count.
+
+    Returns
+    -------
+    GradientFade
+    """
+    members = len(ens)
+    counts = _sample_counts(sample_counts, members)
+    repeats = check_int("repeats", repeats, low=1)
+    generator = torch.Generator().manual_seed(check_seed(seed))
+    per_member = member_gradients(ens, x, y).flatten(2)
+    flat = per_member.reshape(members, -1)
+    full = per_member.mean(0)
+    rows: dict[str, list] = {"norms": [], "components": [], "error": []}
+    for count in counts:
+        chosen = torch.rand((repeats, members), generator=generator).argsort(dim=1)[:, :count]
+        weights = torch.zeros((repeats, members), dtype=flat.dtype).scatter_(1, chosen, 1.0 / count)
+        averaged = (weights.to(flat.device) @ flat).view(repeats, *per_member.shape[1:])
+        rows["norms"].append(_three_norms(averaged))
+        rows["components"].append(averaged.flatten().cpu())
+        rows["error"].append(float((averaged - full).norm(dim=-1).mean()))
+    return _pack_fade(counts, rows, full, repeats, members)
+
+
+@dataclass
+class MinimalBudget:
+    """Smallest flipping budget per point, found by bisection over PGD budgets.
+
+    Attributes
+    ----------
+    eps : Tensor of shape (n_points,)
+        Upper end of the final bracket: the smallest budget at which PGD flipped the
+        point (``inf`` where even ``high`` did not; 0 where the label was already wrong).
+    lower : Tensor of shape (n_points,)
+        Lower end of the final bracket (PGD failed there).
+    x_adv : Tensor of shape (n_points, *input_shape)
+        The flipping input PGD found at ``eps`` (``x`` where none was found).
+    adv_probs : Tensor of shape (n_points, n_classes)
+    success : Tensor of shape (n_points,), bool
+    label : Tensor of shape (n_points,)
+    """
+
+    eps: Tensor
+    lower: Tensor
+    x_adv: Tensor
+    adv_probs: Tensor
+    success: Tensor
+    label: Tensor
+    norm: str
+    info: dict = field(default_factory=dict)
+
+    def to_dict(self) -> dict:
+        out = {k: getattr(self, k).detach().cpu().numpy() for k in ("eps", "lower", "x_adv", "adv_probs", "success", "label")}
+        out.update(norm=self.norm, info=dict(self.info))
+        return out
+
+
+def minimal_budget(ens, x: Any, y: Any = None, norm: str = "inf", samples: Any = None, steps: int = 40,
+                   iterations: int = 16, high: float | None = None, random_start: bool = False,
+                   bounds: Any = None, target: Any = None, seed: int = 0, threads: Any = "auto") -> MinimalBudget:
+    """Smallest budget that flips each point's predicted label (bisection, vectorised).
+
+    Every point keeps its own bracket ``[lower, upper]``; each of ``iterations`` rounds runs
+    one PGD over all points at their midpoints. The start bracket's upper end is ``high``,
+    else the diameter of the bounds in the chosen norm (every point of the box is within
+    reach), else it doubles from 1 until PGD flips the point (at most 20 times). PGD starts
+    at ``x`` by default, so that each budget's answer is repeatable; the result assumes
+    success grows with the budget, which holds for affine models and is checked, not
+    guaranteed, elsewhere (:func:`jostle.masking_check`).
+
+    Returns
+    -------
+    MinimalBudget
+        ``eps`` of shape (n_points,), the bracket and the inputs found.
+    """
+    iterations = check_int("iterations", iterations, low=1)
+    steps = check_int("steps", steps, low=1)
+    problem = build_problem(ens, x, y, eps=0.0, norm=norm, objective="expected_loss", samples=samples,
+                            resample=False, target=target, bounds=bounds, seed=seed)
+    with compute_threads(threads, ens, problem.points):
+        return _bisect(problem, high, steps, iterations, random_start)
+
+
+def softmax_robustness(ens, x: Any, x_adv: Any, kind: str = "max", samples: Any = None,
+                       reduce: bool = True) -> float | Tensor:
+    """How little an attack moved the posterior predictive: 1 means not at all.
+
+    ``kind="max"``: ``1 - mean_n max_c |p(c|x_n) - p(c|x_adv_n)|``;
+    ``kind="tv"``: ``1 - mean_n TV(p(.|x_n), p(.|x_adv_n))`` with total variation
+    ``0.5 * sum_c |p - p_adv|``. Identical inputs give exactly 1.
+
+    Parameters
+    ----------
+    x, x_adv : Tensor of shape (n_points, *input_shape)
+    samples : members of the predictive (None: all)
+    reduce : bool
+        False returns the per-point score, shape (n_points,).
+    """
+    kind = check_choice("kind", kind, ("max", "tv"))
+    if not isinstance(reduce, bool):
+        raise ValueError(f"reduce must be True or False; got {_show(reduce)}")
+    x = _as_batch(ens, x, "x")
+    x_adv = _as_batch(ens, x_adv, "x_adv")
+    if x.shape != x_adv.shape:
+        raise ValueError(f"x_adv must have the shape of x {tuple(x.shape)}; got {tuple(x_adv.shape)}")
+    gap = (ens.predict(x, samples=samples).probs - ens.predict(x_adv, samples=samples).probs).abs()
+    moved = gap.amax(-1) if kind == "max" else 0.5 * gap.sum(-1)
+    score = 1.0 - moved
+    return float(score.mean()) if reduce else score
+
+
+# ------------------------------------------------------------------ private helpers
+def _sample_counts(sample_counts: Any, members: int) -> list[int]:
+    if sample_counts is None:
+        return [c for c in DEFAULT_SAMPLE_COUNTS if c <= members]
+    if isinstance(sample_counts, (int, str)) or not hasattr(sample_counts, "__iter__"):
+        raise ValueError(f"sample_counts must be a sequence of integers; got {_show(sample_counts)}")
+    counts = [check_int("sample_counts entry", int(c) if isinstance(c, np.integer) else c, low=1, high=members)
+              for c in sample_counts]
+    if not counts:
+        raise ValueError("sample_counts must hold at least one count; got an empty sequence")
+    return sorted(set(counts))
+
+
+def _three_norms(g: Tensor) -> dict[str, Tensor]:
+    return {"l1": g.abs().sum(-1).cpu(), "l2": g.norm(dim=-1).cpu(), "linf": g.abs().amax(-1).cpu()}
+
+
+def _pack_fade(counts, rows, full: Tensor, repeats: int, members: int) -> GradientFade:
+    levels = torch.tensor(QUANTILE_LEVELS, dtype=torch.float64)
+    norms = {k: np.stack([r[k].numpy() for r in rows["norms"]]) for k in NORM_KINDS}
+    norm_mean = {k: v.reshape(len(counts), -1).mean(1) for k, v in norms.items()}
+    first = float(counts[0])
+    reference = {k: v[0] * np.sqrt(first / np.asarray(counts, dtype=float)) for k, v in norm_mean.items()}
+    quantiles = {k: np.quantile(v.reshape(len(counts), -1), QUANTILE_LEVELS, axis=1).T for k, v in norms.items()}
+    components = np.stack([np.quantile(c.double().numpy(), levels.numpy()) for c in rows["components"]])
+    return GradientFade(
+        sample_counts=np.asarray(counts), quantile_levels=levels.numpy(), norms=norms, norm_mean=norm_mean,
+        norm_quantiles=quantiles, reference=reference, component_quantiles=components,
+        component_abs_mean=np.asarray([float(c.abs().mean()) for c in rows["components"]]),
+        error_mean=np.asarray(rows["error"]), full_norm={k: v.numpy() for k, v in _three_norms(full).items()},
+        repeats=repeats, members=members,
+    )
+
+
+def _bisect(problem, high, steps: int, iterations: int, random_start: bool) -> MinimalBudget:
+    """Per-point bisection of the flipping budget; brackets start at ``[0, upper]``."""
+    upper = _initial_upper(problem, high)
+    lower = torch.zeros_like(upper)
+    state = {"x_adv": problem.x.clone(), "probs": problem.clean_probs.clone()}
+    already, _ = problem.judge(problem.x)
+    upper = torch.where(already, torch.zeros_like(upper), upper)
+    ok = _attack_at(problem, upper, steps, random_start, state, ~already) | already
+    if high is None and problem.bounds is None:
+        for _ in range(20):
+            if bool(ok.all()):
+                break
+            upper = torch.where(ok, upper, upper * 2)
+            ok = ok | _attack_at(problem, upper, steps, random_start, state, ~ok)
+    for _ in range(iterations):
+        middle = (lower + upper) / 2
+        flipped = _attack_at(problem, middle, steps, random_start, state, ok & ~already)
+        upper = torch.where(flipped, middle, upper)
+        lower = torch.where(ok & ~already & ~flipped, middle, lower)
+    eps = torch.where(ok, upper, torch.full_like(upper, math.inf))
+    return MinimalBudget(eps=eps, lower=lower, x_adv=state["x_adv"], adv_probs=state["probs"], success=ok,
+                         label=problem.label, norm=problem.norm, info={"steps": steps, "iterations": iterations})
+
+
+def _initial_upper(problem, high: float | None) -> Tensor:
+    if high is not None:
+        from jostle.common.checks import check_float
+
+        value = check_float("high", high, low=0.0, low_open=True)
+        return torch.full_like(problem.eps, value)
+    if problem.bounds is None:
+        return torch.ones_like(problem.eps)
+    span = (problem.bounds[1] - problem.bounds[0]).unsqueeze(0)
+    return norm_of(span, problem.norm).expand_as(problem.eps).clone()
+
+
+def _attack_at(problem, eps: Tensor, steps: int, random_start: bool, state: dict, active: Tensor) -> Tensor:
+    """PGD at per-point budgets ``eps``; records flipping inputs of ``active`` points."""
+    if not bool(active.any()):
+        return torch.zeros_like(active)
+    where = active.nonzero().flatten()
+    # One random stream across the bisection's rounds: each round's random starts are new.
+    sub = problem.subset(where, eps=eps[where], generator=problem.generator)
+    result = pgd(sub, steps, random_start=random_start, record_path=False)
+    flipped = torch.zeros_like(active)
+    flipped[where] = result.success
+    chosen = where[result.success]
+    state["x_adv"][chosen] = result.x_adv[result.success]
+    state["probs"][chosen] = result.adv_probs[result.success]
+    return flipped
+
+
+def _as_batch(ens, x: Any, name: str) -> Tensor:
+    if not isinstance(x, Tensor):
+        try:
+            x = torch.as_tensor(np.asarray(x), dtype=ens.dtype)
+        except (TypeError, ValueError):
+            raise ValueError(f"{name} must be a numeric array of shape (n_points, ...); got {_show(x)}") from None
+    if x.ndim < 2:
+        raise ValueError(f"{name} must have shape (n_points, *input_shape); got shape {tuple(x.shape)}")
+    check_devices(name, x.device, "ens", ens.device)
+    x = check_real_dtype(name, x).detach().to(device=ens.device, dtype=ens.dtype)
+    if x.shape[0] == 0:
+        raise ValueError(f"{name} must hold at least one point; got shape {tuple(x.shape)}")
+    return check_finite(name, x)

@@ -1,0 +1,1 @@
+"""The command line: `jostle demo`, `present`, `fit`, `inspect`, `sweep`."""

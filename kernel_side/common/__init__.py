@@ -1,0 +1,1 @@
+"""Helpers every room shares: input checks and the thread policy."""

@@ -1,0 +1,1 @@
+"""The posterior file format: safetensors for tensors, JSON for metadata, atomic writes."""

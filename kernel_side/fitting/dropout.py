@@ -1,0 +1,292 @@
+"""MC dropout as an ordinary ensemble: sampled masks folded into the weights.
+
+Inverted dropout multiplies a layer's input h by m / (1 - p) with m ~ Bernoulli(1 - p).
+When that layer is ``Linear``, W (m * h) / (1 - p) = (W diag(m) / (1 - p)) h, so one mask
+is the same as a network whose next weight matrix has the dropped columns zeroed and
+the kept ones scaled by 1 / (1 - p) (Gal & Ghahramani 2016 read MC dropout as an
+approximate posterior over exactly these masked weights). S masks give S ordinary
+members, and predicting needs no randomness.
+"""
+from __future__ import annotations
+
+import copy
+from dataclasses import dataclass
+from typing import Any, Sequence
+
+import torch
+from torch import Tensor, nn
+from torch.func import functional_call
+
+from jostle.common.checks import _show, check_float, check_int
+from jostle.fitting.training_loop import (
+    check_config, check_device, check_module_and_data, cross_entropy_per_member, fit_meta,
+    member_generators, split_validation, stacked_initial, stream_seed, train_members,
+)
+from jostle.datasets import Dataset
+from jostle.posterior.ensemble import Ensemble
+from jostle.posterior.architectures import architecture_of, build_architecture
+
+__all__ = ["fit_dropout", "fold_dropout_masks", "sample_dropout"]
+
+_DEFAULT_P = 0.1
+
+
+def fit_dropout(
+    module: nn.Module,
+    data: Dataset,
+    p: float | None = None,
+    samples: int = 100,
+    *,
+    epochs: int = 100,
+    batch_size: int = 32,
+    lr: float = 1e-2,
+    weight_decay: float = 1e-4,
+    optimizer: str = "adam",
+    momentum: float = 0.9,
+    validation: float = 0.0,
+    patience: int = 10,
+    seed: int = 0,
+    progress: bool = True,
+    device: Any = None,
+) -> Ensemble:
+    """Train with dropout, then fold ``samples`` sampled masks into an ensemble (MC dropout).
+
+    Parameters
+    ----------
+    module : nn.Sequential
+        Linear layers, elementwise activations and (optionally) Dropout layers, each
+        Dropout directly followed by a Linear, e.g. ``jostle.mlp(2, 2, dropout=0.1)``.
+        Without Dropout layers, Dropout(p) is inserted before every Linear but the first.
+    data : jostle.Dataset
+    p : float in [0, 1), optional
+        Dropout rate. None keeps the module's own rates (0.1 where dropout is inserted);
+        a number sets every Dropout layer to it.
+    samples : int
+        Masks drawn after training; each becomes one member.
+    epochs, batch_size, lr, weight_decay, optimizer, momentum, validation, patience
+        As in :func:`jostle.fit_map`. Validation loss uses the network without dropout.
+    seed : int
+        Seeds initialisation, minibatches, training masks and the folded masks.
+    progress : bool
+    device : str or torch.device, optional
+
+    Returns
+    -------
+    Ensemble
+        ``samples`` members of the dropout-free network; ``meta["method"] == "dropout"``.
+    """
+    seed = check_int("seed", seed, low=0)
+    samples = check_int("samples", samples, low=1)
+    if p is not None:
+        p = check_float("p", p, low=0.0, high=1.0, high_open=True)
+    config = check_config(epochs, batch_size, lr, weight_decay, optimizer, momentum, validation, patience)
+    check_module_and_data(module, data)
+    device = check_device(device)
+    dropped = _with_dropout(module, p)
+    layout = _layout(dropped)
+    x, y = data.x_train.to(device), data.y_train.to(device)
+    x_fit, y_fit, x_val, y_val = split_validation(x, y, config.validation, seed)
+    generators = member_generators([seed])
+    noise = torch.Generator(device=device).manual_seed(stream_seed(seed, 1))
+    trainee = _seeded_copy(dropped, noise).to(device)
+    params = stacked_initial(trainee, generators, device)
+    record = train_members(
+        params, _dropout_loss(trainee, train=True), x_fit, y_fit, generators, config,
+        validation_loss=_validation(trainee, x_val, y_val) if x_val is not None else None,
+        progress=bool(progress), desc="dropout",
+    )
+    state = {name: value[0].detach() for name, value in params.items()}
+    masks = _draw_masks(layout, samples, torch.Generator().manual_seed(stream_seed(seed, 2)), device)
+    ensemble = _fold(layout, state, masks)
+    ensemble.meta = fit_meta(
+        "dropout", data, layout.clean, seed, record.seconds, **config.as_meta(), samples=samples,
+        p=[site.rate for site in layout.sites], epochs_run=record.epochs_run,
+        final_loss=record.final_loss, best_epoch=record.best_epoch,
+    )
+    return ensemble
+
+
+def fold_dropout_masks(module: nn.Module, masks: Sequence[Tensor]) -> Ensemble:
+    """Fold given keep-masks into a trained dropout network's weights.
+
+    Parameters
+    ----------
+    module : nn.Sequential
+        A trained network with Dropout layers, each directly followed by a Linear.
+    masks : sequence of Tensor of shape (S, width)
+        One per Dropout layer with p > 0, in order; 1 keeps a unit, 0 drops it.
+
+    Returns
+    -------
+    Ensemble
+        S members; member s computes exactly what ``module`` computes in training mode
+        when its dropout layers draw masks ``masks[k][s]`` (the same for every point).
+    """
+    layout = _layout(module)
+    masks = list(masks)
+    if len(masks) != len(layout.sites):
+        raise ValueError(f"masks must hold one tensor per Dropout layer with p > 0 ({len(layout.sites)}); "
+                         f"got {len(masks)}")
+    checked = []
+    for k, (site, mask) in enumerate(zip(layout.sites, masks)):
+        mask = torch.as_tensor(mask)
+        if mask.ndim != 2 or mask.shape[1] != site.width or mask.shape[0] != torch.as_tensor(masks[0]).shape[0]:
+            raise ValueError(f"masks[{k}] must have shape (S, {site.width}) with S shared by all masks; "
+                             f"got {tuple(mask.shape)}")
+        if not bool(((mask == 0) | (mask == 1)).all()):
+            raise ValueError(f"masks[{k}] must hold only 0 (drop) and 1 (keep); got {_show(mask.unique())}")
+        checked.append(mask)
+    state = {**dict(module.named_parameters()), **dict(module.named_buffers())}
+    return _fold(layout, {k: v.detach() for k, v in state.items()}, checked)
+
+
+def sample_dropout(module: nn.Module, samples: int = 100, seed: int = 0) -> Ensemble:
+    """Draw ``samples`` dropout masks for a trained dropout network and fold them in.
+
+    Parameters
+    ----------
+    module : nn.Sequential
+        A trained network with Dropout layers, each directly followed by a Linear.
+    samples : int
+    seed : int
+        Seeds the masks (m ~ Bernoulli(1 - p) per unit and member).
+
+    Returns
+    -------
+    Ensemble
+        ``samples`` members of the dropout-free network (see :func:`fold_dropout_masks`).
+    """
+    samples = check_int("samples", samples, low=1)
+    seed = check_int("seed", seed, low=0)
+    layout = _layout(module)
+    device = next(iter(module.parameters())).device
+    masks = _draw_masks(layout, samples, torch.Generator().manual_seed(seed), device)
+    return fold_dropout_masks(module, masks)
+
+
+@dataclass(frozen=True)
+class _Site:
+    """A Dropout layer and the Linear weight (name in the clean template) it folds into."""
+
+    rate: float
+    weight: str
+    width: int
+
+
+@dataclass(frozen=True)
+class _Layout:
+    clean: nn.Module
+    names: dict[str, str]  # clean parameter name -> name in the dropout network
+    sites: list[_Site]
+
+
+def _with_dropout(module: nn.Module, p: float | None) -> nn.Sequential:
+    if not isinstance(module, nn.Sequential):
+        raise ValueError(f"module must be an nn.Sequential (e.g. jostle.mlp) so dropout masks can be folded "
+                         f"into its Linear layers; got {type(module).__name__}")
+    if any(isinstance(layer, nn.Dropout) for layer in module):
+        dropped = copy.deepcopy(module)
+        if p is not None:
+            for layer in dropped:
+                if isinstance(layer, nn.Dropout):
+                    layer.p = p
+        return dropped
+    rate = _DEFAULT_P if p is None else p
+    arch = architecture_of(module)
+    if arch is not None and arch["builder"] == "mlp":
+        return build_architecture("mlp", **{**arch["kwargs"], "dropout": rate})
+    layers, seen_linear = [], False
+    for layer in module:
+        if isinstance(layer, nn.Linear):
+            if seen_linear:
+                layers.append(nn.Dropout(rate))
+            seen_linear = True
+        layers.append(copy.deepcopy(layer))
+    return nn.Sequential(*layers)
+
+
+def _layout(dropped: nn.Module) -> _Layout:
+    if not isinstance(dropped, nn.Sequential):
+        raise ValueError(f"module must be an nn.Sequential with Dropout layers; got {type(dropped).__name__}")
+    children = list(dropped)
+    kept = [i for i, layer in enumerate(children) if not isinstance(layer, nn.Dropout)]
+    position = {old: new for new, old in enumerate(kept)}
+    sites = []
+    for i, layer in enumerate(children):
+        if not isinstance(layer, nn.Dropout) or layer.p == 0:
+            continue
+        follower = children[i + 1] if i + 1 < len(children) else None
+        if not isinstance(follower, nn.Linear):
+            raise ValueError(f"module[{i}] is a Dropout followed by {type(follower).__name__}; masks fold only "
+                             f"into a Linear layer that directly follows a Dropout")
+        sites.append(_Site(float(layer.p), f"{position[i + 1]}.weight", follower.in_features))
+    if not sites:
+        raise ValueError("module must hold at least one Dropout layer with p > 0 to fold masks from")
+    arch = architecture_of(dropped)
+    if arch is not None and arch["builder"] == "mlp":
+        clean = build_architecture("mlp", **{**arch["kwargs"], "dropout": 0.0})
+    else:
+        clean = nn.Sequential(*[copy.deepcopy(children[i]) for i in kept])
+    names = {}
+    for name in list(dict(clean.named_parameters())) + list(dict(clean.named_buffers())):
+        index, rest = name.split(".", 1)
+        names[name] = f"{kept[int(index)]}.{rest}"
+    return _Layout(clean.eval(), names, sites)
+
+
+def _fold(layout: _Layout, state: dict[str, Tensor], masks: Sequence[Tensor]) -> Ensemble:
+    count = int(masks[0].shape[0])
+    params = {name: state[source].unsqueeze(0).expand(count, *state[source].shape).clone()
+              for name, source in layout.names.items()}
+    for site, mask in zip(layout.sites, masks):
+        weight = params[site.weight]
+        scale = mask.to(device=weight.device, dtype=weight.dtype) / (1.0 - site.rate)
+        params[site.weight] = weight * scale.unsqueeze(1)
+    template = copy.deepcopy(layout.clean).to(next(iter(params.values())).device)
+    return Ensemble(template, params)
+
+
+def _draw_masks(layout: _Layout, samples: int, generator: torch.Generator, device) -> list[Tensor]:
+    return [(torch.rand(samples, site.width, generator=generator) >= site.rate).to(device=device, dtype=torch.float32)
+            for site in layout.sites]
+
+
+class _SeededDropout(nn.Module):
+    """Inverted dropout drawing from its own generator, never the global RNG."""
+
+    def __init__(self, p: float, generator: torch.Generator):
+        super().__init__()
+        self.p = p
+        self.generator = generator
+
+    def forward(self, h: Tensor) -> Tensor:
+        if not self.training or self.p == 0:
+            return h
+        keep = torch.rand(h.shape, generator=self.generator, device=h.device, dtype=h.dtype) >= self.p
+        return h * keep / (1.0 - self.p)
+
+
+def _seeded_copy(dropped: nn.Sequential, generator: torch.Generator) -> nn.Sequential:
+    layers = [_SeededDropout(layer.p, generator) if isinstance(layer, nn.Dropout) else copy.deepcopy(layer)
+              for layer in dropped]
+    return nn.Sequential(*layers).train()
+
+
+def _dropout_loss(trainee: nn.Module, train: bool):
+    def member_loss(params, xb, yb):
+        trainee.train(train)
+        logits = functional_call(trainee, {k: v[0] for k, v in params.items()}, (xb[0],))
+        return cross_entropy_per_member(logits.unsqueeze(0), yb)
+
+    return member_loss
+
+
+def _validation(trainee: nn.Module, x_val: Tensor, y_val: Tensor):
+    evaluate = _dropout_loss(trainee, train=False)
+
+    def validation_loss(params):
+        loss = evaluate(params, x_val.unsqueeze(0), y_val.unsqueeze(0))
+        trainee.train()
+        return loss
+
+    return validation_loss

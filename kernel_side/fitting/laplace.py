@@ -1,0 +1,324 @@
+"""Laplace approximations: a generic one over any log density, and last-layer Laplace for nets.
+
+Around a mode theta* the posterior is approximated by N(theta*, (-grad^2 log p)^-1)
+(MacKay 1992; Bishop 2006, sec. 4.4). For a network, only the last Linear layer is
+treated this way: with features phi_n of the layer below, logits are linear in the
+last layer's parameters, so the cross-entropy Hessian is exactly the generalised
+Gauss-Newton matrix sum_n (diag(p_n) - p_n p_n') kron phi_n phi_n'. The prior precision
+is chosen by maximising the Laplace approximation to the marginal likelihood.
+"""
+from __future__ import annotations
+
+import copy
+import math
+from dataclasses import dataclass
+from typing import Any, Callable
+
+import torch
+from torch import Tensor, nn
+
+from jostle.common.checks import as_float_tensor, check_float, check_int
+from jostle.fitting.training_loop import stream_seed
+from jostle.datasets import Dataset
+from jostle.posterior.ensemble import Ensemble
+from jostle.fitting.point_estimates import fit_map
+
+__all__ = [
+    "fit_laplace", "LastLayerLaplace", "GaussianApproximation", "laplace_approximation",
+    "softmax_hessian", "log_marginal_likelihood", "optimise_prior_precision", "probit_approximation",
+]
+
+
+def fit_laplace(
+    module: nn.Module,
+    data: Dataset,
+    samples: int = 100,
+    *,
+    prior_precision: float | None = None,
+    epochs: int = 100,
+    batch_size: int = 32,
+    lr: float = 1e-2,
+    weight_decay: float = 1e-4,
+    optimizer: str = "adam",
+    momentum: float = 0.9,
+    validation: float = 0.0,
+    patience: int = 10,
+    seed: int = 0,
+    progress: bool = True,
+    device: Any = None,
+) -> Ensemble:
+    """Last-layer Laplace around the MAP network, ``samples`` draws folded into an ensemble.
+
+    Parameters
+    ----------
+    module : nn.Sequential
+        Ending in an ``nn.Linear`` layer (e.g. ``jostle.mlp``); only that layer varies.
+    data : jostle.Dataset
+    samples : int
+        Draws of the last layer; every member shares the MAP body.
+    prior_precision : float, optional
+        Precision of the N(0, 1/prior_precision I) prior on the last layer. None picks
+        the value maximising the Laplace marginal likelihood (a log grid, then Brent).
+    epochs, batch_size, lr, weight_decay, optimizer, momentum, validation, patience
+        Settings of the MAP fit, as in :func:`jostle.fit_map`.
+    seed : int
+        Seeds the MAP fit and the draws.
+    progress : bool
+    device : str or torch.device, optional
+
+    Returns
+    -------
+    Ensemble
+        ``meta["method"] == "laplace"``; its ``posterior`` attribute is the
+        :class:`LastLayerLaplace` (mean, precision; ``.draw(samples, seed)``).
+    """
+    samples = check_int("samples", samples, low=1)
+    if prior_precision is not None:
+        prior_precision = check_float("prior_precision", prior_precision, low=0.0, low_open=True)
+    _last_linear(module)
+    point = fit_map(module, data, epochs=epochs, batch_size=batch_size, lr=lr, weight_decay=weight_decay,
+                    optimizer=optimizer, momentum=momentum, validation=validation, patience=patience,
+                    seed=seed, progress=progress, device=device)
+    posterior = LastLayerLaplace.around(point, data.x_train.to(point.device), data.y_train.to(point.device),
+                                        prior_precision)
+    ensemble = posterior.draw(samples, seed=stream_seed(seed, 3) % 2**31)
+    ensemble.meta.update(
+        method="laplace", map_seconds=point.meta["seconds"], samples=samples,
+        prior_precision=posterior.prior_precision, prior_precision_chosen=prior_precision is None,
+        log_marginal_likelihood=posterior.log_marginal_likelihood, hessian="exact last-layer (GGN)",
+        seconds=round(point.meta["seconds"] + posterior.seconds, 4),
+    )
+    posterior.meta = dict(ensemble.meta)
+    return ensemble
+
+
+class LastLayerLaplace:
+    """N(mean, precision^-1) over the last Linear layer's flattened [weight | bias] rows.
+
+    Attributes
+    ----------
+    point : Ensemble
+        The MAP network (S = 1).
+    mean : Tensor of shape (P,)
+    precision : Tensor of shape (P, P)
+        Hessian of the negative log-likelihood plus ``prior_precision`` * I (float64).
+    prior_precision, log_marginal_likelihood, seconds : float
+    """
+
+    def __init__(self, point: Ensemble, mean: Tensor, hessian: Tensor, prior_precision: float,
+                 log_marginal_likelihood: float, seconds: float = 0.0):
+        self.point = point
+        self.mean = mean
+        self.hessian = hessian
+        self.prior_precision = float(prior_precision)
+        self.precision = hessian + self.prior_precision * torch.eye(len(mean), dtype=hessian.dtype)
+        self.log_marginal_likelihood = float(log_marginal_likelihood)
+        self.seconds = seconds
+        self.meta = dict(point.meta)
+
+    @classmethod
+    def around(cls, point: Ensemble, x: Tensor, y: Tensor, prior_precision: float | None) -> "LastLayerLaplace":
+        """Build the approximation at the MAP ensemble ``point`` from training data."""
+        import time
+
+        started = time.perf_counter()
+        body, weight_name, bias_name = _split(point)
+        # The curvature algebra is small and runs in float64 on the CPU whatever the device.
+        with torch.no_grad():
+            features = body(x).double().cpu()
+            mean = _flat_last_layer(point, weight_name, bias_name).cpu()
+            logits = point.logits(x)[0].double().cpu()
+        y = y.cpu()
+        probs = torch.softmax(logits, -1)
+        hessian = softmax_hessian(features, probs, bias=bias_name is not None)
+        log_lik = float(torch.log_softmax(logits, -1).gather(1, y.view(-1, 1)).sum())
+        eigenvalues = torch.linalg.eigvalsh(hessian).clamp_min(0.0)
+        if prior_precision is None:
+            prior_precision = optimise_prior_precision(log_lik, mean, eigenvalues)
+        evidence = log_marginal_likelihood(log_lik, mean, eigenvalues, prior_precision)
+        return cls(point, mean, hessian, prior_precision, evidence, time.perf_counter() - started)
+
+    @property
+    def covariance(self) -> Tensor:
+        return torch.cholesky_inverse(torch.linalg.cholesky(self.precision))
+
+    def draw(self, samples: int = 100, seed: int = 0) -> Ensemble:
+        """``samples`` draws of the last layer, the rest fixed at the MAP (seeded)."""
+        samples = check_int("samples", samples, low=1)
+        generator = torch.Generator().manual_seed(check_int("seed", seed, low=0))
+        noise = torch.randn(len(self.mean), samples, generator=generator, dtype=torch.float64)
+        upper = torch.linalg.cholesky(self.precision).T
+        draws = (self.mean.unsqueeze(1) + torch.linalg.solve_triangular(upper, noise, upper=True)).T
+        _, weight_name, bias_name = _split(self.point)
+        params = {k: v.expand(samples, *v.shape[1:]).clone() for k, v in self.point.params.items()}
+        weight = params[weight_name]
+        classes, width = weight.shape[1], weight.shape[2]
+        rows = draws.reshape(samples, classes, -1).to(device=weight.device, dtype=weight.dtype)
+        params[weight_name] = rows[:, :, :width].contiguous()
+        if bias_name is not None:
+            params[bias_name] = rows[:, :, width].contiguous()
+        meta = {**copy.deepcopy(self.meta), "samples": samples, "draw_seed": int(seed)}
+        return Ensemble(copy.deepcopy(self.point.template), params, meta=meta, posterior=self)
+
+    def to(self, device: Any = None, dtype: torch.dtype | None = None) -> "LastLayerLaplace":
+        """A copy whose MAP network (and so every draw) sits on another device or dtype; the
+        curvature stays in float64 on the CPU, where the draws are made."""
+        moved = copy.copy(self)
+        moved.point = self.point.to(device=device, dtype=dtype)
+        moved.meta = copy.deepcopy(self.meta)
+        return moved
+
+
+@dataclass(frozen=True)
+class GaussianApproximation:
+    """N(mean, covariance) with covariance = precision^-1; the log density at the mode."""
+
+    mean: Tensor
+    precision: Tensor
+    log_density_at_mode: float
+    iterations: int
+
+    @property
+    def covariance(self) -> Tensor:
+        return torch.cholesky_inverse(torch.linalg.cholesky(self.precision))
+
+
+def laplace_approximation(
+    log_density: Callable[[Tensor], Tensor], initial: Any, *, max_iterations: int = 100, tolerance: float = 1e-10,
+) -> GaussianApproximation:
+    """Find the mode of ``log_density`` by Newton's method and take the Hessian there.
+
+    Parameters
+    ----------
+    log_density : callable, Tensor of shape (P,) -> scalar Tensor
+        Twice differentiable by torch.autograd; should be concave near its mode.
+    initial : array of shape (P,)
+        Starting point (float64 is used throughout).
+    max_iterations : int
+    tolerance : float
+        Stop when the Newton step's norm falls below this.
+
+    Returns
+    -------
+    GaussianApproximation
+        ``precision`` is ``-hessian(log_density)`` at the mode (exact posterior
+        precision for a Gaussian likelihood with a Gaussian prior).
+    """
+    theta = as_float_tensor("initial", initial, ndim=1, dtype=torch.float64).clone()
+    max_iterations = check_int("max_iterations", max_iterations, low=1)
+    tolerance = check_float("tolerance", tolerance, low=0.0, low_open=True)
+    iterations = 0
+    for iterations in range(1, max_iterations + 1):
+        point = theta.clone().requires_grad_(True)
+        gradient = torch.autograd.grad(log_density(point), point)[0]
+        precision = -torch.autograd.functional.hessian(log_density, theta)
+        step = torch.linalg.solve(precision, gradient)
+        theta = _damped(log_density, theta, step)
+        if float(step.norm()) < tolerance:
+            break
+    precision = -torch.autograd.functional.hessian(log_density, theta)
+    return GaussianApproximation(theta, precision, float(log_density(theta)), iterations)
+
+
+def softmax_hessian(features: Tensor, probs: Tensor, bias: bool = True, chunk: int = 1024) -> Tensor:
+    """Hessian of the summed softmax cross-entropy w.r.t. a last Linear layer.
+
+    Parameters
+    ----------
+    features : Tensor of shape (N, H)
+        Inputs of the last layer.
+    probs : Tensor of shape (N, C)
+        Softmax outputs at the current parameters.
+    bias : bool
+        Append a constant 1 feature for the bias.
+
+    Returns
+    -------
+    Tensor of shape (C * H', C * H'), H' = H + bias
+        Ordered like ``torch.cat([weight, bias[:, None]], 1).flatten()`` (class-major):
+        sum_n (diag(p_n) - p_n p_n') kron phi_n phi_n'.
+    """
+    if bias:
+        features = torch.cat([features, features.new_ones(features.shape[0], 1)], 1)
+    n, width = features.shape
+    classes = probs.shape[1]
+    hessian = features.new_zeros(classes, width, classes, width)
+    for start in range(0, n, chunk):
+        phi, p = features[start:start + chunk], probs[start:start + chunk].to(features.dtype)
+        curvature = torch.diag_embed(p) - p.unsqueeze(2) * p.unsqueeze(1)  # [n, C, C]
+        weighted = curvature.unsqueeze(-1) * phi[:, None, None, :]  # [n, C, C, H']
+        hessian += torch.einsum("nijl,nk->ikjl", weighted, phi)
+    return hessian.reshape(classes * width, classes * width)
+
+
+def log_marginal_likelihood(log_likelihood: float, mode: Tensor, hessian_eigenvalues: Tensor,
+                            prior_precision: float) -> float:
+    """Laplace evidence with prior N(0, I / prior_precision):
+
+    log p(D | theta*) - prior_precision |theta*|^2 / 2 + P/2 log prior_precision
+    - 1/2 sum_i log(e_i + prior_precision), e_i the likelihood Hessian's eigenvalues.
+    """
+    size = mode.numel()
+    return float(
+        log_likelihood - 0.5 * prior_precision * float((mode.double() ** 2).sum())
+        + 0.5 * size * math.log(prior_precision) - 0.5 * float(torch.log(hessian_eigenvalues + prior_precision).sum())
+    )
+
+
+def optimise_prior_precision(log_likelihood: float, mode: Tensor, hessian_eigenvalues: Tensor,
+                             low: float = 1e-6, high: float = 1e6) -> float:
+    """The prior precision maximising :func:`log_marginal_likelihood` (log grid, then Brent)."""
+    from scipy.optimize import minimize_scalar
+
+    def loss(log10_precision: float) -> float:
+        return -log_marginal_likelihood(log_likelihood, mode, hessian_eigenvalues, 10.0**log10_precision)
+
+    grid = torch.linspace(math.log10(low), math.log10(high), 121).tolist()
+    values = [loss(g) for g in grid]
+    best = min(range(len(grid)), key=values.__getitem__)
+    lo, hi = grid[max(best - 1, 0)], grid[min(best + 1, len(grid) - 1)]
+    result = minimize_scalar(loss, bounds=(lo, hi), method="bounded", options={"xatol": 1e-6})
+    return float(10.0 ** (result.x if result.fun <= values[best] else grid[best]))
+
+
+def probit_approximation(mean: Tensor, variance: Tensor) -> Tensor:
+    """E[sigmoid(a)] for a ~ N(mean, variance) ~= sigmoid(kappa * mean),
+    kappa = (1 + pi variance / 8)^(-1/2) (MacKay 1992; Bishop 2006, eq. 4.153)."""
+    mean, variance = torch.as_tensor(mean), torch.as_tensor(variance)
+    if bool((variance < 0).any()):
+        raise ValueError("variance must be >= 0 everywhere; got a negative value")
+    return torch.sigmoid(mean / torch.sqrt(1.0 + math.pi * variance / 8.0))
+
+
+def _damped(log_density, theta: Tensor, step: Tensor) -> Tensor:
+    """theta + step, halved until the log density does not fall (Newton can overshoot)."""
+    current = float(log_density(theta))
+    for _ in range(30):
+        candidate = theta + step
+        if float(log_density(candidate)) >= current - 1e-12 * abs(current):
+            return candidate
+        step = step / 2
+    return theta
+
+
+def _last_linear(module: nn.Module) -> int:
+    if not isinstance(module, nn.Sequential) or not len(module) or not isinstance(module[-1], nn.Linear):
+        last = type(module[-1]).__name__ if isinstance(module, nn.Sequential) and len(module) else None
+        raise ValueError(f"module must be an nn.Sequential ending in an nn.Linear layer for last-layer Laplace; "
+                         f"got {type(module).__name__}" + (f" ending in {last}" if last else ""))
+    return len(module) - 1
+
+
+def _split(point: Ensemble):
+    index = _last_linear(point.template)
+    member = point.module(0)
+    body = nn.Sequential(*list(member)[:index]).eval()
+    bias = f"{index}.bias" if member[index].bias is not None else None
+    return body, f"{index}.weight", bias
+
+
+def _flat_last_layer(point: Ensemble, weight_name: str, bias_name: str | None) -> Tensor:
+    weight = point.params[weight_name][0].double()
+    if bias_name is None:
+        return weight.flatten()
+    return torch.cat([weight, point.params[bias_name][0].double().unsqueeze(1)], 1).flatten()

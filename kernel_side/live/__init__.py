@@ -1,0 +1,1 @@
+"""The live engine behind the widgets: explorer state, view parts, coalescing worker, contours."""

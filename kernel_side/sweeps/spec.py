@@ -1,0 +1,327 @@
+"""Checking and expanding sweep definitions into one configuration dict per run.
+
+A sweep is a grid over data sets, architectures, posterior methods (with their
+hyper-parameters), training sizes and seeds, plus one evaluation block shared by every
+run. Definitions come from Python keyword arguments or from a TOML file with the same
+fields; either way every key is checked here and a bad one is refused with a message that
+names it, e.g. ``sweep.methods[2]: unknown method 'mcmc'``.
+"""
+from __future__ import annotations
+
+import hashlib
+import inspect
+import itertools
+import json
+import math
+from pathlib import Path
+from typing import Any
+
+try:
+    import tomllib
+except ImportError:  # Python 3.10: the same parser, published as tomli
+    import tomli as tomllib
+
+from jostle import datasets as _datasets
+from jostle.posterior.architectures import ACTIVATIONS
+
+__all__ = [
+    "SweepConfigError", "METHODS", "DETERMINISTIC_METHODS", "ATTACK_METHODS", "DATASETS",
+    "run_key", "canonical_json", "read_toml", "check_sweep", "expand", "check_run",
+]
+
+#: posterior method -> name of the jostle function that fits it
+METHODS: dict[str, str] = {
+    "map": "fit_map",
+    "deep_ensemble": "fit_deep_ensemble",
+    "dropout": "fit_dropout",
+    "vi": "fit_vi",
+    "laplace": "fit_laplace",
+    "hmc": "fit_hmc",
+}
+#: methods that give a single network (S = 1); every other method is Bayesian
+DETERMINISTIC_METHODS = ("map",)
+ATTACK_METHODS = ("fgsm", "pgd", "cw", "spsa", "square")
+DATASETS = ("moons", "circles", "spirals", "digits", "leak_alarm")
+_TARGETS = ("predicted", "true")
+_OBJECTIVES = ("expected_loss", "predictive", "margin")
+# Arguments the sweep sets itself and so may not appear among a method's hyper-parameters.
+_RESERVED_FIT_ARGS = ("net", "model", "module", "data", "dataset", "seed", "device", "progress")
+_SWEEP_KEYS = ("name", "datasets", "architectures", "methods", "train_sizes", "seeds", "evaluation")
+_EVALUATION_DEFAULTS = {"budgets": [0.1], "points": 100, "ece_bins": 15, "target": "predicted"}
+
+
+class SweepConfigError(ValueError):
+    """A sweep or run definition with an unknown key or a bad value (the message names the key)."""
+
+
+def canonical_json(value: Any) -> str:
+    """Sorted keys, no spaces, ASCII: the same configuration always gives the same text."""
+    return json.dumps(value, sort_keys=True, separators=(",", ":"), ensure_ascii=True, allow_nan=False)
+
+
+def run_key(config: dict) -> str:
+    """The stable identity of a run: sha256 (hex) of the canonical JSON of its configuration."""
+    return hashlib.sha256(canonical_json(config).encode("ascii")).hexdigest()
+
+
+def read_toml(path: str | Path) -> dict:
+    """Parse a TOML file, turning a missing file or a syntax error into a one-line message."""
+    path = Path(path)
+    if not path.is_file():
+        raise SweepConfigError(f"config file does not exist: {path}")
+    try:
+        return tomllib.loads(path.read_text(encoding="utf-8"))
+    except tomllib.TOMLDecodeError as err:
+        raise SweepConfigError(f"{path} is not valid TOML: {err}") from None
+    except UnicodeDecodeError:
+        raise SweepConfigError(f"{path} is not a UTF-8 text file") from None
+
+
+def check_sweep(spec: dict, where: str = "sweep") -> dict:
+    """Check a sweep definition and return it normalised (defaults filled in).
+
+    Raises
+    ------
+    SweepConfigError
+        Naming the first unknown key or bad value, e.g. ``sweep.seeds[1]: ...``.
+    """
+    _known_keys(spec, _SWEEP_KEYS, where)
+    for required in ("datasets", "methods"):
+        if required not in spec:
+            raise SweepConfigError(f"{where}: missing key {required!r}")
+    name = spec.get("name", "sweep")
+    if not isinstance(name, str) or not name:
+        raise SweepConfigError(f"{where}.name: must be a non-empty string; got {name!r}")
+    sizes = _int_list(spec.get("train_sizes", [200]), f"{where}.train_sizes", low=2)
+    seeds = _int_list(spec.get("seeds", [0]), f"{where}.seeds", low=0)
+    data = [_check_data(d, f"{where}.datasets[{i}]", size)
+            for i, d in enumerate(_list(spec["datasets"], f"{where}.datasets")) for size in sizes]
+    archs = [_check_architecture(a, f"{where}.architectures[{i}]")
+             for i, a in enumerate(_list(spec.get("architectures", [{}]), f"{where}.architectures"))]
+    methods = [setting for i, m in enumerate(_list(spec["methods"], f"{where}.methods"))
+               for setting in _check_method(m, f"{where}.methods[{i}]")]
+    evaluation = check_evaluation(spec.get("evaluation", {}), f"{where}.evaluation")
+    return {"name": name, "data": data, "architectures": archs, "methods": methods,
+            "seeds": seeds, "evaluation": evaluation}
+
+
+def expand(checked: dict) -> list[dict]:
+    """Every run of a checked sweep, as configuration dicts, without duplicates, in grid order."""
+    runs, seen = [], set()
+    for data, arch, method, seed in itertools.product(
+        checked["data"], checked["architectures"], checked["methods"], checked["seeds"]
+    ):
+        config = {"data": data, "architecture": arch, "method": method, "seed": seed,
+                  "evaluation": checked["evaluation"]}
+        key = run_key(config)
+        if key not in seen:
+            seen.add(key)
+            runs.append(config)
+    return runs
+
+
+def check_run(spec: dict, where: str = "run", need_evaluation: bool = True) -> dict:
+    """Check one run's fields (``data``, ``architecture``, ``method``, ``seed``, ``evaluation``)."""
+    _known_keys(spec, ("data", "architecture", "method", "seed", "evaluation"), where)
+    for required in ("data", "method"):
+        if required not in spec:
+            raise SweepConfigError(f"{where}: missing key {required!r}")
+    data = dict(_table(spec["data"], f"{where}.data"))
+    size = data.pop("n_train", 200)
+    settings = _check_method(spec["method"], f"{where}.method")
+    if len(settings) != 1:
+        raise SweepConfigError(f"{where}.method: a single run takes one setting; remove 'grid'")
+    config = {
+        "data": _check_data(data, f"{where}.data", _int(size, f"{where}.data.n_train", low=2)),
+        "architecture": _check_architecture(spec.get("architecture", {}), f"{where}.architecture"),
+        "method": settings[0],
+        "seed": _int(spec.get("seed", 0), f"{where}.seed", low=0),
+    }
+    if need_evaluation or "evaluation" in spec:
+        config["evaluation"] = check_evaluation(spec.get("evaluation", {}), f"{where}.evaluation")
+    return config
+
+
+def check_evaluation(spec: Any, where: str) -> dict:
+    """Budgets, attacks and scoring options shared by every run of a sweep."""
+    spec = _table(spec, where)
+    _known_keys(spec, ("budgets", "attacks", "points", "ece_bins", "target"), where)
+    budgets = _list(spec.get("budgets", _EVALUATION_DEFAULTS["budgets"]), f"{where}.budgets")
+    budgets = [_float(b, f"{where}.budgets[{i}]", low=0.0) for i, b in enumerate(budgets)]
+    attacks = _list(spec.get("attacks", [{"method": "fgsm"}, {"method": "pgd"}]), f"{where}.attacks")
+    attacks = [_check_attack(a, f"{where}.attacks[{i}]") for i, a in enumerate(attacks)]
+    labels = [a["label"] for a in attacks]
+    for i, label in enumerate(labels):
+        if labels.index(label) != i:
+            raise SweepConfigError(f"{where}.attacks[{i}]: label {label!r} repeats attacks[{labels.index(label)}]")
+    target = spec.get("target", _EVALUATION_DEFAULTS["target"])
+    if target not in _TARGETS:
+        raise SweepConfigError(f"{where}.target: must be one of {_listing(_TARGETS)}; got {target!r}")
+    return {
+        "budgets": budgets,
+        "attacks": attacks,
+        "points": _int(spec.get("points", _EVALUATION_DEFAULTS["points"]), f"{where}.points", low=1),
+        "ece_bins": _int(spec.get("ece_bins", _EVALUATION_DEFAULTS["ece_bins"]), f"{where}.ece_bins", low=1),
+        "target": target,
+    }
+
+
+def fit_function(method: str):
+    """The jostle function that fits ``method``, or None while this installation lacks it."""
+    import jostle
+
+    return getattr(jostle, METHODS[method], None)
+
+
+# ---------------------------------------------------------------------- private helpers
+def _check_data(spec: Any, where: str, n_train: int) -> dict:
+    spec = dict(_table(spec, where))
+    name = spec.pop("name", None)
+    if name not in DATASETS:
+        raise SweepConfigError(f"{where}.name: unknown data set {name!r} (known: {_listing(DATASETS)})")
+    loader = getattr(_datasets, name)
+    parameters = inspect.signature(loader).parameters
+    allowed = [p for p in parameters if p != "n_train"]
+    if "n_train" in spec:
+        raise SweepConfigError(f"{where}.n_train: set training sizes with sweep.train_sizes")
+    _known_keys(spec, allowed, where)
+    args = {p: spec.get(p, parameters[p].default) for p in allowed}
+    try:
+        loaded = loader(**args) if name == "digits" else loader(n_train=n_train, **args)
+    except (ValueError, TypeError) as err:
+        raise SweepConfigError(f"{where}: {err}") from None
+    if name == "digits" and n_train > loaded.x_train.shape[0]:
+        raise SweepConfigError(
+            f"{where}: training size must be <= {loaded.x_train.shape[0]} (the digits training split); got {n_train}"
+        )
+    return {"name": name, "n_train": n_train, **args}
+
+
+def _check_architecture(spec: Any, where: str) -> dict:
+    spec = _table(spec, where)
+    _known_keys(spec, ("depth", "width", "activation"), where)
+    activation = spec.get("activation", "tanh")
+    if activation not in ACTIVATIONS:
+        raise SweepConfigError(f"{where}.activation: unknown activation {activation!r} (known: {_listing(ACTIVATIONS)})")
+    return {
+        "depth": _int(spec.get("depth", 2), f"{where}.depth", low=0),
+        "width": _int(spec.get("width", 32), f"{where}.width", low=1),
+        "activation": activation,
+    }
+
+
+def _check_method(spec: Any, where: str) -> list[dict]:
+    """One method entry -> its settings (several when it holds a ``grid`` table)."""
+    if isinstance(spec, str):
+        spec = {"name": spec}
+    spec = dict(_table(spec, where))
+    name = spec.pop("name", None)
+    if name not in METHODS:
+        raise SweepConfigError(f"{where}: unknown method {name!r} (known: {_listing(METHODS)})")
+    grid = _table(spec.pop("grid", {}), f"{where}.grid")
+    for key in grid:
+        if key in spec:
+            raise SweepConfigError(f"{where}.grid.{key}: also set as a fixed hyper-parameter")
+    for key, value in {**spec, **{k: None for k in grid}}.items():
+        _check_hyperparameter_name(name, key, where)
+        if key in spec:
+            _check_plain(value, f"{where}.{key}")
+    axes = [[(key, _check_plain(v, f"{where}.grid.{key}[{i}]")) for i, v in enumerate(_list(values, f"{where}.grid.{key}"))]
+            for key, values in sorted(grid.items())]
+    return [{"name": name, **spec, **dict(choice)} for choice in itertools.product(*axes)]
+
+
+def _check_hyperparameter_name(method: str, key: str, where: str) -> None:
+    if key in _RESERVED_FIT_ARGS:
+        raise SweepConfigError(f"{where}.{key}: set by the sweep itself, not a hyper-parameter")
+    fit = fit_function(method)
+    if fit is None:
+        return  # cannot list the hyper-parameters of a fit this installation lacks
+    parameters = inspect.signature(fit).parameters
+    if any(p.kind is inspect.Parameter.VAR_KEYWORD for p in parameters.values()):
+        return
+    allowed = [p for p in list(parameters)[2:] if p not in _RESERVED_FIT_ARGS]
+    if key not in allowed:
+        raise SweepConfigError(
+            f"{where}.{key}: unknown hyper-parameter of {METHODS[method]} (known: {_listing(allowed)})"
+        )
+
+
+def _check_attack(spec: Any, where: str) -> dict:
+    if isinstance(spec, str):
+        spec = {"method": spec}
+    spec = _table(spec, where)
+    _known_keys(spec, ("method", "norm", "steps", "samples", "objective", "label"), where)
+    method = spec.get("method")
+    if method not in ATTACK_METHODS:
+        raise SweepConfigError(f"{where}.method: unknown attack {method!r} (known: {_listing(ATTACK_METHODS)})")
+    norm = str(spec.get("norm", "inf"))
+    if norm not in ("inf", "2"):
+        raise SweepConfigError(f"{where}.norm: must be 'inf' or '2'; got {spec.get('norm')!r}")
+    objective = spec.get("objective", "expected_loss")
+    if objective not in _OBJECTIVES:
+        raise SweepConfigError(f"{where}.objective: must be one of {_listing(_OBJECTIVES)}; got {objective!r}")
+    steps = _int(spec.get("steps", 1 if method == "fgsm" else 20), f"{where}.steps", low=1)
+    samples = spec.get("samples")
+    samples = None if samples is None else _int(samples, f"{where}.samples", low=1)
+    label = spec.get("label") or f"{method}-{norm}" + (f"-s{samples}" if samples else "")
+    if not isinstance(label, str):
+        raise SweepConfigError(f"{where}.label: must be a string; got {label!r}")
+    return {"method": method, "norm": norm, "steps": steps, "samples": samples,
+            "objective": objective, "label": label}
+
+
+def _known_keys(spec: dict, allowed, where: str) -> None:
+    for key in spec:
+        if key not in allowed:
+            raise SweepConfigError(f"{where}: unknown key {key!r} (allowed: {_listing(allowed)})")
+
+
+def _table(value: Any, where: str) -> dict:
+    if not isinstance(value, dict):
+        raise SweepConfigError(f"{where}: must be a table of keys; got {_brief(value)}")
+    return value
+
+
+def _list(value: Any, where: str) -> list:
+    if isinstance(value, (str, bytes, dict)) or not isinstance(value, (list, tuple)):
+        raise SweepConfigError(f"{where}: must be a list; got {_brief(value)}")
+    if not value:
+        raise SweepConfigError(f"{where}: must not be empty")
+    return list(value)
+
+
+def _int(value: Any, where: str, low: int) -> int:
+    if isinstance(value, bool) or not isinstance(value, int) or value < low:
+        raise SweepConfigError(f"{where}: must be an integer >= {low}; got {_brief(value)}")
+    return int(value)
+
+
+def _int_list(value: Any, where: str, low: int) -> list[int]:
+    return [_int(v, f"{where}[{i}]", low) for i, v in enumerate(_list(value, where))]
+
+
+def _float(value: Any, where: str, low: float) -> float:
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value) or value < low:
+        raise SweepConfigError(f"{where}: must be a finite number >= {low:g}; got {_brief(value)}")
+    return float(value)
+
+
+def _check_plain(value: Any, where: str) -> Any:
+    """Hyper-parameter values must survive JSON unchanged (numbers, strings, booleans, lists)."""
+    if isinstance(value, float) and not math.isfinite(value):
+        raise SweepConfigError(f"{where}: must be finite; got {value!r}")
+    if isinstance(value, (list, tuple)):
+        return [_check_plain(v, f"{where}[{i}]") for i, v in enumerate(value)]
+    if value is None or not isinstance(value, (bool, int, float, str)):
+        raise SweepConfigError(f"{where}: must be a number, string, boolean or list; got {_brief(value)}")
+    return value
+
+
+def _listing(names) -> str:
+    return ", ".join(repr(n) for n in names)
+
+
+def _brief(value: Any) -> str:
+    text = repr(value)
+    return text if len(text) <= 60 else text[:57] + "..."
