@@ -6,9 +6,11 @@ from jostle.datasets import Dataset
 from jostle.posterior.ensemble import DEFAULT_MEMORY_BUDGET, Ensemble
 from jostle.posterior.architectures import build_architecture, init_parameters, mlp, register_architecture
 from jostle.posterior.prediction import Prediction, entropy
-from jostle.files.posterior_file import FormatError, load
+from jostle.files.posterior_file import FormatError
+from jostle.posterior.loading import load
 from jostle.posterior.demo_posteriors import DEMO_POSTERIORS, demo_posterior
-from jostle.fitting.hmc.diagnostics import ConvergenceWarning, SamplingInterruptedWarning, describe
+from jostle.fitting.hmc.diagnostics import ConvergenceWarning, SamplingInterruptedWarning
+from jostle.posterior.description import describe
 from jostle.fitting.hmc.sampler import HMCDraws, HMCState, sample_hmc
 from jostle.fitting.hmc.fit import fit_hmc
 from jostle.attacks.problem import AttackResult

@@ -16,7 +16,7 @@ PROBE = (
     "import jostle, jostle.widgets, pathlib; "
     "print(pathlib.Path(jostle.__file__).resolve()); "
     "print(jostle.widgets.asset_path('theme.css')); "
-    "from jostle._resources import demo_notebooks_dir; print(demo_notebooks_dir())"
+    "from importlib import resources; print(resources.files('jostle.demo_notebooks'))"
 )
 
 
@@ -50,7 +50,7 @@ def test_wheel_installs_and_finds_its_files(tmp_path):
     (wheel,) = wheel_dir.glob("jostle-*.whl")
     names = set(zipfile.ZipFile(wheel).namelist())
     demo = ("01_first_tour", "02_fading_gradient", "03_meter_cards", "04_robustness_vs_accuracy", "05_bring_your_own")
-    for expected in ("jostle/__init__.py", "jostle/ensemble.py", "jostle/widgets/__init__.py",
+    for expected in ("jostle/__init__.py", "jostle/posterior/ensemble.py", "jostle/attacks/problem.py", "jostle/widgets/__init__.py",
                      "jostle/js/theme.css", "jostle/data/leak_alarm_hmc.safetensors",
                      "jostle/data/leak_alarm_map.safetensors", *(f"jostle/demo_notebooks/{n}.ipynb" for n in demo)):
         assert expected in names, f"{expected} missing from the wheel"

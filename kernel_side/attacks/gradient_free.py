@@ -15,7 +15,7 @@ import numpy as np
 import torch
 from torch import Tensor
 
-from jostle.common.checks import _show, check_float, check_int
+from jostle.common.checks import show_value, check_float, check_int
 from jostle.attacks.problem import AttackProblem, AttackResult
 from jostle.attacks.gradient_methods import finish
 
@@ -64,7 +64,7 @@ def spsa(problem: AttackProblem, steps: int = 40, step_size: Any = None, delta: 
     delta = check_float("delta", delta, low=0.0, low_open=True)
     directions = check_int("directions", directions, low=1)
     if not isinstance(random_start, bool):
-        raise ValueError(f"random_start must be True or False; got {_show(random_start)}")
+        raise ValueError(f"random_start must be True or False; got {show_value(random_start)}")
     if step_size is None:
         step_b = 2.5 * problem.eps_b / steps
     else:
@@ -176,7 +176,7 @@ def _image_shape(problem: AttackProblem, image_shape: Any) -> tuple[int, ...] | 
     try:
         shape = tuple(int(s) for s in image_shape)
     except (TypeError, ValueError):
-        raise ValueError(f"image_shape must be (H, W) or (C, H, W); got {_show(image_shape)}") from None
+        raise ValueError(f"image_shape must be (H, W) or (C, H, W); got {show_value(image_shape)}") from None
     features = int(problem.x[0].numel())
     if len(shape) not in (2, 3) or int(np.prod(shape)) != features:
         raise ValueError(f"image_shape must be (H, W) or (C, H, W) multiplying to {features} features; "

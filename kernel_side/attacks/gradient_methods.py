@@ -15,7 +15,7 @@ from typing import Any
 import torch
 from torch import Tensor
 
-from jostle.common.checks import _show, check_float, check_int
+from jostle.common.checks import show_value, check_float, check_int
 from jostle.attacks.problem import AttackProblem, AttackResult, build_problem, compute_threads, norm_of
 
 __all__ = ["attack", "METHODS"]
@@ -99,7 +99,7 @@ def attack(ens, x: Any, y: Any = None, method: str = "pgd", eps: Any = 0.1, norm
     from jostle.attacks.gradient_free import square, spsa
 
     if not isinstance(method, str) or method not in METHODS:
-        raise ValueError(f"method must be one of {', '.join(map(repr, METHODS))}; got {_show(method)}")
+        raise ValueError(f"method must be one of {', '.join(map(repr, METHODS))}; got {show_value(method)}")
     runner = {"fgsm": fgsm, "pgd": pgd, "cw": cw, "spsa": spsa, "square": square}[method]
     allowed = [p for p in inspect.signature(runner).parameters if p not in ("problem", "steps")]
     unknown = sorted(set(options) - set(allowed))
@@ -107,7 +107,7 @@ def attack(ens, x: Any, y: Any = None, method: str = "pgd", eps: Any = 0.1, norm
         raise ValueError(f"method {method!r} takes options {allowed}; got unknown {unknown}")
     steps = check_int("steps", steps, low=1)
     if method == "cw" and norm != "2":
-        raise ValueError(f"method 'cw' is an L2 attack: norm must be '2'; got {_show(norm)}")
+        raise ValueError(f"method 'cw' is an L2 attack: norm must be '2'; got {show_value(norm)}")
     problem = build_problem(ens, x, y, eps=eps, norm=norm, objective=objective, samples=samples,
                             resample=resample, target=target, bounds=bounds, seed=seed, judge=judge,
                             per_point_eps=method in ("pgd", "fgsm"))
@@ -141,7 +141,7 @@ def pgd(problem: AttackProblem, steps: int = 40, step_size: Any = None, random_s
     """
     restarts = check_int("restarts", restarts, low=1)
     if not isinstance(random_start, bool):
-        raise ValueError(f"random_start must be True or False; got {_show(random_start)}")
+        raise ValueError(f"random_start must be True or False; got {show_value(random_start)}")
     if restarts > 1 and not random_start:
         raise ValueError(f"restarts > 1 needs random_start=True (otherwise every run is the same); got {restarts}")
     if step_size is None:

@@ -13,7 +13,7 @@ from typing import Any
 import numpy as np
 import torch
 
-from jostle.common.checks import _show, check_float, check_int
+from jostle.common.checks import show_value, check_float, check_int
 from jostle.attacks.gradient_methods import attack
 
 __all__ = ["masking_check", "MaskingReport"]
@@ -92,7 +92,7 @@ def masking_check(ens, x: Any, y: Any = None, eps: float = 0.1, norm: str = "inf
     if gradient_free is None:
         gradient_free = "square" if norm == "inf" else "spsa"
     if gradient_free not in ("square", "spsa"):
-        raise ValueError(f"gradient_free must be one of 'square', 'spsa'; got {_show(gradient_free)}")
+        raise ValueError(f"gradient_free must be one of 'square', 'spsa'; got {show_value(gradient_free)}")
     few = max(1, len(ens) // 10) if few_samples is None else check_int("few_samples", few_samples, low=1,
                                                                           high=len(ens))
     common = dict(norm=norm, bounds=bounds, seed=seed)
@@ -129,11 +129,11 @@ def masking_check(ens, x: Any, y: Any = None, eps: float = 0.1, norm: str = "inf
 # ------------------------------------------------------------------ private helpers
 def _scales(budget_scales: Any) -> list[float]:
     if isinstance(budget_scales, (int, float, str)) or not hasattr(budget_scales, "__iter__"):
-        raise ValueError(f"budget_scales must be a sequence of positive floats; got {_show(budget_scales)}")
+        raise ValueError(f"budget_scales must be a sequence of positive floats; got {show_value(budget_scales)}")
     scales = sorted({check_float("budget_scales entry", _scalar(s), low=0.0, low_open=True)
                      for s in budget_scales})
     if len(scales) < 2:
-        raise ValueError(f"budget_scales must hold at least two distinct scales; got {_show(budget_scales)}")
+        raise ValueError(f"budget_scales must hold at least two distinct scales; got {show_value(budget_scales)}")
     return scales
 
 

@@ -32,7 +32,7 @@ import numpy as np
 import torch
 from torch import Tensor
 
-from jostle.common.checks import (_show, as_label_tensor, check_choice, check_devices, check_float, check_int, check_real_dtype,
+from jostle.common.checks import (show_value, as_label_tensor, check_choice, check_devices, check_float, check_int, check_real_dtype,
                       check_representable, check_seed)
 from jostle.common.threads import torch_threads
 from jostle.posterior.forward import MLPPlan
@@ -360,7 +360,7 @@ def build_problem(ens, x: Any, y: Any, *, eps: Any, norm: str, objective: str, s
     judge = check_choice("judge", judge, JUDGES)
     seed = check_seed(seed)
     if not isinstance(resample, bool):
-        raise ValueError(f"resample must be True or False; got {_show(resample)}")
+        raise ValueError(f"resample must be True or False; got {show_value(resample)}")
     x = _as_points(ens, x)
     n = int(x.shape[0])
     eps_t = _as_eps(eps, n, x, per_point_eps)
@@ -431,7 +431,7 @@ def _as_points(ens, x: Any) -> Tensor:
         try:
             x = torch.as_tensor(np.asarray(x), dtype=ens.dtype)
         except (TypeError, ValueError, RuntimeError):
-            raise ValueError(f"x must be a numeric array of shape (n_points, ...); got {_show(x)}") from None
+            raise ValueError(f"x must be a numeric array of shape (n_points, ...); got {show_value(x)}") from None
     if x.ndim < 2:
         raise ValueError(f"x must have shape (n_points, *input_shape); got shape {tuple(x.shape)} "
                          f"(use x[None] for a single point)")
@@ -452,7 +452,7 @@ def _as_eps(eps: Any, n: int, x: Tensor, per_point: bool) -> Tensor:
         if values.numel() != n:
             raise ValueError(f"eps must be a float or hold one budget per point ({n}); got {values.numel()}")
         if not bool(torch.isfinite(values).all()) or bool((values < 0).any()):
-            raise ValueError(f"eps must hold finite floats >= 0; got {_show(values)}")
+            raise ValueError(f"eps must hold finite floats >= 0; got {show_value(values)}")
         return values.to(x.device)
     value = check_representable("eps", check_float("eps", eps, low=0.0), x.dtype)
     return torch.full((n,), value, dtype=x.dtype, device=x.device)
@@ -469,7 +469,7 @@ def _check_samples(ens, samples: Any, resample: bool) -> Any:
     if isinstance(samples, (int, np.integer)):
         return check_int("samples", int(samples), low=1, high=size)
     if resample:
-        raise ValueError(f"resample=True needs samples to be an int k; got {_show(samples)}")
+        raise ValueError(f"resample=True needs samples to be an int k; got {show_value(samples)}")
     index = ens._indices(samples)
     if index.numel() == 0:
         raise ValueError("samples must select at least one member; got an empty selection")
@@ -484,7 +484,7 @@ def _resolve_bounds(ens, bounds: Any, x: Tensor) -> tuple[Tensor, Tensor] | None
         if bounds is None:
             return None
     if not isinstance(bounds, (tuple, list)) or len(bounds) != 2:
-        raise ValueError(f"{source} must be a pair (lo, hi); got {_show(bounds)}")
+        raise ValueError(f"{source} must be a pair (lo, hi); got {show_value(bounds)}")
     shape = tuple(x.shape[1:])
     features = int(np.prod(shape))
     pair = []
@@ -493,13 +493,13 @@ def _resolve_bounds(ens, bounds: Any, x: Tensor) -> tuple[Tensor, Tensor] | None
         try:
             tensor = torch.as_tensor(np.asarray(array, dtype=np.float64), dtype=x.dtype)
         except (TypeError, ValueError):
-            raise ValueError(f"{source} {side} must be numeric; got {_show(value)}") from None
+            raise ValueError(f"{source} {side} must be numeric; got {show_value(value)}") from None
         if tensor.numel() not in (1, features):
             raise ValueError(f"{source} {side} must be a scalar or hold {features} values; got {tensor.numel()}")
         pair.append(tensor.expand(features).reshape(shape).to(x.device))
     lo, hi = pair
     if bool((lo > hi).any()):
-        raise ValueError(f"{source} must have lo <= hi in every feature; got lo={_show(lo)}, hi={_show(hi)}")
+        raise ValueError(f"{source} must have lo <= hi in every feature; got lo={show_value(lo)}, hi={show_value(hi)}")
     _check_inside(x, lo, hi, source)
     return lo, hi
 

@@ -15,7 +15,7 @@ import torch
 from torch import Tensor
 from torch.func import functional_call, grad, vmap
 
-from jostle.common.checks import _show, check_choice, check_devices, check_finite, check_int, check_real_dtype, check_seed
+from jostle.common.checks import show_value, check_choice, check_devices, check_finite, check_int, check_real_dtype, check_seed
 import jostle.attacks.problem as attack_core
 from jostle.posterior.forward import MLPPlan
 from jostle.posterior.planned_gradient import ExpectedLossGradient
@@ -268,7 +268,7 @@ def softmax_robustness(ens, x: Any, x_adv: Any, kind: str = "max", samples: Any 
     """
     kind = check_choice("kind", kind, ("max", "tv"))
     if not isinstance(reduce, bool):
-        raise ValueError(f"reduce must be True or False; got {_show(reduce)}")
+        raise ValueError(f"reduce must be True or False; got {show_value(reduce)}")
     x = _as_batch(ens, x, "x")
     x_adv = _as_batch(ens, x_adv, "x_adv")
     if x.shape != x_adv.shape:
@@ -284,7 +284,7 @@ def _sample_counts(sample_counts: Any, members: int) -> list[int]:
     if sample_counts is None:
         return [c for c in DEFAULT_SAMPLE_COUNTS if c <= members]
     if isinstance(sample_counts, (int, str)) or not hasattr(sample_counts, "__iter__"):
-        raise ValueError(f"sample_counts must be a sequence of integers; got {_show(sample_counts)}")
+        raise ValueError(f"sample_counts must be a sequence of integers; got {show_value(sample_counts)}")
     counts = [check_int("sample_counts entry", int(c) if isinstance(c, np.integer) else c, low=1, high=members)
               for c in sample_counts]
     if not counts:
@@ -370,7 +370,7 @@ def _as_batch(ens, x: Any, name: str) -> Tensor:
         try:
             x = torch.as_tensor(np.asarray(x), dtype=ens.dtype)
         except (TypeError, ValueError):
-            raise ValueError(f"{name} must be a numeric array of shape (n_points, ...); got {_show(x)}") from None
+            raise ValueError(f"{name} must be a numeric array of shape (n_points, ...); got {show_value(x)}") from None
     if x.ndim < 2:
         raise ValueError(f"{name} must have shape (n_points, *input_shape); got shape {tuple(x.shape)}")
     check_devices(name, x.device, "ens", ens.device)

@@ -6,15 +6,13 @@ its parsers and sets ``handler`` (a function ``args -> int`` exit code) as a def
 from __future__ import annotations
 
 import argparse
-import importlib
 import sys
 
+from jostle.cli import demo, sweep
+from jostle.cli.errors import CommandError
+
 # Modules that add subcommands; each has register(subparsers).
-COMMAND_MODULES: list[str] = ["cli_sweep", "cli_demo"]
-
-
-class CommandError(Exception):
-    """A failure to report as one line on stderr with a non-zero exit code."""
+COMMAND_MODULES = (sweep, demo)
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -23,8 +21,8 @@ def build_parser() -> argparse.ArgumentParser:
         description="Explore how a Bayesian neural network's posterior predictive holds up under attack.",
     )
     subparsers = parser.add_subparsers(dest="command", metavar="COMMAND")
-    for name in COMMAND_MODULES:
-        importlib.import_module(f"jostle.{name}").register(subparsers)
+    for module in COMMAND_MODULES:
+        module.register(subparsers)
     return parser
 
 
@@ -44,10 +42,3 @@ def main(argv: list[str] | None = None) -> int:
         print(f"jostle {args.command}: interrupted", file=sys.stderr)
         return 130
 
-
-if __name__ == "__main__":
-    # Under `python -m jostle.cli` this file is __main__; subcommand modules raise the
-    # CommandError of jostle.cli, so dispatch through that module.
-    from jostle.cli.commands import main as _main
-
-    raise SystemExit(_main())

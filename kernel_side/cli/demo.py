@@ -22,7 +22,7 @@ from pathlib import Path
 from typing import Iterator
 
 from jostle.common.checks import check_int
-from jostle.cli.commands import CommandError
+from jostle.cli.errors import CommandError
 
 __all__ = ["FIRST_TOUR", "CopyReport", "copy_demo_notebooks", "register"]
 

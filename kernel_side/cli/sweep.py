@@ -10,7 +10,7 @@ import argparse
 import json
 from pathlib import Path
 
-from jostle.cli.commands import CommandError
+from jostle.cli.errors import CommandError
 
 __all__ = ["register"]
 

@@ -14,7 +14,7 @@ import torch
 from torch import Tensor
 
 
-def _show(value: Any) -> str:
+def show_value(value: Any) -> str:
     if isinstance(value, Tensor):
         if value.numel() <= 6:
             return repr(value.tolist())
@@ -37,7 +37,7 @@ def check_int(name: str, value: Any, *, low: int | None = None, high: int | None
     elif high is not None:
         rule = f"an integer <= {high}"
     if isinstance(value, bool) or not isinstance(value, Integral):
-        raise ValueError(f"{name} must be {rule}; got {_show(value)}")
+        raise ValueError(f"{name} must be {rule}; got {show_value(value)}")
     value = int(value)
     if (low is not None and value < low) or (high is not None and value > high):
         raise ValueError(f"{name} must be {rule}; got {value}")
@@ -61,7 +61,7 @@ def check_float(
         parts.append(f"{'<' if high_open else '<='} {high:g}")
     rule = "a finite float" + (" " + " and ".join(parts) if parts else "")
     if isinstance(value, bool) or not isinstance(value, Real):
-        raise ValueError(f"{name} must be {rule}; got {_show(value)}")
+        raise ValueError(f"{name} must be {rule}; got {show_value(value)}")
     value = float(value)
     bad = not math.isfinite(value)
     if low is not None:
@@ -76,7 +76,7 @@ def check_float(
 def check_choice(name: str, value: Any, choices: tuple[str, ...]) -> str:
     if not isinstance(value, str) or value not in choices:
         listed = ", ".join(repr(c) for c in choices)
-        raise ValueError(f"{name} must be one of {listed}; got {_show(value)}")
+        raise ValueError(f"{name} must be one of {listed}; got {show_value(value)}")
     return value
 
 
@@ -92,7 +92,7 @@ def as_float_tensor(
     try:
         tensor = torch.as_tensor(value, dtype=dtype, device=device)
     except (TypeError, ValueError, RuntimeError) as err:
-        raise ValueError(f"{name} must be a numeric array; got {_show(value)} ({err})") from None
+        raise ValueError(f"{name} must be a numeric array; got {show_value(value)} ({err})") from None
     if ndim is not None:
         allowed = (ndim,) if isinstance(ndim, int) else ndim
         if tensor.ndim not in allowed:
@@ -110,7 +110,7 @@ def as_label_tensor(name: str, value: Any, *, n_points: int, classes: int | None
     try:
         array = np.asarray(value)
     except ValueError:
-        raise ValueError(f"{name} must be a 1-d array of integer class labels; got {_show(value)}") from None
+        raise ValueError(f"{name} must be a 1-d array of integer class labels; got {show_value(value)}") from None
     if array.dtype == object and array.ndim == 1 and all(isinstance(v, Integral) for v in array):
         low, high = min(array, default=0), max(array, default=0)  # ints past int64: range first
         if low < 0:
@@ -118,7 +118,7 @@ def as_label_tensor(name: str, value: Any, *, n_points: int, classes: int | None
         if classes is not None and high >= classes:
             raise ValueError(f"{name} must hold labels < {classes} (the number of classes); got {high}")
     if array.dtype.kind not in "biuf":
-        raise ValueError(f"{name} must hold integer class labels; got dtype {array.dtype} ({_show(value)})")
+        raise ValueError(f"{name} must hold integer class labels; got dtype {array.dtype} ({show_value(value)})")
     if array.ndim != 1 or array.shape[0] != n_points:
         raise ValueError(f"{name} must have shape ({n_points},); got shape {array.shape}")
     if array.size and not np.issubdtype(array.dtype, np.integer):
@@ -193,5 +193,5 @@ def as_numeric_array(name: str, value: Any) -> np.ndarray:
     try:
         array = np.asarray(value, dtype=float)
     except (TypeError, ValueError) as err:
-        raise ValueError(f"{name} must be a numeric array; got {_show(value)} ({err})") from None
+        raise ValueError(f"{name} must be a numeric array; got {show_value(value)} ({err})") from None
     return array

@@ -16,9 +16,9 @@ import torch
 from safetensors import SafetensorError
 from safetensors.torch import load as load_bytes
 from safetensors.torch import save as save_bytes
-from torch import nn
 
-__all__ = ["FormatError", "save_ensemble", "load", "read_metadata", "FORMAT_VERSION"]
+__all__ = ["FormatError", "FORMAT_VERSION", "atomic_write", "jsonable", "read_metadata", "read_posterior",
+           "write_posterior"]
 
 FORMAT_NAME = "jostle-ensemble"
 FORMAT_VERSION = 1
@@ -30,22 +30,21 @@ class FormatError(ValueError):
     """A file that is not a readable jostle posterior."""
 
 
-def save_ensemble(ensemble, path: str | os.PathLike, extra_meta: dict | None = None) -> Path:
+def write_posterior(path: str | os.PathLike, params: dict[str, torch.Tensor], meta: dict) -> Path:
+    """Write stacked member parameters and JSON metadata to ``path`` atomically."""
     path = Path(path)
     if path.suffix != ".safetensors":
         raise ValueError(f"path must end in .safetensors; got {str(path)!r}")
-    meta = dict(ensemble.meta)
-    if extra_meta:
-        meta.update(extra_meta)
+    members = {int(value.shape[0]) for value in params.values()}
     header = {
         "format": FORMAT_NAME,
         "format_version": FORMAT_VERSION,
-        "members": len(ensemble),
-        "meta": _jsonable(meta),
+        "members": members.pop() if len(members) == 1 else None,
+        "meta": jsonable(meta),
     }
-    tensors = {_PREFIX + name: value.detach().to("cpu").contiguous() for name, value in ensemble.params.items()}
+    tensors = {_PREFIX + name: value.detach().to("cpu").contiguous() for name, value in params.items()}
     payload = save_bytes(tensors, metadata={_META_KEY: json.dumps(header)})
-    _atomic_write(path, payload)
+    atomic_write(path, payload)
     return path
 
 
@@ -55,33 +54,15 @@ def read_metadata(path: str | os.PathLike) -> dict:
     return _parse_header(raw, Path(path))[0]
 
 
-def load(path: str | os.PathLike, module: nn.Module | None = None, device: str | torch.device | None = None):
-    """Load a posterior saved by :meth:`Ensemble.save`.
-
-    Parameters
-    ----------
-    path : str or Path
-        A ``.safetensors`` file written by jostle.
-    module : nn.Module, optional
-        The architecture, for posteriors of modules not built by a registered builder
-        such as :func:`jostle.mlp`. Its parameter names and shapes must match the file.
-    device : str or torch.device, optional
-        Where to place the parameters.
+def read_posterior(path: str | os.PathLike) -> tuple[dict[str, torch.Tensor], dict]:
+    """The stacked parameters and the metadata of a saved posterior.
 
     Raises
     ------
     FormatError
-        Truncated, corrupted, pickled or foreign files, unknown format versions, and
-        architectures that do not match the stored parameters.
+        Truncated, corrupted, pickled or foreign files and unknown format versions.
     """
-    from jostle.posterior.ensemble import Ensemble
-    from jostle.posterior.architectures import build_architecture
-
-    if not isinstance(path, (str, os.PathLike)):
-        raise TypeError(f"path must be a str or os.PathLike naming a .safetensors file; got {type(path).__name__}")
     path = Path(path)
-    if path.is_dir():
-        raise IsADirectoryError(f"path must name a .safetensors file; got a directory: {path}")
     raw = _read_checked(path)
     header, _ = _parse_header(raw, path)
     try:
@@ -89,39 +70,7 @@ def load(path: str | os.PathLike, module: nn.Module | None = None, device: str |
     except (SafetensorError, ValueError, RuntimeError) as err:
         raise FormatError(f"{path} is truncated or corrupted: {err}") from None
     params = {name[len(_PREFIX):]: value for name, value in tensors.items() if name.startswith(_PREFIX)}
-    meta = header.get("meta", {})
-    if module is None:
-        arch = meta.get("architecture")
-        if not arch:
-            raise FormatError(
-                f"{path} holds a custom architecture; pass the module it was made from as module="
-            )
-        try:
-            # Members are fixed networks: a rebuilt Dropout layer must not stay in training mode.
-            module = build_architecture(arch["builder"], **arch["kwargs"]).eval()
-        except (ValueError, TypeError, KeyError) as err:
-            raise FormatError(f"{path} names an architecture jostle cannot rebuild: {err}") from None
-    _check_fits(module, params, path)
-    ensemble = Ensemble(module, params, meta=meta)
-    return ensemble if device is None else ensemble.to(device)
-
-
-def _check_fits(module: nn.Module, params: dict, path: Path) -> None:
-    expected = {**dict(module.named_parameters()), **dict(module.named_buffers())}
-    missing = sorted(set(expected) - set(params))
-    extra = sorted(set(params) - set(expected))
-    if missing or extra:
-        raise FormatError(
-            f"architecture mismatch: {path} has parameters the module lacks {extra} "
-            f"and lacks parameters the module has {missing}"
-        )
-    for name in expected:
-        value = params[name]
-        if tuple(value.shape[1:]) != tuple(expected[name].shape):
-            raise FormatError(
-                f"architecture mismatch: {path} has {name!r} of shape {tuple(value.shape[1:])} per member, "
-                f"the module has {tuple(expected[name].shape)}"
-            )
+    return params, header.get("meta", {})
 
 
 def _read_checked(path: Path) -> bytes:
@@ -157,7 +106,7 @@ def _parse_header(raw: bytes, path: Path) -> tuple[dict, int]:
     return header, length
 
 
-def _atomic_write(path: Path, payload: bytes) -> None:
+def atomic_write(path: Path, payload: bytes) -> None:
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
@@ -172,14 +121,14 @@ def _atomic_write(path: Path, payload: bytes) -> None:
         raise
 
 
-def _jsonable(value: Any) -> Any:
+def jsonable(value: Any) -> Any:
     """Tensors and arrays become lists; everything must end up JSON-serialisable."""
     import numpy as np
 
     if isinstance(value, dict):
-        return {str(k): _jsonable(v) for k, v in value.items()}
+        return {str(k): jsonable(v) for k, v in value.items()}
     if isinstance(value, (list, tuple)):
-        return [_jsonable(v) for v in value]
+        return [jsonable(v) for v in value]
     if isinstance(value, torch.Tensor):
         return value.detach().cpu().tolist()
     if isinstance(value, np.ndarray):

@@ -17,7 +17,7 @@ import torch
 from torch import Tensor, nn
 from torch.func import functional_call
 
-from jostle.common.checks import _show, check_float, check_int
+from jostle.common.checks import show_value, check_float, check_int
 from jostle.fitting.training_loop import (
     check_config, check_device, check_module_and_data, cross_entropy_per_member, fit_meta,
     member_generators, split_validation, stacked_initial, stream_seed, train_members,
@@ -134,7 +134,7 @@ def fold_dropout_masks(module: nn.Module, masks: Sequence[Tensor]) -> Ensemble:
             raise ValueError(f"masks[{k}] must have shape (S, {site.width}) with S shared by all masks; "
                              f"got {tuple(mask.shape)}")
         if not bool(((mask == 0) | (mask == 1)).all()):
-            raise ValueError(f"masks[{k}] must hold only 0 (drop) and 1 (keep); got {_show(mask.unique())}")
+            raise ValueError(f"masks[{k}] must hold only 0 (drop) and 1 (keep); got {show_value(mask.unique())}")
         checked.append(mask)
     state = {**dict(module.named_parameters()), **dict(module.named_buffers())}
     return _fold(layout, {k: v.detach() for k, v in state.items()}, checked)

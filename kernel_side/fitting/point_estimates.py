@@ -10,7 +10,6 @@ from __future__ import annotations
 import copy
 from typing import Any
 
-import torch
 from torch import nn
 
 from jostle.common.checks import check_int

@@ -17,7 +17,7 @@ from typing import Any, Callable
 import torch
 from torch import Tensor, nn
 
-from jostle.common.checks import _show, check_choice, check_float, check_int
+from jostle.common.checks import show_value, check_choice, check_float, check_int
 from jostle.datasets import Dataset
 from jostle.posterior.architectures import architecture_of, init_parameters
 
@@ -75,7 +75,7 @@ def check_device(device: Any) -> torch.device:
     try:
         device = torch.device(device)
     except (RuntimeError, TypeError):
-        raise ValueError(f"device must name a torch device such as 'cpu' or 'cuda'; got {_show(device)}") from None
+        raise ValueError(f"device must name a torch device such as 'cpu' or 'cuda'; got {show_value(device)}") from None
     if device.type == "meta":
         raise ValueError("device must hold values to train on, such as 'cpu' or 'cuda'; got 'meta'")
     return device

@@ -17,8 +17,8 @@ from typing import Any
 import numpy as np
 import torch
 
-from jostle.common.checks import _show, check_choice, check_float, check_int, check_representable
-from jostle.live.view_parts import (AttacksUnavailable, AttackView, FadeView, GridView, PointView, attack_part,
+from jostle.common.checks import show_value, check_choice, check_float, check_int, check_representable
+from jostle.live.view_parts import (AttackView, FadeView, GridView, PointView, attack_part,
                           fade_part, grid_part, grid_prediction, point_part, SpreadView, spread_part)
 from jostle.live.worker import LiveWorker, Outcome
 from jostle.posterior.ensemble import Ensemble
@@ -26,7 +26,7 @@ from jostle.posterior.ensemble import Ensemble
 __all__ = [
     "ExplorerState", "ViewData", "ViewCache", "compute_view", "check_field", "check_state",
     "LiveWorker", "Outcome", "PointView", "GridView", "AttackView", "FadeView", "SpreadView",
-    "AttacksUnavailable", "METHODS", "NORMS", "OBJECTIVES", "LAYERS",
+    "METHODS", "NORMS", "OBJECTIVES", "LAYERS",
 ]
 
 METHODS = ("fgsm", "pgd", "cw", "spsa", "square")
@@ -205,15 +205,10 @@ def compute_view(ens: Ensemble, state: ExplorerState, bounds: Any = None, cache:
         attack, after = get("attack", (s.point, label, s.budget, s.samples, s.method, s.norm, s.steps,
                                        s.objective, s.seed),
                             lambda: attack_part(ens, s, label))
-    except AttacksUnavailable as missing:
-        notes.append(str(missing))
     except ValueError as refused:  # settings the attack refuses (e.g. cw with norm inf): keep the rest
         errors.append(str(refused))
-    try:
-        fade = get("fade", (s.point, label, s.fade_repeats, s.seed),
-                   lambda: fade_part(ens, s.point, label, s.fade_repeats, s.seed))
-    except AttacksUnavailable as missing:
-        notes.append(str(missing))
+    fade = get("fade", (s.point, label, s.fade_repeats, s.seed),
+               lambda: fade_part(ens, s.point, label, s.fade_repeats, s.seed))
     return ViewData(state=s, label=label, classes=_classes(ens, before), before=before, after=after,
                     attack=attack, grid=grid, fade=fade, spread=spread_part(before, after, label),
                     recomputed=tuple(recomputed), timings=timings,
@@ -253,7 +248,7 @@ def check_field(ens: Ensemble, name: str, value: Any, n_features: int | None = N
 def check_state(ens: Ensemble, state: ExplorerState) -> ExplorerState:
     """The state with every field checked and ``samples`` resolved to an int."""
     if not isinstance(state, ExplorerState):
-        raise ValueError(f"state must be an ExplorerState; got {_show(state)}")
+        raise ValueError(f"state must be an ExplorerState; got {show_value(state)}")
     clean = {name: check_field(ens, name, getattr(state, name)) for name in state.__dataclass_fields__}
     if clean["samples"] is None:
         clean["samples"] = len(ens)
@@ -264,11 +259,11 @@ def _check_point(value: Any, n_features: int | None) -> tuple[float, ...]:
     try:
         flat = [float(v) for v in (value.tolist() if hasattr(value, "tolist") else value)]
     except (TypeError, ValueError):
-        raise ValueError(f"point must be a sequence of finite floats; got {_show(value)}") from None
+        raise ValueError(f"point must be a sequence of finite floats; got {show_value(value)}") from None
     if n_features is not None and len(flat) != n_features:
         raise ValueError(f"point must have {n_features} coordinates; got {len(flat)}")
     if not flat or not all(math.isfinite(v) for v in flat):
-        raise ValueError(f"point must hold only finite floats; got {_show(value)}")
+        raise ValueError(f"point must hold only finite floats; got {show_value(value)}")
     return tuple(flat)
 
 
@@ -280,7 +275,7 @@ def _bounds(ens: Ensemble, state: ExplorerState, bounds: Any) -> tuple[tuple[flo
         return tuple((point - 1.0).tolist()), tuple((point + 1.0).tolist())
     lo, hi = (torch.as_tensor(b, dtype=torch.float64).flatten().tolist() for b in bounds)
     if len(lo) != len(state.point) or len(hi) != len(state.point) or any(a >= b for a, b in zip(lo, hi)):
-        raise ValueError(f"bounds must be two arrays of {len(state.point)} values with lo < hi; got {_show(bounds)}")
+        raise ValueError(f"bounds must be two arrays of {len(state.point)} values with lo < hi; got {show_value(bounds)}")
     return tuple(lo), tuple(hi)
 
 

@@ -8,16 +8,14 @@ from typing import Any
 import numpy as np
 import torch
 
+from jostle.attacks.gradient_methods import attack
+from jostle.attacks.readouts import gradient_fade
 from jostle.live.contours import decision_segments
 from jostle.posterior.ensemble import Ensemble
 from jostle.posterior.prediction import Prediction
 
-__all__ = ["PointView", "GridView", "AttackView", "FadeView", "SpreadView", "AttacksUnavailable",
+__all__ = ["PointView", "GridView", "AttackView", "FadeView", "SpreadView",
            "point_part", "spread_part", "grid_prediction", "grid_part", "attack_part", "fade_part"]
-
-
-class AttacksUnavailable(RuntimeError):
-    """``jostle.attack`` / ``jostle.expected_gradient`` are not part of this install."""
 
 
 @dataclass
@@ -148,7 +146,6 @@ def grid_part(prediction: tuple, layer: str, boundaries: int) -> GridView:
 
 
 def attack_part(ens: Ensemble, state: Any, label: int) -> tuple[AttackView, PointView]:
-    attack = _api("attack")
     x = torch.as_tensor(np.asarray(state.point, dtype=np.float64)[None], dtype=ens.dtype)
     adv = attack(ens, x, y=torch.tensor([label]), method=state.method, eps=state.budget, norm=state.norm,
                  steps=state.steps, samples=state.samples, objective=state.objective, seed=state.seed)
@@ -164,7 +161,6 @@ def attack_part(ens: Ensemble, state: Any, label: int) -> tuple[AttackView, Poin
 
 
 def fade_part(ens: Ensemble, point: Any, label: int, repeats: int, seed: int) -> FadeView:
-    gradient_fade = _api("gradient_fade")
     x = torch.as_tensor(np.asarray(point, dtype=np.float64)[None], dtype=ens.dtype)
     size = len(ens)
     counts = sorted({2**k for k in range(int(math.log2(size)) + 1)} | {size})
@@ -173,15 +169,6 @@ def fade_part(ens: Ensemble, point: Any, label: int, repeats: int, seed: int) ->
     return FadeView(counts=np.asarray(fade.sample_counts, dtype=np.int64),
                     norm_mean=np.asarray(fade.norm_mean["l2"], dtype=np.float64), norm_low=norms.min(axis=1),
                     norm_high=norms.max(axis=1), reference=np.asarray(fade.reference["l2"], dtype=np.float64))
-
-
-def _api(name: str) -> Any:
-    import jostle
-
-    found = getattr(jostle, name, None)
-    if found is None:
-        raise AttacksUnavailable(f"jostle.{name} is not available in this install, so its panel is empty")
-    return found
 
 
 def _summary(pred: Prediction) -> PointView:

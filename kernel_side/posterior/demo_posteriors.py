@@ -12,7 +12,8 @@ from pathlib import Path
 
 import torch
 
-from jostle.common.checks import _show
+from jostle.common.checks import show_value
+from jostle.posterior.loading import load
 
 __all__ = ["DEMO_POSTERIORS", "demo_posterior", "demo_posterior_path"]
 
@@ -44,15 +45,13 @@ def demo_posterior(name: str = "leak_alarm_hmc", device: torch.device | str | No
     >>> len(ens), ens.classes
     (1, ['steady', 'leak'])
     """
-    from jostle.files.posterior_file import load
-
     return load(Path(str(demo_posterior_path(name))), device=device)
 
 
 def demo_posterior_path(name: str):
     """The installed file of a shipped posterior (a ``pathlib.Path``-like resource)."""
     if name not in DEMO_POSTERIORS:
-        raise ValueError(f"name must be one of {sorted(DEMO_POSTERIORS)}; got {_show(name)}")
+        raise ValueError(f"name must be one of {sorted(DEMO_POSTERIORS)}; got {show_value(name)}")
     path = resources.files("jostle") / "data" / f"{name}.safetensors"
     if not path.is_file():
         raise FileNotFoundError(f"the shipped posterior {name!r} is missing at {path}; "

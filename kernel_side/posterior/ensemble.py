@@ -15,13 +15,15 @@ import torch
 from torch import Tensor, nn
 
 from jostle.common.checks import (
-    _show,
+    show_value,
     check_devices,
     check_finite,
     check_int,
     check_real_dtype,
     check_seed,
 )
+from jostle.files.posterior_file import write_posterior
+from jostle.posterior.description import describe
 from jostle.posterior.forward import ForwardPlan, make_plan
 from jostle.posterior.architectures import architecture_of
 from jostle.posterior.prediction import Prediction
@@ -184,7 +186,7 @@ class Ensemble:
         else:
             chosen = {name: value[self._indices(index, "index")] for name, value in self.params.items()}
         if next(iter(chosen.values())).shape[0] == 0:
-            raise ValueError(f"index must select at least one member of {len(self)}; got {_show(index)}")
+            raise ValueError(f"index must select at least one member of {len(self)}; got {show_value(index)}")
         return self._with(chosen)
 
     def subset(self, k: int, seed: int = 0) -> "Ensemble":
@@ -239,8 +241,6 @@ class Ensemble:
 
     def info(self) -> None:
         """Print how this posterior was made and how far to trust it (see :func:`jostle.describe`)."""
-        from jostle.fitting.hmc.diagnostics import describe
-
         print(describe(self))
 
     # ------------------------------------------------------------------ computation
@@ -296,9 +296,7 @@ class Ensemble:
         Only the members and ``meta`` are written; ``posterior`` is not (a loaded ensemble
         has ``posterior`` None; keep the fitted object, or refit, to draw more members).
         """
-        from jostle.files.posterior_file import save_ensemble
-
-        save_ensemble(self, path, extra_meta=extra_meta)
+        write_posterior(path, self.params, {**self.meta, **(extra_meta or {})})
 
     # ------------------------------------------------------------------ helpers
     def _with(self, params: dict[str, Tensor], template: nn.Module | None = None,
@@ -327,14 +325,14 @@ class Ensemble:
                 listed = list(samples)
                 out_of_range = [i for i in listed if isinstance(i, Integral) and not -size <= i < size]
                 if out_of_range:
-                    raise ValueError(f"{name} must index members in [0, {size}); got {_show(listed)}")
+                    raise ValueError(f"{name} must index members in [0, {size}); got {show_value(listed)}")
                 index = torch.as_tensor(listed, dtype=torch.long)
             except (TypeError, ValueError, RuntimeError) as err:
                 if str(err).startswith(f"{name} must index"):
                     raise
-                raise ValueError(f"{name} must be None, an int or a sequence of member indices; got {_show(samples)}") from None
+                raise ValueError(f"{name} must be None, an int or a sequence of member indices; got {show_value(samples)}") from None
         if index.numel() and (int(index.min()) < -size or int(index.max()) >= size):
-            raise ValueError(f"{name} must index members in [0, {size}); got {_show(index)}")
+            raise ValueError(f"{name} must index members in [0, {size}); got {show_value(index)}")
         return index.to(self.device)
 
     def _selected(self, samples: Any) -> dict[str, Tensor]:
@@ -353,7 +351,7 @@ class Ensemble:
             try:
                 x = torch.as_tensor(x, dtype=self.dtype)
             except (TypeError, ValueError, RuntimeError):
-                raise ValueError(f"x must be a numeric array of shape (n_points, ...); got {_show(x)}") from None
+                raise ValueError(f"x must be a numeric array of shape (n_points, ...); got {show_value(x)}") from None
         if x.ndim < 2:
             raise ValueError(
                 f"x must have shape (n_points, *input_shape); got shape {tuple(x.shape)} "

@@ -26,7 +26,7 @@ import torch
 
 from jostle import datasets as _datasets
 from jostle import metrics as _metrics
-from jostle.files.posterior_file import _jsonable
+from jostle.files.posterior_file import jsonable
 from jostle.sweeps.spec import METHODS, run_key
 
 __all__ = ["execute_run", "fit_run", "evaluate", "load_run_data", "build_network", "software_versions"]
@@ -180,7 +180,7 @@ def _fit_and_score(config: dict, save_ensemble: bool, record: dict) -> None:
     tick = time.perf_counter()
     record["metrics"] = evaluate(ens, data, config["evaluation"], seed=config["seed"])
     if ens.meta.get("diagnostics") is not None:  # e.g. HMC acceptance, divergences, R-hat, ESS
-        record["metrics"]["diagnostics"] = _jsonable(ens.meta["diagnostics"])
+        record["metrics"]["diagnostics"] = jsonable(ens.meta["diagnostics"])
     record["eval_seconds"] = time.perf_counter() - tick
     if save_ensemble:
         record["ensemble_bytes"] = _ensemble_bytes(ens, config)

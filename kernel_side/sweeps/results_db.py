@@ -15,7 +15,7 @@ import time
 from pathlib import Path
 from typing import Any, Iterable
 
-from jostle.files.posterior_file import _atomic_write
+from jostle.files.posterior_file import atomic_write
 from jostle.sweeps.spec import DETERMINISTIC_METHODS, canonical_json
 
 __all__ = ["RunStore", "StoreError", "SCHEMA_VERSION"]
@@ -218,7 +218,7 @@ class RunStore:
             raise StoreError("an in-memory store cannot keep ensembles; give the store a file path")
         folder = self.path.parent / f"{self.path.stem}.ensembles"
         target = folder / f"{result['key']}.safetensors"
-        _atomic_write(target, payload)
+        atomic_write(target, payload)
         return str(target.relative_to(self.path.parent))
 
 

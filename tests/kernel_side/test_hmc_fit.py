@@ -79,7 +79,7 @@ def test_same_seed_same_posterior(moons):
 def test_first_momentum_is_not_a_replay_of_the_prior_start(moons, monkeypatch):
     # The chains' initialisation and the sampler's momenta come from different streams: with one
     # seed for both, the first momentum drawn (identity metric) equalled theta0 / prior_std.
-    import jostle.fitting.hmc.leapfrog_loop as loop
+    import jostle.fitting.hmc.chains as loop
     import jostle.fitting.hmc.fit as hmc_fit
 
     seen = {}

@@ -17,7 +17,7 @@ from typing import Any, Iterator
 import torch
 from torch import Tensor, nn
 
-from jostle.common.checks import _show, check_choice, check_float, check_int
+from jostle.common.checks import show_value, check_choice, check_float, check_int
 from jostle.common.threads import torch_threads
 from jostle.fitting.training_loop import stream_seed
 from jostle.fitting.hmc.network_density import (
@@ -181,9 +181,9 @@ def _compute_threads(threads: Any, posterior: NetworkPosterior, chains: int) -> 
 def _check_arguments(module, data, samples, chains, warmup, draws_per_chain, prior_std,
                      trajectory_length, max_steps, target_accept, init, map_steps, map_lr, seed) -> dict:
     if not isinstance(module, nn.Module):
-        raise ValueError(f"module must be a torch.nn.Module; got {_show(module)}")
+        raise ValueError(f"module must be a torch.nn.Module; got {show_value(module)}")
     if not all(hasattr(data, name) for name in ("x_train", "y_train", "x_test", "classes", "bounds")):
-        raise ValueError(f"data must be a jostle.Dataset; got {_show(data)}")
+        raise ValueError(f"data must be a jostle.Dataset; got {show_value(data)}")
     if not any(p.requires_grad for p in module.parameters()):
         raise ValueError("module must have at least one parameter with requires_grad=True; got none")
     samples = check_int("samples", samples, low=1)

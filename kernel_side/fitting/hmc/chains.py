@@ -5,9 +5,9 @@ import torch
 from torch import Tensor
 
 import jostle.fitting.hmc.adaptation as adapt
-from jostle.fitting.hmc.sampler import (
-    HMCDraws, HMCState, LogDensity, _now, _Settings, _summarise, _warn_interrupted,
-    evaluate, hmc_transition, kinetic_energy, leapfrog,
+from jostle.fitting.hmc.transitions import (
+    HMCDraws, HMCState, LogDensity, Settings, evaluate, hmc_transition, kinetic_energy, leapfrog, now,
+    summarise_draws, warn_interrupted,
 )
 
 _HEURISTIC_ROUNDS = 60
@@ -19,14 +19,14 @@ def run_chains(
     initial: Tensor,
     num_samples: int,
     warmup: int,
-    settings: _Settings,
+    settings: Settings,
     step_size: float | None,
     adapt_mass: bool,
     diagnostics: bool,
     seed: int,
     progress: bool,
 ) -> HMCDraws:
-    started = _now()
+    started = now()
     generator = torch.Generator().manual_seed(seed)
     state = evaluate(log_density, initial)
     bad = (~torch.isfinite(state.log_density)).nonzero().flatten().tolist()
@@ -43,17 +43,17 @@ def run_chains(
         run.sample(bar)
     except KeyboardInterrupt:
         interrupted = True
-        _warn_interrupted(run.kept, num_samples)
+        warn_interrupted(run.kept, num_samples)
     finally:
         if bar is not None:
             bar.close()
-    return run.result(diagnostics, interrupted, _now() - started)
+    return run.result(diagnostics, interrupted, now() - started)
 
 
 class _Run:
     """Mutable bookkeeping of one sampling run (the numerics live in pure functions)."""
 
-    def __init__(self, log_density, state: HMCState, settings: _Settings, generator, num_samples: int):
+    def __init__(self, log_density, state: HMCState, settings: Settings, generator, num_samples: int):
         self.log_density = log_density
         self.state = state
         self.settings = settings
@@ -168,7 +168,7 @@ class _Run:
         kept = self.kept
         samples = self.samples[:, :kept]
         stats = {name: value[:, :kept] for name, value in self.stats.items()}
-        rhat, ess, ess_tail = _summarise(samples, diagnostics)
+        rhat, ess, ess_tail = summarise_draws(samples, diagnostics)
         accept_rate = stats["accept_prob"].mean(1) if kept else torch.full((self.chains,), float("nan"), dtype=torch.float64)
         return HMCDraws(
             samples=samples,
