@@ -4,9 +4,9 @@ Case: 40 steps of L-inf PGD, 100 points of a 2-D input, S = 100 members of a 2-6
 tanh MLP. The baseline evaluates each member as its own nn.Module and takes the gradient
 with plain autograd. FLOP rate: forward FLOPs = 2 * S * N * sum(in * out) per step,
 forward + backward counted as 3x forward, set against the same run's 1024 x 1024 fp32
-matmul rate. jostle runs twice: with its hand-written batched backward (the default for
-Linear + elementwise stacks) and with autograd through the batched forward (the baseline,
-``attack_core.HAND_BACKWARD = False``). Also the single-point latency that bounds a live
+matmul rate. jostle runs twice: with its gradient engine's planned hand-written passes (the default
+for Linear + tanh/ReLU/sigmoid stacks) and with autograd through the batched forward (the
+baseline, ``backward="autograd"``). Also the single-point latency that bounds a live
 widget update, and every member's own input gradient (what the fading-gradient read-outs
 start from) by the planned backward and by ``vmap(grad)``.
 """
@@ -16,7 +16,6 @@ import torch
 from torch import nn
 
 import jostle
-import jostle.attacks.problem as attack_core
 from jostle.attacks.readouts import member_gradients
 
 from _timing import interleaved, matmul_gflops, median
@@ -39,10 +38,10 @@ def main() -> None:
     # candidates run interleaved, round after round, so load swings hit all alike.
     for threads in (1, default_threads):
         times = _with_threads(threads, lambda: interleaved({
-            "hand": _backward(True, lambda: jostle.attack(ens, x, y, eps=EPS, steps=STEPS, record_path=True,
-                                                          threads=None)),
-            "autograd": _backward(False, lambda: jostle.attack(ens, x, y, eps=EPS, steps=STEPS,
-                                                               record_path=True, threads=None)),
+            "hand": lambda: jostle.attack(ens, x, y, eps=EPS, steps=STEPS, record_path=True,
+                                          threads=None, backward="auto"),
+            "autograd": lambda: jostle.attack(ens, x, y, eps=EPS, steps=STEPS, record_path=True,
+                                              threads=None, backward="autograd"),
             "loop": lambda: _loop_pgd(nets, x, y, EPS, STEPS),
         }, repeats=5, warmup=1))
         ms = {name: median(values) * 1e3 for name, values in times.items()}
@@ -65,10 +64,10 @@ def main() -> None:
             break
     one = x[:1]
     times = interleaved({
-        "hand": _backward(True, lambda: jostle.attack(ens, one, eps=EPS, steps=STEPS)),
-        "autograd": _backward(False, lambda: jostle.attack(ens, one, eps=EPS, steps=STEPS)),
-        "default": _backward(True, lambda: jostle.attack(ens, one, eps=EPS, steps=STEPS, threads=None)),
-        "fgsm": _backward(True, lambda: jostle.attack(ens, one, eps=EPS, method="fgsm")),
+        "hand": lambda: jostle.attack(ens, one, eps=EPS, steps=STEPS, backward="auto"),
+        "autograd": lambda: jostle.attack(ens, one, eps=EPS, steps=STEPS, backward="autograd"),
+        "default": lambda: jostle.attack(ens, one, eps=EPS, steps=STEPS, threads=None, backward="auto"),
+        "fgsm": lambda: jostle.attack(ens, one, eps=EPS, method="fgsm", backward="auto"),
     }, repeats=21)
     ms = {name: median(values) * 1e3 for name, values in times.items()}
     rows += [
@@ -79,8 +78,9 @@ def main() -> None:
     ]
     # Objectives that are not a mean of member terms: planned passes, autograd on the logits.
     times = interleaved({
-        name: _backward(hand, lambda: jostle.attack(ens, x, y, eps=EPS, steps=STEPS, objective="predictive"))
-        for name, hand in (("hand", True), ("autograd", False))
+        name: lambda backward=backward: jostle.attack(ens, x, y, eps=EPS, steps=STEPS, objective="predictive",
+                                                      backward=backward)
+        for name, backward in (("hand", "auto"), ("autograd", "autograd"))
     }, repeats=5, warmup=1)
     ms = {name: median(values) * 1e3 for name, values in times.items()}
     rows += [
@@ -90,8 +90,8 @@ def main() -> None:
     ]
     # The fading-gradient read-outs start from every member's own input gradient.
     times = interleaved({
-        "hand": _backward(True, lambda: member_gradients(ens, x, y)),
-        "vmap": _backward(False, lambda: member_gradients(ens, x, y)),
+        "hand": lambda: member_gradients(ens, x, y, backward="auto"),
+        "vmap": lambda: member_gradients(ens, x, y, backward="autograd"),
     }, repeats=9)
     ms = {name: median(values) * 1e3 for name, values in times.items()}
     rows += [
@@ -101,18 +101,6 @@ def main() -> None:
     width = max(len(name) for name, _ in rows)
     for name, value in rows:
         print(f"{name:<{width}}  {value}")
-
-
-def _backward(hand: bool, fn):
-    """``fn`` run with the hand-written input backward on (jostle's default) or off."""
-    def run():
-        before = attack_core.HAND_BACKWARD
-        attack_core.HAND_BACKWARD = hand
-        try:
-            return fn()
-        finally:
-            attack_core.HAND_BACKWARD = before
-    return run
 
 
 def _ensemble():

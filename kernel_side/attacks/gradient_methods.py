@@ -1,10 +1,10 @@
 """The attack entry point and the gradient attacks: FGSM, PGD and Carlini-Wagner L2.
 
-Gradients come from one backward pass through the batched forward over all members
-and points, on the summed per-point objective (points are independent, so each point
-receives its own gradient): a hand-written batched backward for Linear + elementwise
-stacks, ``torch.autograd.grad`` for any other module (see
-:meth:`AttackProblem.objective_and_grad`).
+Gradients come from the ensemble's gradient engine
+(:meth:`jostle.Ensemble.value_and_input_grad`, through
+:meth:`AttackProblem.objective_and_grad`): one pass over all members and points on the
+summed per-point objective (points are independent, so each point receives its own
+gradient).
 """
 from __future__ import annotations
 
@@ -26,7 +26,7 @@ METHODS = ("fgsm", "pgd", "cw", "spsa", "square")
 def attack(ens, x: Any, y: Any = None, method: str = "pgd", eps: Any = 0.1, norm: str = "inf",
            steps: int = 40, samples: Any = None, objective: str = "expected_loss", seed: int = 0, *,
            target: Any = None, bounds: Any = None, resample: bool = False, judge: str = "ensemble",
-           threads: Any = "auto", **options: Any) -> AttackResult:
+           threads: Any = "auto", backward: str = "auto", **options: Any) -> AttackResult:
     """Attack the posterior predictive of ``ens`` at inputs ``x``.
 
     Parameters
@@ -67,6 +67,8 @@ def attack(ens, x: Any, y: Any = None, method: str = "pgd", eps: Any = 0.1, norm
         Torch threads while the attack runs (restored afterwards): ``"auto"`` uses one for
         small evaluations, where thread barriers cost more than they save; None leaves
         torch's setting.
+    backward : {"auto", "autograd"}
+        The gradient engine's switch (see :meth:`jostle.Ensemble.value_and_input_grad`).
     **options
         Method options. ``pgd``: ``step_size`` (default ``2.5 * eps / steps``),
         ``random_start`` (True), ``restarts`` (1), ``record_path`` (True).
@@ -110,7 +112,7 @@ def attack(ens, x: Any, y: Any = None, method: str = "pgd", eps: Any = 0.1, norm
         raise ValueError(f"method 'cw' is an L2 attack: norm must be '2'; got {show_value(norm)}")
     problem = build_problem(ens, x, y, eps=eps, norm=norm, objective=objective, samples=samples,
                             resample=resample, target=target, bounds=bounds, seed=seed, judge=judge,
-                            per_point_eps=method in ("pgd", "fgsm"))
+                            per_point_eps=method in ("pgd", "fgsm"), backward=backward)
     with compute_threads(threads, ens, problem.points):
         result = runner(problem, steps, **options)
     result.method = method

@@ -24,7 +24,6 @@ target label: it pulls the target's probability up.
 from __future__ import annotations
 
 import contextlib
-import math
 from dataclasses import dataclass, field, replace
 from typing import Any, Iterator
 
@@ -35,22 +34,16 @@ from torch import Tensor
 from jostle.common.checks import (show_value, as_label_tensor, check_choice, check_devices, check_float, check_int, check_real_dtype,
                       check_representable, check_seed)
 from jostle.common.threads import torch_threads
-from jostle.posterior.forward import MLPPlan
-from jostle.posterior.planned_gradient import ExpectedLossGradient
+from jostle.posterior.gradients import BACKWARDS, OBJECTIVES, objective_values
 
 __all__ = ["AttackResult", "OBJECTIVES", "NORMS", "AttackProblem", "build_problem", "compute_threads"]
 
-OBJECTIVES = ("expected_loss", "predictive", "margin")
 NORMS = ("inf", "2")
 JUDGES = ("ensemble", "attacker")
 
 # Floats one evaluation may touch before "auto" keeps torch's own thread count: covers a
 # live single point and the 100-point, 100-member attack of benchmarks/bench_attacks.py.
 _SMALL_WORK = 2**22
-
-# Input gradients of Linear + elementwise stacks use the hand-written batched backward;
-# False sends them through autograd (kept as the benchmark's baseline).
-HAND_BACKWARD = True
 
 # Points may sit this far outside the bounds (float rounding of stored bounds).
 _BOUNDS_SLACK = 1e-6
@@ -140,8 +133,9 @@ class AttackProblem:
     Built by :func:`build_problem`, which validates everything; the attack functions use
     :meth:`objective`, :meth:`objective_and_grad`, :meth:`project` and :meth:`judge`.
     :meth:`subset` makes the problem of some of its points; a problem and its subsets
-    share no mutable state (each keeps its own planned-gradient cache and, unless told
-    otherwise, its own copy of the random stream).
+    share no mutable state (unless told otherwise, each keeps its own copy of the random
+    stream). ``backward`` is the gradient engine's switch (``"auto"`` or ``"autograd"``,
+    see :meth:`jostle.Ensemble.value_and_input_grad`).
     """
 
     ens: Any
@@ -157,8 +151,8 @@ class AttackProblem:
     judge_samples: Any
     generator: torch.Generator
     clean_probs: Tensor
+    backward: str = "auto"
     eps_b: Tensor = field(init=False, repr=False)
-    _kernels: dict = field(init=False, repr=False, default_factory=dict)
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "eps_b", self.eps.view((-1,) + (1,) * (self.x.ndim - 1)))
@@ -210,54 +204,17 @@ class AttackProblem:
         chosen = self.members() if isinstance(members, str) else members
 
         def reduce(logits: Tensor, where: slice) -> Tensor:
-            return sign * _objective(logits, labels[where], name)
+            return sign * objective_values(logits, labels[where], name)
 
         return self.ens.map_logits(x_adv, reduce, samples=chosen)
 
     def objective_and_grad(self, x_adv: Tensor, objective: str | None = None) -> tuple[Tensor, Tensor]:
-        """Objective [n] and its input gradient (points are independent, so one backward).
-
-        Linear + elementwise stacks take the hand-written batched backward of
-        :meth:`MLPPlan.value_and_input_grad` (autograd only on the logits); other modules,
-        or ``HAND_BACKWARD = False``, take autograd through the whole forward pass.
-        """
-        if HAND_BACKWARD and isinstance(self.ens._plan, MLPPlan):
-            return self._hand_objective_and_grad(x_adv, objective)
-        with torch.enable_grad():
-            leaf = x_adv.detach().requires_grad_(True)
-            value = self.objective(leaf, objective)
-            (grad,) = torch.autograd.grad(value.sum(), leaf)
-        return value.detach(), grad
-
-    def _hand_objective_and_grad(self, x_adv: Tensor, objective: str | None) -> tuple[Tensor, Tensor]:
-        name = objective or self.objective_name
+        """Objective [n] and its input gradient, from the ensemble's gradient engine
+        (:meth:`jostle.Ensemble.value_and_input_grad`) with this problem's ``backward``."""
         labels = self.target if self.target is not None else self.label
-        sign = -1.0 if self.target is not None else 1.0
-        chosen = self.members()
-
-        def head(logits: Tensor, where: slice) -> Tensor:
-            return sign * _objective(logits, labels[where], name)
-
-        x = self.ens._prepare_input(x_adv.detach())
-        kernel = self._planned_kernel(chosen, labels, sign)
-        if kernel is not None and name == "expected_loss":
-            return kernel(x)
-        if kernel is not None and kernel.takes_any_head:
-            return kernel.head_value_and_grad(x, head)
-        params = {k: v.detach() for k, v in self.ens._selected(chosen).items()}
-        return self.ens._plan.value_and_input_grad(params, x, self.ens.memory_budget, head,
-                                                   separable=name == "expected_loss")
-
-    def _planned_kernel(self, chosen: Any, labels: Tensor, sign: float) -> ExpectedLossGradient | None:
-        """The expected loss planned for the attacker's members: built once and kept for a
-        fixed attacker, built per evaluation when resampling; None for stacks it does not cover."""
-        if not self.resample and "planned" in self._kernels:
-            return self._kernels["planned"]
-        params = {k: v.detach() for k, v in self.ens._selected(chosen).items()}
-        kernel = ExpectedLossGradient.try_build(self.ens._plan.steps, params, labels, sign)
-        if not self.resample:
-            self._kernels["planned"] = kernel
-        return kernel
+        return self.ens.value_and_input_grad(x_adv.detach(), labels, objective or self.objective_name,
+                                             members=self.members(), targeted=self.target is not None,
+                                             backward=self.backward)
 
     def margin(self, x_adv: Tensor, index: Tensor | None = None, members: Any = "draw") -> Tensor:
         """The attacker's margin [n]: negative once the attack succeeds on the attacker's view
@@ -349,7 +306,7 @@ def norm_of(delta: Tensor, norm: str) -> Tensor:
 
 def build_problem(ens, x: Any, y: Any, *, eps: Any, norm: str, objective: str, samples: Any,
                   resample: bool, target: Any, bounds: Any, seed: int, judge: str = "ensemble",
-                  per_point_eps: bool = False, use_bounds: bool = True) -> AttackProblem:
+                  per_point_eps: bool = False, use_bounds: bool = True, backward: str = "auto") -> AttackProblem:
     """Validate an attack call and gather what every attack needs."""
     from jostle.posterior.ensemble import Ensemble
 
@@ -358,6 +315,7 @@ def build_problem(ens, x: Any, y: Any, *, eps: Any, norm: str, objective: str, s
     norm = check_choice("norm", norm, NORMS)
     objective = check_choice("objective", objective, OBJECTIVES)
     judge = check_choice("judge", judge, JUDGES)
+    backward = check_choice("backward", backward, BACKWARDS)
     seed = check_seed(seed)
     if not isinstance(resample, bool):
         raise ValueError(f"resample must be True or False; got {show_value(resample)}")
@@ -381,27 +339,10 @@ def build_problem(ens, x: Any, y: Any, *, eps: Any, norm: str, objective: str, s
         tgt = as_label_tensor("target", target, n_points=n, classes=classes).to(x.device)
     generator = torch.Generator().manual_seed(seed)
     return AttackProblem(ens, x, label.to(x.device), tgt, eps_t, norm, objective, box, samples, resample,
-                         judge_samples, generator, clean_probs)
+                         judge_samples, generator, clean_probs, backward)
 
 
 # ------------------------------------------------------------------ private helpers
-def _objective(logits: Tensor, labels: Tensor, name: str) -> Tensor:
-    """Per-point objective from member logits [s, n, C] and labels [n]."""
-    # Classes first: with few classes a softmax along the last dim costs ~10x one along
-    # the outer dim (measured on CPU at C = 2, S = N = 100), and the attack runs it each step.
-    log_probs = torch.log_softmax(logits.permute(2, 0, 1), dim=0)
-    members = log_probs.shape[1]
-    if name == "expected_loss":
-        index = labels.view(1, 1, -1).expand(1, members, -1)
-        return -log_probs.gather(0, index).squeeze(0).mean(0)
-    predictive = torch.logsumexp(log_probs, dim=1) - math.log(members)
-    chosen = predictive.gather(0, labels.view(1, -1)).squeeze(0)
-    if name == "predictive":
-        return -chosen
-    others = predictive.scatter(0, labels.view(1, -1), float("-inf"))
-    return others.amax(0) - chosen
-
-
 def _shrink_factor(delta: Tensor, eps_b: Tensor) -> Tensor:
     size = norm_of(delta, "2").view_as(eps_b)
     return torch.where(size > eps_b, eps_b / size.clamp_min(1e-30), torch.ones_like(size))

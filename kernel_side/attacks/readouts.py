@@ -13,12 +13,8 @@ from typing import Any
 import numpy as np
 import torch
 from torch import Tensor
-from torch.func import functional_call, grad, vmap
 
 from jostle.common.checks import show_value, check_choice, check_devices, check_finite, check_int, check_real_dtype, check_seed
-import jostle.attacks.problem as attack_core
-from jostle.posterior.forward import MLPPlan
-from jostle.posterior.planned_gradient import ExpectedLossGradient
 from jostle.attacks.problem import build_problem, compute_threads, norm_of
 from jostle.attacks.gradient_methods import pgd
 
@@ -30,7 +26,8 @@ QUANTILE_LEVELS = (0.05, 0.25, 0.5, 0.75, 0.95)
 NORM_KINDS = ("l1", "l2", "linf")
 
 
-def expected_gradient(ens, x: Any, y: Any = None, samples: Any = None, objective: str = "expected_loss") -> Tensor:
+def expected_gradient(ens, x: Any, y: Any = None, samples: Any = None, objective: str = "expected_loss",
+                      backward: str = "auto") -> Tensor:
     """Input gradient of the attacker's objective, averaged over posterior samples.
 
     With ``objective="expected_loss"`` this is the gradient of the mean per-sample
@@ -45,50 +42,36 @@ def expected_gradient(ens, x: Any, y: Any = None, samples: Any = None, objective
     samples : None, int or sequence of int
         Members averaged over (an int ``k``: the first ``k``).
     objective : {"expected_loss", "predictive", "margin"}
+    backward : {"auto", "autograd"}
+        The gradient engine's switch (see :meth:`jostle.Ensemble.value_and_input_grad`).
 
     Returns
     -------
     Tensor of shape (n_points, *input_shape)
     """
     problem = build_problem(ens, x, y, eps=0.0, norm="inf", objective=objective, samples=samples,
-                            resample=False, target=None, bounds=None, seed=0, use_bounds=False)
+                            resample=False, target=None, bounds=None, seed=0, use_bounds=False,
+                            backward=backward)
     with compute_threads("auto", ens, problem.points):
         return problem.objective_and_grad(problem.x)[1]
 
 
-def member_gradients(ens, x: Any, y: Any = None) -> Tensor:
+def member_gradients(ens, x: Any, y: Any = None, backward: str = "auto") -> Tensor:
     """Each member's input gradient of its own cross-entropy, in one vectorised pass.
 
-    Linear + tanh/ReLU/sigmoid stacks use the planned hand-written backward of the
-    attacks; any other module ``torch.func.vmap(grad(...))``.
+    The ensemble's gradient engine (:meth:`jostle.Ensemble.member_input_grads`): the planned
+    hand-written passes for Linear + tanh/ReLU/sigmoid stacks, ``torch.func.vmap(grad(...))``
+    for any other module or with ``backward="autograd"``.
 
     Returns
     -------
     Tensor of shape (n_members, n_points, *input_shape)
     """
     problem = build_problem(ens, x, y, eps=0.0, norm="inf", objective="expected_loss", samples=None,
-                            resample=False, target=None, bounds=None, seed=0, use_bounds=False)
-    if attack_core.HAND_BACKWARD and isinstance(ens._plan, MLPPlan):
-        # Linear + tanh/ReLU/sigmoid stacks: the planned hand-written backward, member by member.
-        params = {k: v.detach() for k, v in ens.params.items()}
-        kernel = ExpectedLossGradient.try_build(ens._plan.steps, params, problem.label, 1.0)
-        if kernel is not None:
-            with compute_threads("auto", ens, problem.points):
-                return kernel.member_gradients(ens._prepare_input(problem.x))
-    template = ens.template
-
-    def member_loss(params: dict[str, Tensor], points: Tensor, labels: Tensor) -> Tensor:
-        logits = functional_call(template, params, (points,))
-        return torch.nn.functional.cross_entropy(logits, labels, reduction="sum")
-
-    per_member = vmap(grad(member_loss, argnums=1), in_dims=(0, None, None))
-    # Points are independent, so the sum over a chunk yields each point's own gradient.
-    pair_bytes = 3 * ens._plan.floats_per_pair * problem.x.element_size() * len(ens)
-    chunk = max(1, ens.memory_budget // max(1, pair_bytes))
+                            resample=False, target=None, bounds=None, seed=0, use_bounds=False,
+                            backward=backward)
     with compute_threads("auto", ens, problem.points):
-        pieces = [per_member(ens.params, problem.x[i:i + chunk], problem.label[i:i + chunk])
-                  for i in range(0, problem.points, chunk)]
-    return torch.cat(pieces, dim=1)
+        return ens.member_input_grads(problem.x, problem.label, backward=problem.backward)
 
 
 @dataclass

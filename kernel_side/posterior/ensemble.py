@@ -16,6 +16,8 @@ from torch import Tensor, nn
 
 from jostle.common.checks import (
     show_value,
+    as_label_tensor,
+    check_choice,
     check_devices,
     check_finite,
     check_int,
@@ -25,6 +27,7 @@ from jostle.common.checks import (
 from jostle.files.posterior_file import write_posterior
 from jostle.posterior.description import describe
 from jostle.posterior.forward import ForwardPlan, make_plan
+from jostle.posterior.gradients import OBJECTIVES, GradientEngine, check_backward
 from jostle.posterior.architectures import architecture_of
 from jostle.posterior.prediction import Prediction
 
@@ -108,6 +111,7 @@ class Ensemble:
         self.memory_budget = check_int("memory_budget", memory_budget, low=1)
         self.posterior = posterior
         self._plan: ForwardPlan = make_plan(self.template, self.params)
+        self._engine = GradientEngine(self._plan)
 
     @property
     def posterior(self) -> Any:
@@ -289,6 +293,62 @@ class Ensemble:
         params = self._selected(samples)
         return self._plan.run_by_points(params, x, self.memory_budget, fn)
 
+    def value_and_input_grad(self, x: Any, y: Any, objective: str = "expected_loss", members: Any = None,
+                             targeted: bool = False, backward: str = "auto") -> tuple[Tensor, Tensor]:
+        """An attack objective per point and its gradient in the input (no graph is kept).
+
+        Parameters
+        ----------
+        x : Tensor of shape (n_points, *input_shape)
+        y : Tensor of shape (n_points,) of int, or None
+            Labels; None takes the full ensemble's predicted labels.
+        objective : {"expected_loss", "predictive", "margin"}
+            See :mod:`jostle.posterior.gradients`.
+        members : int, sequence of int, Tensor of indices, or None
+            The members averaged over, as ``samples`` in :meth:`logits`.
+        targeted : bool
+            Return the objective's negative (``y`` is then a target: ascending the result
+            pulls its probability up).
+        backward : {"auto", "autograd"}
+            ``"auto"``: the plan chosen when the ensemble was built; ``"autograd"``:
+            ``torch.autograd`` through the batched forward (the reference).
+
+        Returns
+        -------
+        value : Tensor of shape (n_points,)
+        grad : Tensor of shape (n_points, *input_shape)
+            ``d value[i] / d x[i]``; points are independent.
+        """
+        objective = check_choice("objective", objective, OBJECTIVES)
+        if not isinstance(targeted, bool):
+            raise ValueError(f"targeted must be True or False; got {show_value(targeted)}")
+        x, labels = self._points_and_labels(x, y)
+        sign = -1.0 if targeted else 1.0
+        return self._engine.value_and_input_grad(self, x, labels, objective, members, sign, check_backward(backward))
+
+    def member_input_grads(self, x: Any, y: Any, members: Any = None, backward: str = "auto") -> Tensor:
+        """Each member's input gradient of its own cross-entropy at labels ``y``.
+
+        Parameters are as in :meth:`value_and_input_grad`; ``backward="autograd"`` takes
+        ``torch.func.vmap(grad(...))`` over members.
+
+        Returns
+        -------
+        Tensor of shape (n_members_used, n_points, *input_shape)
+        """
+        x, labels = self._points_and_labels(x, y)
+        return self._engine.member_input_grads(self, x, labels, members, check_backward(backward))
+
+    def _points_and_labels(self, x: Any, y: Any) -> tuple[Tensor, Tensor]:
+        x = self._prepare_input(x).detach()
+        n = int(x.shape[0])
+        if y is None:
+            return x, self.predict(x).label
+        if isinstance(y, Tensor) and y.dtype == torch.long and y.shape == (n,) and y.device == self.device:
+            # an attack's own checked labels, step after step: no copy, no host round trip
+            return x, y
+        return x, as_label_tensor("y", y, n_points=n).to(self.device)
+
     # ------------------------------------------------------------------ persistence
     def save(self, path: str, extra_meta: dict | None = None) -> None:
         """Write safetensors plus JSON metadata atomically (temp file, then rename).
@@ -308,6 +368,7 @@ class Ensemble:
         clone.memory_budget = self.memory_budget
         clone.posterior = self.posterior if isinstance(posterior, str) else posterior
         clone._plan = make_plan(clone.template, params)
+        clone._engine = GradientEngine(clone._plan)
         return clone
 
     def _indices(self, samples: Any, name: str = "samples") -> Tensor:

@@ -34,8 +34,8 @@ logits (the predictive loss, the margin), with autograd on the logits alone, whe
 chunk holds every member and point.
 
 Anything else (other activations, a network ending in an activation, a single Linear
-layer) returns None from :meth:`ExpectedLossGradient.try_build` and the caller falls back
-to the general hand-written backward of :class:`jostle.posterior.forward.MLPPlan`.
+layer) returns None from :meth:`ExpectedLossGradient.try_build`, and the gradient engine
+(:mod:`jostle.posterior.gradients`) takes autograd through the batched forward instead.
 """
 from __future__ import annotations
 
@@ -45,31 +45,18 @@ import threading
 import torch
 from torch import Tensor, nn
 
+import jostle.posterior.forward as forward_plans
+from jostle.posterior.activations import activation_of, is_identity
+from jostle.posterior.forward import NARROW, chunk_sizes
+
 __all__ = ["ExpectedLossGradient"]
 
-# op(hidden) in place going forward; derivative(delta, output, out) coming back.
-_ACTIVATIONS = {
-    nn.Tanh: (Tensor.tanh_, lambda d, h, out: torch.ops.aten.tanh_backward.grad_input(d, h, grad_input=out)),
-    nn.ReLU: (Tensor.relu_, lambda d, h, out: torch.ops.aten.threshold_backward.grad_input(d, h, 0, grad_input=out)),
-    nn.Sigmoid: (Tensor.sigmoid_, lambda d, h, out: torch.ops.aten.sigmoid_backward.grad_input(d, h, grad_input=out)),
-}
-
-# Activations of one chunk are kept under this many bytes per layer. Measured on a 2-core
-# CPU with PGD on 100 members x 100 points of a 2-64-64-2 network: one chunk of all
-# members (2.4 MiB per layer) ran 10-20% faster than chunks that fit the 2 MiB per-core
-# L2 cache (0.5-1 MiB), whose extra kernels cost more than the cache misses they save.
-CHUNK_BYTES = 2**22
-
 # Reused work blocks, one set per thread (see ExpectedLossGradient._workspace). Each block
-# grows to the largest chunk a thread has evaluated (at most CHUNK_BYTES per layer).
+# grows to the largest chunk a thread has evaluated (at most ``chunk_bytes`` per layer).
 _POOL = threading.local()
 
 # Up to this many points the forward and backward products read one copy of the weights.
 _FEW_POINTS = 2
-
-# Heads up to this many classes are computed classes-first (W @ h^T).
-_NARROW = 8
-
 
 class ExpectedLossGradient:
     """``sign * mean_s CE(logits_s(x), labels)`` per point and its gradient in ``x``.
@@ -87,7 +74,7 @@ class ExpectedLossGradient:
         self._spaces: dict[tuple, list[dict]] = {}
         self.in_features = int(layers[0][0].shape[2])
         self.classes = int(layers[-1][0].shape[1])
-        self.narrow = self.classes <= _NARROW
+        self.narrow = self.classes <= NARROW  # heads this narrow are computed classes-first
         dtype, device = layers[0][0].dtype, layers[0][0].device
         points = self.points = int(labels.shape[0])
         member_chunk, self.point_chunk = _chunking(layers, members, points, chunk_bytes)
@@ -113,8 +100,24 @@ class ExpectedLossGradient:
 
         ``steps`` are :class:`jostle.posterior.forward.MLPPlan` steps; ``params`` the selected
         members' stacked parameters (detached); ``labels`` [n] the cross-entropy labels;
-        ``sign`` +1 (ascend the loss) or -1 (targeted: ascend the target's log-probability).
+        ``sign`` +1 (ascend the loss) or -1 (targeted: ascend the target's log-probability);
+        ``chunk_bytes`` the bound on one layer's block of a chunk (default
+        :data:`jostle.posterior.forward.CACHE_BYTES`).
         """
+        layout = cls.layout(steps)
+        if layout is None:
+            return None
+        names, flatten = layout
+        layers = [(params[weight], None if bias is None else params[bias], act) for weight, bias, act in names]
+        members = int(layers[0][0].shape[0])
+        return cls(layers, flatten, labels, sign, members,
+                   forward_plans.CACHE_BYTES if chunk_bytes is None else chunk_bytes)
+
+    @staticmethod
+    def layout(steps: list[tuple]) -> tuple[list[tuple], bool] | None:
+        """``([(weight name, bias name | None, Activation | None)], flatten)`` of a stack the
+        planned passes cover (Linear layers, each followed by at most one tanh / ReLU /
+        sigmoid, the last by none; at least two layers), or None."""
         layers: list[list] = []
         flatten = False
         for step in steps:
@@ -122,19 +125,16 @@ class ExpectedLossGradient:
             if kind == "flatten":
                 flatten = True
             elif kind == "linear":
-                bias = params[step[2]] if step[2] is not None else None
-                layers.append([params[step[1]], bias, None])
-            elif type(step[1]) is nn.Identity or (type(step[1]) is nn.Dropout and not step[1].training):
+                layers.append([step[1], step[2], None])
+            elif is_identity(step[1]):
                 continue
-            elif type(step[1]) in _ACTIVATIONS and layers and layers[-1][2] is None:
-                layers[-1][2] = type(step[1])
+            elif _fused(step[1]) and layers and layers[-1][2] is None:
+                layers[-1][2] = activation_of(step[1])
             else:
                 return None
         if len(layers) < 2 or layers[-1][2] is not None:
             return None
-        members = int(layers[0][0].shape[0])
-        return cls([tuple(layer) for layer in layers], flatten, labels, sign, members,
-                   CHUNK_BYTES if chunk_bytes is None else chunk_bytes)
+        return [tuple(layer) for layer in layers], flatten
 
     # ------------------------------------------------------------------ preparation
     def _prepare(self, members: slice) -> dict:
@@ -252,14 +252,14 @@ class ExpectedLossGradient:
         torch.mm(x_aug, chunk["first_aug"], out=first)
         first_act = self.layers[0][2]
         if first_act is not None:
-            _ACTIVATIONS[first_act][0](first)
+            first_act.in_place(None, first)
         kept = [first.view(points, chunk["k"], -1).transpose(0, 1)]
         for index, ((wt, _, bias), layer) in enumerate(zip(chunk["hidden"], self.layers[1:-1])):
             h = torch.bmm(kept[-1], wt, out=space[f"hidden{index}"])
             if bias is not None:
                 h.add_(bias)
             if layer[2] is not None:
-                _ACTIVATIONS[layer[2]][0](h)
+                layer[2].in_place(None, h)
             kept.append(h)
         return kept
 
@@ -278,13 +278,13 @@ class ExpectedLossGradient:
         for index in range(len(chunk["hidden"]), 0, -1):
             act = self.layers[index][2]
             if act is not None:
-                _ACTIVATIONS[act][1](delta, kept[index], delta)
+                act.from_output(delta, kept[index], delta)
             delta = torch.bmm(delta, chunk["hidden"][index - 1][1], out=space[f"delta{index - 1}"])
         spread = space["spread"]
         target = spread.view(points, chunk["k"], -1).transpose(0, 1)
         first_act = self.layers[0][2]
         if first_act is not None:
-            _ACTIVATIONS[first_act][1](delta, kept[0], target)
+            first_act.from_output(delta, kept[0], target)
         else:
             target.copy_(delta)
         space["spread_view"] = target
@@ -372,11 +372,17 @@ class ExpectedLossGradient:
         grad_t = torch.mm(chunk["first_cat"], spread.T)
         return value.detach(), grad_t.T.contiguous().reshape(shape)
 
+
+def _fused(layer: nn.Module) -> bool:
+    """Whether the planned passes cover ``layer``: an in-place forward and a derivative from
+    its output (tanh, ReLU, sigmoid; none of them reads a layer setting)."""
+    entry = activation_of(layer)
+    return entry is not None and entry.in_place is not None and entry.from_output is not None
+
+
 def _chunking(layers, members: int, points: int, chunk_bytes: int) -> tuple[int, int]:
     """(members, points) of one chunk: as many members as keep each layer's block under
-    ``chunk_bytes``, or one member and as many points as fit."""
-    weight = layers[0][0]
-    per_member = points * max(int(w.shape[1]) for w, _, _ in layers) * weight.element_size()
-    if per_member <= chunk_bytes:
-        return max(1, min(members, chunk_bytes // per_member)), points
-    return 1, max(1, chunk_bytes * points // per_member)
+    ``chunk_bytes``, or one member and as many points as fit (the one chunking rule,
+    :func:`jostle.posterior.forward.chunk_sizes`, with the block as the whole budget)."""
+    row_bytes = max(int(w.shape[1]) for w, _, _ in layers) * layers[0][0].element_size()
+    return chunk_sizes(members, points, row_bytes, row_bytes, chunk_bytes, chunk_bytes)
