@@ -21,7 +21,7 @@ from __future__ import annotations
 
 import math
 import threading
-from collections import OrderedDict
+import weakref
 from numbers import Integral
 from typing import Any, Callable
 
@@ -64,14 +64,14 @@ class GradientEngine:
     """The input-gradient plan of one ensemble, chosen once from its forward plan.
 
     ``planned`` is True when :class:`ExpectedLossGradient` covers the network; the engine
-    then keeps the last few planned kernels (per member selection and labels), so that an
-    attack's steps reuse one.
+    then keeps the last few planned kernels (per member selection and labels tensor), so
+    that an attack's steps reuse one.
     """
 
     def __init__(self, plan: ForwardPlan):
         self.plan = plan
         self.planned = isinstance(plan, MLPPlan) and ExpectedLossGradient.layout(plan.steps) is not None
-        self._kernels: OrderedDict = OrderedDict()
+        self._kernels: list[tuple] = []
         self._lock = threading.Lock()
 
     def value_and_input_grad(self, ens, x: Tensor, labels: Tensor, objective: str, members: Any,
@@ -111,21 +111,24 @@ class GradientEngine:
         return torch.cat(pieces, dim=1)
 
     def _kernel(self, ens, members: Any, labels: Tensor, sign: float) -> ExpectedLossGradient:
-        """The planned kernel for these members and labels: kept, or built and kept."""
+        """The planned kernel for these members and labels: kept, or built and kept.
+
+        A kept kernel is reused while its labels tensor lives unchanged and the ensemble's
+        parameters are the same tensors, unmodified (their version counters); it is
+        dropped with its labels, so a finished attack leaves nothing behind.
+        """
         key = (_selection_key(members), sign, ens.memory_budget)
         stamp = tuple((v.data_ptr(), v._version) for v in ens.params.values()) + (labels._version,)
         with self._lock:
-            for index, (k, held, held_stamp, kernel) in self._kernels.items():
-                if k == key and held is labels and held_stamp == stamp:
-                    self._kernels.move_to_end(index)
-                    return kernel
+            self._kernels = [entry for entry in self._kernels if entry[1]() is not None]
+            for entry in self._kernels:
+                if entry[0] == key and entry[1]() is labels and entry[2] == stamp:
+                    return entry[3]
         params = {k: v.detach() for k, v in ens._selected(members).items()}
         budget = min(ens.memory_budget, forward_plans.CACHE_BYTES)
         kernel = ExpectedLossGradient.try_build(self.plan.steps, params, labels, sign, chunk_bytes=budget)
         with self._lock:
-            self._kernels[object()] = (key, labels, stamp, kernel)
-            while len(self._kernels) > _KEPT_KERNELS:
-                self._kernels.popitem(last=False)
+            self._kernels = (self._kernels + [(key, weakref.ref(labels), stamp, kernel)])[-_KEPT_KERNELS:]
         return kernel
 
 

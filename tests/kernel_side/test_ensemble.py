@@ -189,7 +189,7 @@ def test_inference_layouts_equal_the_member_loop(points, shape):
 def test_inference_chunks_over_members_equal_the_member_loop(monkeypatch):
     import jostle.posterior.forward as _forward
 
-    monkeypatch.setattr(_forward, "_CACHE_BYTES", 3 * 40 * 12 * 4)  # three members per chunk
+    monkeypatch.setattr(_forward, "CACHE_BYTES", 3 * 40 * 12 * 4)  # three members per chunk
     ens, nets = random_mlp_ensemble(members=8, hidden=(12, 12))
     x = torch.randn(40, 2, generator=torch.Generator().manual_seed(5))
     torch.testing.assert_close(ens.predict(x).member_probs, torch.softmax(_loop_logits(nets, x), -1),

@@ -1,8 +1,9 @@
-"""The hand-written batched backward of MLPPlan against torch.autograd.
+"""The gradient engine (Ensemble.value_and_input_grad, backward="auto") against torch.autograd.
 
 Reference: torch.autograd.grad through the same batched forward (``ens.logits`` with an
 input that requires grad), for the three attack objectives, several activations and
-depths, with and without chunking, member subsets and resampling.
+depths (planned stacks and those the engine sends to autograd), with and without
+chunking, member subsets and resampling.
 """
 import pytest
 import torch
@@ -10,9 +11,9 @@ from torch import nn
 
 import jostle
 import jostle.posterior.forward as _forward
-import jostle.attacks.problem as attack_core
 from jostle.posterior.forward import GeneralPlan, MLPPlan
-from jostle.attacks.problem import _objective, build_problem
+from jostle.posterior.gradients import objective_values as _objective
+from jostle.attacks.problem import build_problem
 
 OBJECTIVES = ("expected_loss", "predictive", "margin")
 TOLERANCE = {torch.float32: 1e-5, torch.float64: 1e-10}
@@ -46,13 +47,8 @@ def _autograd_reference(ens, x, labels, objective, samples=None, sign=1.0):
     return value.detach(), grad
 
 
-def _hand(ens, x, labels, objective, samples=None, sign=1.0, budget=None, separable=False):
-    params = ens._selected(samples)
-
-    def head(logits, where):
-        return sign * _objective(logits, labels[where], objective)
-
-    return ens._plan.value_and_input_grad(params, x, budget or ens.memory_budget, head, separable=separable)
+def _hand(ens, x, labels, objective, samples=None, sign=1.0):
+    return ens.value_and_input_grad(x, labels, objective, members=samples, targeted=sign < 0, backward="auto")
 
 
 def _assert_match(got, want, dtype):
@@ -68,6 +64,7 @@ def test_matches_autograd_for_each_activation(activation, objective, dtype):
     # Reference: torch.autograd on the same batched forward.
     ens = _ensemble(_mlp(activation), dtype=dtype)
     assert isinstance(ens._plan, MLPPlan)
+    assert ens._engine.planned == (activation in ("tanh", "relu", "sigmoid"))
     x = _points(dtype=dtype)
     labels = torch.tensor([0, 1, 2, 0, 1, 2, 0])
     _assert_match(_hand(ens, x, labels, objective), _autograd_reference(ens, x, labels, objective), dtype)
@@ -104,21 +101,21 @@ def test_uncoded_activations_and_layouts_match_autograd():
     _assert_match((value, grad), _autograd_reference(ens, x, labels, "predictive"), torch.float64)
 
 
+@pytest.mark.parametrize("activation", ["relu", "gelu"])
 @pytest.mark.parametrize("cache_bytes", [200, 2**20])
 @pytest.mark.parametrize("budget", [1, 30_000, 10**9])
-def test_chunking_over_points_and_members_changes_nothing(monkeypatch, budget, cache_bytes):
-    # Budget 1 takes one point at a time, 30,000 bytes five, 10**9 all eleven; a 200-byte
-    # cache block takes one member at a time. Reference: autograd.
-    monkeypatch.setattr(_forward, "_CACHE_BYTES", cache_bytes)
-    ens = _ensemble(_mlp("relu"), members=9)
+def test_chunking_over_points_and_members_changes_nothing(monkeypatch, budget, cache_bytes, activation):
+    # Budget 1 takes one point and one member at a time, 30,000 bytes a few, 10**9 all
+    # eleven; a 200-byte cache block takes one member at a time. ReLU takes the planned
+    # passes, GELU autograd. Reference: autograd.
+    monkeypatch.setattr(_forward, "CACHE_BYTES", cache_bytes)
+    ens = _ensemble(_mlp(activation), members=9, memory_budget=budget)
+    assert ens._engine.planned == (activation == "relu")
     x = _points(n=11)
     labels = torch.arange(11) % 3
     for objective in OBJECTIVES:
-        _assert_match(_hand(ens, x, labels, objective, budget=budget),
+        _assert_match(_hand(ens, x, labels, objective),
                       _autograd_reference(ens, x, labels, objective), torch.float64)
-    # The expected loss is a mean of per-member terms: member chunks may run one by one.
-    _assert_match(_hand(ens, x, labels, "expected_loss", budget=budget, separable=True),
-                  _autograd_reference(ens, x, labels, "expected_loss"), torch.float64)
 
 
 @pytest.mark.parametrize("samples", [4, [5, 0, 2], torch.tensor([3, 3, 1])])
@@ -134,17 +131,16 @@ def test_member_subsets_match_autograd(samples):
 @pytest.mark.parametrize("objective", OBJECTIVES)
 @pytest.mark.parametrize("options", [{}, {"samples": 3, "resample": True}, {"samples": [1, 4]},
                                      {"target": [2, 0, 1, 2, 0, 1, 2]}])
-def test_attack_problem_gradient_is_unchanged_by_the_hand_backward(monkeypatch, objective, options):
-    # The attack's input gradient with the hand-written backward equals the autograd one,
+def test_attack_problem_gradient_is_unchanged_by_the_hand_backward(objective, options):
+    # The attack's input gradient with the planned passes equals the autograd one,
     # drawing the same members when resampling (the same seeded generator in both).
     ens = _ensemble(_mlp("tanh"), dtype=torch.float32)
     x = _points(dtype=torch.float32)
     results = []
-    for hand in (True, False):
-        monkeypatch.setattr(attack_core, "HAND_BACKWARD", hand)
+    for backward in ("auto", "autograd"):
         problem = build_problem(ens, x, None, eps=0.1, norm="inf", objective=objective, samples=options.get("samples"),
                                 resample=options.get("resample", False), target=options.get("target"),
-                                bounds=None, seed=3)
+                                bounds=None, seed=3, backward=backward)
         results.append([problem.objective_and_grad(x + 0.01 * k) for k in range(3)])
     for got, want in zip(*results):
         _assert_match(got, want, torch.float32)
@@ -178,15 +174,13 @@ def test_general_plan_ensembles_keep_autograd():
     torch.testing.assert_close(grad, want, rtol=1e-10, atol=1e-12)
 
 
-def test_attacks_agree_with_and_without_the_hand_backward(monkeypatch):
+def test_attacks_agree_with_and_without_the_hand_backward():
     # End to end: PGD iterates are the same whichever backward computes the gradient
     # (float64, so sign steps cannot flip on rounding).
     ens = _ensemble(_mlp("tanh"), dtype=torch.float64)
     x = _points()
-    runs = []
-    for hand in (True, False):
-        monkeypatch.setattr(attack_core, "HAND_BACKWARD", hand)
-        runs.append(jostle.attack(ens, x, eps=0.2, steps=10, seed=4, objective="predictive"))
+    runs = [jostle.attack(ens, x, eps=0.2, steps=10, seed=4, objective="predictive", backward=backward)
+            for backward in ("auto", "autograd")]
     # Sign steps: while the signs agree both paths compute the same floats; one flipped sign
     # would differ by a whole step (0.05), so 1e-12 only tells the two cases apart.
     torch.testing.assert_close(runs[0].x_adv, runs[1].x_adv, rtol=0, atol=1e-12)
@@ -196,9 +190,10 @@ def test_attacks_agree_with_and_without_the_hand_backward(monkeypatch):
 
 @pytest.mark.parametrize("objective", OBJECTIVES)
 def test_network_ending_in_an_activation_matches_autograd(objective):
-    # The first backward step then overwrites the logit gradient itself; reference: autograd.
+    # Not covered by the planned passes: the engine takes autograd; reference: autograd.
     ens = _ensemble(lambda: nn.Sequential(nn.Linear(3, 5), nn.ReLU(), nn.Linear(5, 3), nn.Sigmoid()))
     x = _points()
     labels = torch.tensor([0, 2, 1, 1, 0, 2, 2])
     want = _autograd_reference(ens, x, labels, objective)
-    _assert_match(_hand(ens, x, labels, objective, separable=objective == "expected_loss"), want, torch.float64)
+    assert not ens._engine.planned
+    _assert_match(_hand(ens, x, labels, objective), want, torch.float64)

@@ -13,8 +13,9 @@ import torch
 from torch import nn
 
 import jostle
+import jostle.posterior.forward as _forward
 import jostle.posterior.planned_gradient as _input_grad
-import jostle.attacks.problem as attack_core
+from jostle.posterior.gradients import objective_values as _objective
 from jostle.posterior.planned_gradient import ExpectedLossGradient
 from jostle.attacks.problem import build_problem
 
@@ -185,9 +186,11 @@ def test_stacks_it_does_not_cover_fall_back(make):
     assert _planned(ens, _labels(3, 2)) is None
 
 
-def test_fallback_stacks_still_attack_through_the_general_hand_backward():
-    # GELU: the attack problem falls back to MLPPlan.value_and_input_grad; reference autograd.
+def test_fallback_stacks_still_attack_through_autograd():
+    # GELU: the gradient engine takes autograd through the batched forward; reference: autograd
+    # of the cross-entropy itself (nn.functional.cross_entropy).
     ens = _ensemble(lambda: jostle.mlp(2, 2, hidden=(6,), activation="gelu"))
+    assert not ens._engine.planned
     x = _points(5, (2,))
     labels = _labels(5, 2)
     problem = build_problem(ens, x, labels, eps=0.1, norm="inf", objective="expected_loss", samples=None,
@@ -205,7 +208,7 @@ def test_wrong_input_shape_is_named():
 @pytest.mark.parametrize("options", [{}, {"samples": 4}, {"samples": [0, 3, 5]}, {"samples": 3, "resample": True},
                                      {"target": [1, 0, 1, 1, 0, 0]}])
 def test_attack_problem_uses_the_planned_gradient_and_matches_autograd(monkeypatch, options):
-    # Reference: the same problem's autograd path (HAND_BACKWARD off), same seeded member draws.
+    # Reference: the same problem's autograd path (backward="autograd"), same seeded member draws.
     ens = _ensemble(CASES["2d-tanh-2-classes"][0], dtype=torch.float32)
     x = _points(6, (2,), dtype=torch.float32)
     built = []
@@ -216,14 +219,13 @@ def test_attack_problem_uses_the_planned_gradient_and_matches_autograd(monkeypat
         return original(cls, *args, **kwargs)
 
     results = []
-    for hand in (True, False):
-        monkeypatch.setattr(attack_core, "HAND_BACKWARD", hand)
-        monkeypatch.setattr(ExpectedLossGradient, "try_build", classmethod(counting))
+    monkeypatch.setattr(ExpectedLossGradient, "try_build", classmethod(counting))
+    for backward in ("auto", "autograd"):
         problem = build_problem(ens, x, None, eps=0.1, norm="inf", objective="expected_loss",
                                 samples=options.get("samples"), resample=options.get("resample", False),
-                                target=options.get("target"), bounds=None, seed=3)
+                                target=options.get("target"), bounds=None, seed=3, backward=backward)
         results.append([problem.objective_and_grad(x + 0.01 * k) for k in range(3)])
-        if hand:
+        if backward == "auto":
             # planned once for a fixed attacker, at every evaluation when resampling
             assert len(built) == (3 if options.get("resample") else 1)
     for got, want in zip(*results):
@@ -241,17 +243,15 @@ def _lipschitz_bound(ens):
     return 2.0 * float(norms.max())
 
 
-def test_pgd_iterates_equal_the_autograd_path(monkeypatch):
+def test_pgd_iterates_equal_the_autograd_path():
     # End to end in float64: PGD, restarts, targeted, L2. Reference: the autograd path.
     ens = _ensemble(CASES["2d-relu-3-classes"][0])
     x = _points(8, (2,))
     steps = 12
     lipschitz = _lipschitz_bound(ens)
     for kwargs in ({"restarts": 2}, {"target": _labels(8, 3, seed=9)}, {"norm": "2", "eps": 0.5}):
-        runs = []
-        for hand in (True, False):
-            monkeypatch.setattr(attack_core, "HAND_BACKWARD", hand)
-            runs.append(jostle.attack(ens, x, steps=steps, seed=4, **{"eps": 0.3, **kwargs}))
+        runs = [jostle.attack(ens, x, steps=steps, seed=4, backward=backward, **{"eps": 0.3, **kwargs})
+                for backward in ("auto", "autograd")]
         if kwargs.get("norm") != "2":
             # L-inf steps are eps-scaled signs: while every gradient sign agrees (float64
             # gradients differ by ~1e-15 relative) both paths compute the same floats, and
@@ -276,7 +276,7 @@ def test_pgd_iterates_equal_the_autograd_path(monkeypatch):
 def test_chunk_budget_is_a_module_setting(monkeypatch):
     ens = _ensemble(CASES["2d-tanh-2-classes"][0], members=6)
     labels = _labels(4, 2)
-    monkeypatch.setattr(_input_grad, "CHUNK_BYTES", 4 * 16 * 8 * 2)
+    monkeypatch.setattr(_forward, "CACHE_BYTES", 4 * 16 * 8 * 2)
     assert len(_planned(ens, labels).chunks) == 3
 
 
@@ -304,16 +304,16 @@ def test_member_gradients_match_autograd_member_by_member(case, chunk_bytes):
         torch.testing.assert_close(got, want, **MEMBER_TOLERANCE)
 
 
-def test_member_gradients_public_function_takes_the_planned_path(monkeypatch):
+def test_member_gradients_public_function_takes_the_planned_path():
     # jostle.member_gradients: planned path and the vmap path agree (reference: vmap(grad)).
     from jostle.attacks.readouts import member_gradients
 
     ens = _ensemble(CASES["2d-relu-3-classes"][0])
+    assert ens._engine.planned
     x = _points(10, (2,))
     labels = _labels(10, 3)
     planned = member_gradients(ens, x, labels)
-    monkeypatch.setattr(attack_core, "HAND_BACKWARD", False)
-    torch.testing.assert_close(planned, member_gradients(ens, x, labels), **MEMBER_TOLERANCE)
+    torch.testing.assert_close(planned, member_gradients(ens, x, labels, backward="autograd"), **MEMBER_TOLERANCE)
 
 
 @pytest.mark.parametrize("points", [1, 2, 3])
@@ -373,8 +373,6 @@ def test_one_kernel_called_from_two_threads_at_once():
 
 
 def _reference_head(ens, x, labels, objective, sign=1.0):
-    from jostle.attacks.problem import _objective
-
     leaf = x.detach().clone().requires_grad_(True)
     value = sign * _objective(ens.logits(leaf), labels, objective)
     (grad,) = torch.autograd.grad(value.sum(), leaf)
@@ -385,8 +383,6 @@ def _reference_head(ens, x, labels, objective, sign=1.0):
 @pytest.mark.parametrize("case", sorted(CASES))
 def test_any_head_matches_autograd(case, objective):
     # Reference: torch.autograd through ens.logits of the attack objectives themselves.
-    from jostle.attacks.problem import _objective
-
     make, shape, classes = CASES[case]
     ens = _ensemble(make)
     x = _points(8, shape)
@@ -410,18 +406,25 @@ def test_any_head_needs_one_chunk():
 @pytest.mark.parametrize("objective", ["predictive", "margin"])
 def test_attack_problem_takes_the_planned_head_or_falls_back(monkeypatch, objective):
     # One chunk: the planned passes with autograd on the head; forced into several
-    # chunks: the general hand backward. Both equal the autograd path (HAND_BACKWARD off).
-    ens = _ensemble(CASES["2d-relu-3-classes"][0])
+    # chunks (a 300-byte memory budget): autograd. Both equal the autograd path.
+    heads = []
+    original = ExpectedLossGradient.head_value_and_grad
+
+    def counting(self, *args, **kwargs):
+        heads.append(1)
+        return original(self, *args, **kwargs)
+
+    monkeypatch.setattr(ExpectedLossGradient, "head_value_and_grad", counting)
     x = _points(6, (2,))
     results = []
-    for hand, chunk in ((True, None), (True, 300), (False, None)):
-        monkeypatch.setattr(attack_core, "HAND_BACKWARD", hand)
-        if chunk is not None:
-            monkeypatch.setattr(_input_grad, "CHUNK_BYTES", chunk)
+    for backward, budget in (("auto", None), ("auto", 300), ("autograd", None)):
+        ens = _ensemble(CASES["2d-relu-3-classes"][0])
+        if budget is not None:
+            ens = jostle.Ensemble(ens.template, ens.params, memory_budget=budget)
         problem = build_problem(ens, x, None, eps=0.1, norm="inf", objective=objective, samples=None,
-                                resample=False, target=None, bounds=None, seed=3)
+                                resample=False, target=None, bounds=None, seed=3, backward=backward)
+        heads.clear()
         results.append(problem.objective_and_grad(x + 0.01))
-        if hand:
-            assert problem._kernels["planned"] is not None and problem._kernels["planned"].takes_any_head == (chunk is None)
+        assert len(heads) == (1 if backward == "auto" and budget is None else 0)
     for got in results[:2]:
         _assert_match(got, results[2], torch.float64)
