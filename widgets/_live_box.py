@@ -182,13 +182,13 @@ class LiveBox(w.VBox):
 
     def _started(self, generation: int, state: live.ExplorerState) -> None:
         changed = _changed(self._last_state, state)
-        self.show_value(generation, "busy", f"computing after a change of {changed}" if changed else "computing the view")
+        self._show_status(generation, "busy", f"computing after a change of {changed}" if changed else "computing the view")
 
     def _deliver(self, outcome: live.Outcome) -> None:
         if outcome.error is not None:
             self._error = _readable(outcome.error)
             self._error_generation = outcome.generation
-            self.show_value(outcome.generation, "error", self._error)
+            self._show_status(outcome.generation, "error", self._error)
             return
         view = outcome.result
         with self._view_lock:
@@ -198,13 +198,13 @@ class LiveBox(w.VBox):
         if view.errors:
             self._error = "; ".join(view.errors)
             self._error_generation = outcome.generation
-            self.show_value(outcome.generation, "error", self._error)
+            self._show_status(outcome.generation, "error", self._error)
             return
         parts = ", ".join(view.recomputed) if view.recomputed else "nothing new"
         text = f"updated in {outcome.elapsed * 1000:.0f} ms (computed: {parts})"
-        self.show_value(outcome.generation, "idle", "; ".join([text] + view.notes))
+        self._show_status(outcome.generation, "idle", "; ".join([text] + view.notes))
 
-    def show_value(self, generation: int, state: str, text: str) -> None:
+    def _show_status(self, generation: int, state: str, text: str) -> None:
         if self._error is not None and generation <= self._error_generation and state != "error":
             state, text = "error", f"{self._error} (showing the last accepted settings)"
         elif state != "error" and generation > self._error_generation:
