@@ -8,7 +8,6 @@ exactly the gradient of its own loss.
 """
 from __future__ import annotations
 
-import contextlib
 import copy
 import time
 from dataclasses import dataclass, field
@@ -17,6 +16,8 @@ from typing import Any, Callable
 import torch
 from torch import Tensor, nn
 
+from jostle.common.progress import progress_bar
+from jostle.common.threads import threads_for, torch_threads
 from jostle.common.checks import show_value, check_choice, check_float, check_int
 from jostle.datasets import Dataset
 from jostle.posterior.architectures import architecture_of, init_parameters
@@ -174,7 +175,7 @@ def train_members(
     """
     started = time.perf_counter()
     trainable = [p for p in params.values() if p.requires_grad]
-    with threads_for(sum(p.numel() for p in trainable), x.device):
+    with training_threads(sum(p.numel() for p in trainable), x.device):
         return _train_loop(params, trainable, member_loss, x, y, generators, config, validation_loss,
                            progress, desc, started)
 
@@ -184,7 +185,7 @@ def _train_loop(params, trainable, member_loss, x, y, generators, config, valida
     optimiser = _optimiser(trainable, config)
     n = int(x.shape[0])
     tracker = _BestTracker(params, validation_loss, config.patience) if validation_loss else None
-    bar = _progress(config.epochs, progress, desc)
+    bar = progress_bar(bool(progress), config.epochs, desc, unit="epoch")
     history: list[float] = []
     epoch_loss = torch.zeros(len(generators))
     epochs_run = 0
@@ -201,18 +202,15 @@ def _train_loop(params, trainable, member_loss, x, y, generators, config, valida
         epoch_loss = (total / n).cpu()
         history.append(float(epoch_loss.mean()))
         if not bool(torch.isfinite(epoch_loss).all()):
-            if bar is not None:
-                bar.close()
+            bar.close()
             raise ValueError(f"training diverged: the loss became {history[-1]} in epoch {len(history)}; "
                              f"lr = {config.lr:g} is probably too large")
         epochs_run = epoch + 1
-        if bar is not None:
-            bar.update(1)
-            bar.set_postfix(loss=f"{history[-1]:.4f}")
+        bar.update(1)
+        bar.set_postfix(loss=f"{history[-1]:.4f}")
         if tracker is not None and tracker.update(epoch):
             break
-    if bar is not None:
-        bar.close()
+    bar.close()
     best = tracker.restore() if tracker is not None else None
     return TrainingRecord(epochs_run, epoch_loss.tolist(), best, time.perf_counter() - started, history)
 
@@ -232,38 +230,21 @@ def fit_meta(method: str, data: Dataset, module: nn.Module, seed: int, seconds: 
     return meta
 
 
-# Below this many trainable elements every op of a step is tiny, and a second thread
+# Up to this many trainable elements every op of a step is tiny, and a second thread
 # only adds pool hand-offs: on a shared 2-core CPU under load, measured 5-40 ms per
 # minibatch cross-entropy with 2 threads against 0.1 ms with one.
-_SINGLE_THREAD_BELOW = 2**20
+_SMALL_TRAINING = 2**20
 
 
-@contextlib.contextmanager
-def threads_for(elements: int, device: torch.device):
-    """Train small CPU problems on one intra-op thread, restoring the setting afterwards."""
-    before = torch.get_num_threads()
-    single = device.type == "cpu" and elements < _SINGLE_THREAD_BELOW and before > 1
-    if single:
-        torch.set_num_threads(1)
-    try:
-        yield
-    finally:
-        if single:
-            torch.set_num_threads(before)
+def training_threads(elements: int, device: torch.device):
+    """Train small CPU problems on one intra-op thread (the rule of :func:`threads_for`)."""
+    return torch_threads(threads_for("auto", elements, device, small=_SMALL_TRAINING))
 
 
 def _optimiser(trainable: list[Tensor], config: TrainingConfig) -> torch.optim.Optimizer:
     if config.optimizer == "adam":
         return torch.optim.Adam(trainable, lr=config.lr, weight_decay=config.weight_decay)
     return torch.optim.SGD(trainable, lr=config.lr, momentum=config.momentum, weight_decay=config.weight_decay)
-
-
-def _progress(epochs: int, progress: bool, desc: str):
-    if not progress:
-        return None
-    from tqdm.auto import tqdm
-
-    return tqdm(total=epochs, desc=desc, unit="epoch", leave=False)
 
 
 class _BestTracker:
