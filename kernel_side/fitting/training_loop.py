@@ -1,5 +1,8 @@
 """The pieces every ``fit_*`` shares: argument checks, the stacked training loop, metadata.
 
+The shared training keywords themselves are :class:`TrainingOptions`
+(:mod:`jostle.fitting.training_options`), importable from here too.
+
 Members are trained together as stacked parameters ``[S, ...]`` under one optimiser.
 Adam and SGD update every element on its own, so one optimiser over the stacks is
 exactly S separate optimisers, as long as each member's loss depends only on its own
@@ -18,29 +21,13 @@ from torch import Tensor, nn
 
 from jostle.common.progress import progress_bar
 from jostle.common.threads import threads_for, torch_threads
-from jostle.common.checks import show_value, check_choice, check_float, check_int
 from jostle.datasets import Dataset
+from jostle.fitting.training_options import (  # noqa: F401 (check_device is shared from here too)
+    OPTIMIZERS, TrainingOptions, check_device,
+)
 from jostle.posterior.architectures import architecture_of, init_parameters
 
 MemberLoss = Callable[[dict, Tensor, Tensor], Tensor]
-OPTIMIZERS = ("adam", "sgd")
-
-
-@dataclass(frozen=True)
-class TrainingConfig:
-    """Checked optimisation settings shared by every fit."""
-
-    epochs: int
-    batch_size: int
-    lr: float
-    weight_decay: float
-    optimizer: str
-    momentum: float
-    validation: float
-    patience: int
-
-    def as_meta(self) -> dict:
-        return dict(self.__dict__)
 
 
 @dataclass
@@ -52,34 +39,6 @@ class TrainingRecord:
     best_epoch: list[int] | None = None
     seconds: float = 0.0
     history: list[float] = field(default_factory=list)
-
-
-def check_config(
-    epochs: Any, batch_size: Any, lr: Any, weight_decay: Any, optimizer: Any,
-    momentum: Any, validation: Any, patience: Any,
-) -> TrainingConfig:
-    return TrainingConfig(
-        epochs=check_int("epochs", epochs, low=1),
-        batch_size=check_int("batch_size", batch_size, low=1),
-        lr=check_float("lr", lr, low=0.0, low_open=True),
-        weight_decay=check_float("weight_decay", weight_decay, low=0.0),
-        optimizer=check_choice("optimizer", optimizer, OPTIMIZERS),
-        momentum=check_float("momentum", momentum, low=0.0, high=1.0, high_open=True),
-        validation=check_float("validation", validation, low=0.0, high=1.0, high_open=True),
-        patience=check_int("patience", patience, low=1),
-    )
-
-
-def check_device(device: Any) -> torch.device:
-    if device is None:
-        return torch.device("cpu")
-    try:
-        device = torch.device(device)
-    except (RuntimeError, TypeError):
-        raise ValueError(f"device must name a torch device such as 'cpu' or 'cuda'; got {show_value(device)}") from None
-    if device.type == "meta":
-        raise ValueError("device must hold values to train on, such as 'cpu' or 'cuda'; got 'meta'")
-    return device
 
 
 def check_module_and_data(module: Any, data: Any) -> None:
@@ -160,7 +119,7 @@ def train_members(
     x: Tensor,
     y: Tensor,
     generators: list[torch.Generator],
-    config: TrainingConfig,
+    config: TrainingOptions,
     *,
     validation_loss: Callable[[dict], Tensor] | None = None,
     progress: bool = True,
@@ -241,7 +200,7 @@ def training_threads(elements: int, device: torch.device):
     return torch_threads(threads_for("auto", elements, device, small=_SMALL_TRAINING))
 
 
-def _optimiser(trainable: list[Tensor], config: TrainingConfig) -> torch.optim.Optimizer:
+def _optimiser(trainable: list[Tensor], config: TrainingOptions) -> torch.optim.Optimizer:
     if config.optimizer == "adam":
         return torch.optim.Adam(trainable, lr=config.lr, weight_decay=config.weight_decay)
     return torch.optim.SGD(trainable, lr=config.lr, momentum=config.momentum, weight_decay=config.weight_decay)

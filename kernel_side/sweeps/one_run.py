@@ -11,7 +11,6 @@ different orders.
 """
 from __future__ import annotations
 
-import inspect
 import os
 import platform
 import socket
@@ -86,7 +85,7 @@ def fit_run(config: dict):
     fit = getattr(jostle, METHODS[name], None)
     if fit is None:
         raise RuntimeError(f"jostle.{METHODS[name]} is not available in this installation of jostle")
-    if "progress" in inspect.signature(fit).parameters:
+    if "progress" in fit.training_options:
         method["progress"] = False  # one bar for the whole sweep, not one per fit
     ens = fit(net, data, seed=config["seed"], **method)
     ens.meta.setdefault("method", name)

@@ -19,6 +19,7 @@ from torch import Tensor, nn
 from jostle.common.checks import show_value, check_choice, check_float, check_int
 from jostle.common.threads import threads_for, torch_threads
 from jostle.fitting.training_loop import stream_seed
+from jostle.fitting.training_options import training_fit
 from jostle.fitting.hmc.network_density import (
     NetworkPosterior, convergence_checks, function_space_diagnostics, map_start, prior_start,
 )
@@ -30,6 +31,7 @@ from jostle.posterior.architectures import architecture_of
 __all__ = ["fit_hmc"]
 
 
+@training_fit(("seed", "device", "progress"))
 def fit_hmc(
     module: nn.Module,
     data,
