@@ -11,7 +11,7 @@ import traitlets as t
 from jostle.sweeps.results_db import RunStore
 from jostle.sweeps.chart_data import ROBUSTNESS_MEASURES, sweep_view
 
-from ._charts import share_axis
+from jostle.common.ticks import share_axis
 from ._wire import to_wire
 from .sweep_chart import SweepChart
 

@@ -19,6 +19,7 @@ from torch import Tensor, nn
 
 from jostle.common.checks import as_float_tensor, check_float, check_int
 from jostle.fitting.training_loop import stream_seed
+from jostle.fitting.training_options import TrainingOptions, training_fit
 from jostle.datasets import Dataset
 from jostle.posterior.ensemble import Ensemble
 from jostle.fitting.point_estimates import fit_map
@@ -29,6 +30,7 @@ __all__ = [
 ]
 
 
+@training_fit()
 def fit_laplace(
     module: nn.Module,
     data: Dataset,
@@ -49,6 +51,9 @@ def fit_laplace(
 ) -> Ensemble:
     """Last-layer Laplace around the MAP network, ``samples`` draws folded into an ensemble.
 
+    The training options are those of the MAP fit (:func:`jostle.fit_map`); ``seed``
+    seeds it and the draws.
+
     Parameters
     ----------
     module : nn.Sequential
@@ -59,12 +64,7 @@ def fit_laplace(
     prior_precision : float, optional
         Precision of the N(0, 1/prior_precision I) prior on the last layer. None picks
         the value maximising the Laplace marginal likelihood (a log grid, then Brent).
-    epochs, batch_size, lr, weight_decay, optimizer, momentum, validation, patience
-        Settings of the MAP fit, as in :func:`jostle.fit_map`.
-    seed : int
-        Seeds the MAP fit and the draws.
-    progress : bool
-    device : str or torch.device, optional
+    {training_options}
 
     Returns
     -------
@@ -72,13 +72,16 @@ def fit_laplace(
         ``meta["method"] == "laplace"``; its ``posterior`` attribute is the
         :class:`LastLayerLaplace` (mean, precision; ``.draw(samples, seed)``).
     """
+    options = TrainingOptions(
+        epochs=epochs, batch_size=batch_size, lr=lr, weight_decay=weight_decay, optimizer=optimizer,
+        momentum=momentum, validation=validation, patience=patience, seed=seed, progress=progress, device=device,
+    ).checked()
     samples = check_int("samples", samples, low=1)
     if prior_precision is not None:
         prior_precision = check_float("prior_precision", prior_precision, low=0.0, low_open=True)
     _last_linear(module)
-    point = fit_map(module, data, epochs=epochs, batch_size=batch_size, lr=lr, weight_decay=weight_decay,
-                    optimizer=optimizer, momentum=momentum, validation=validation, patience=patience,
-                    seed=seed, progress=progress, device=device)
+    point = fit_map(module, data, **options.keywords())
+    seed = options.seed
     posterior = LastLayerLaplace.around(point, data.x_train.to(point.device), data.y_train.to(point.device),
                                         prior_precision)
     ensemble = posterior.draw(samples, seed=stream_seed(seed, 3) % 2**31)

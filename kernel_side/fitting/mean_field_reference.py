@@ -18,7 +18,8 @@ from torch import Tensor
 from torch.nn import functional as F
 
 from jostle.common.checks import as_float_tensor, check_float, check_int
-from jostle.fitting.training_loop import threads_for
+from jostle.common.progress import progress_bar
+from jostle.fitting.training_loop import training_threads
 
 __all__ = ["gaussian_kl", "softplus_inverse", "MeanFieldGaussian", "fit_mean_field"]
 
@@ -117,13 +118,13 @@ def fit_mean_field(
     rho = softplus_inverse(torch.full_like(mean, init_std)).requires_grad_(True)
     optimiser = torch.optim.Adam([mean, rho], lr=lr)
     schedule = torch.optim.lr_scheduler.CosineAnnealingLR(optimiser, T_max=steps, eta_min=lr * 0.01)
-    with threads_for(mean.numel() * draws, mean.device):
+    with training_threads(mean.numel() * draws, mean.device):
         return _ascend(log_density, mean, rho, optimiser, schedule, steps, draws, batched, generator, progress)
 
 
 def _ascend(log_density, mean, rho, optimiser, schedule, steps, draws, batched, generator, progress):
     elbo: list[float] = []
-    bar = _bar(steps, progress)
+    bar = progress_bar(bool(progress), steps, "mean-field VI", unit="step")
     for _ in range(steps):
         std = F.softplus(rho)
         noise = torch.randn(draws, *mean.shape, generator=generator, dtype=mean.dtype, device=mean.device)
@@ -135,11 +136,10 @@ def _ascend(log_density, mean, rho, optimiser, schedule, steps, draws, batched, 
         optimiser.step()
         schedule.step()
         elbo.append(float(objective.detach()) + 0.5 * mean.numel() * (1 + math.log(2 * math.pi)))
-        if bar is not None:
-            bar.update(1)
+        bar.update(1)
+        if not bar.disable:
             bar.set_postfix(elbo=f"{elbo[-1]:.4f}")
-    if bar is not None:
-        bar.close()
+    bar.close()
     return MeanFieldGaussian(mean.detach(), F.softplus(rho).detach(), elbo)
 
 
@@ -163,11 +163,3 @@ def _evaluate(log_density: Callable[[Tensor], Tensor], theta: Tensor, batched: b
 
 def _is_double(value: Any) -> bool:
     return getattr(value, "dtype", None) in (torch.float64, "float64") or str(getattr(value, "dtype", "")) == "float64"
-
-
-def _bar(total: int, progress: bool):
-    if not progress:
-        return None
-    from tqdm.auto import tqdm
-
-    return tqdm(total=total, desc="mean-field VI", unit="step", leave=False)

@@ -4,13 +4,13 @@
 compute code (no widget libraries). It never raises for a failing run: the failure comes
 back as a record with ``status = "failed"`` and the traceback, so the other runs go on.
 
-Determinism: each run sets ``torch.set_num_threads(1)`` while it runs (restoring the old
-value afterwards), so a seeded run gives bit-identical metrics in the calling process and
-in a worker process, whose thread pools would otherwise reduce sums in different orders.
+Determinism: each run holds torch to one intra-op thread while it runs (``torch_threads(1)``,
+restoring the old count afterwards), so a seeded run gives bit-identical metrics in the
+calling process and in a worker process, whose thread pools would otherwise reduce sums in
+different orders.
 """
 from __future__ import annotations
 
-import inspect
 import os
 import platform
 import socket
@@ -26,6 +26,7 @@ import torch
 
 from jostle import datasets as _datasets
 from jostle import metrics as _metrics
+from jostle.common.threads import torch_threads
 from jostle.files.posterior_file import jsonable
 from jostle.sweeps.spec import METHODS, run_key
 
@@ -58,11 +59,9 @@ def execute_run(config: dict, save_ensemble: bool = False) -> dict:
         "started": time.time(), "finished": None, "worker": f"{socket.gethostname()}:{os.getpid()}",
         "versions": software_versions(), "ensemble_bytes": None,
     }
-    threads = torch.get_num_threads()
-    torch.set_num_threads(1)
     caught: list = []
     try:
-        with warnings.catch_warnings(record=True) as caught:
+        with torch_threads(1), warnings.catch_warnings(record=True) as caught:
             # Kept with the run (a convergence warning is a result), not printed on a worker.
             warnings.simplefilter("always")
             _fit_and_score(config, save_ensemble, record)
@@ -70,7 +69,6 @@ def execute_run(config: dict, save_ensemble: bool = False) -> dict:
         record["error"] = f"{type(err).__name__}: {err}".splitlines()[0][:500]
         record["traceback"] = traceback.format_exc()
     finally:
-        torch.set_num_threads(threads)
         record["finished"] = time.time()
         record["warnings"] = sorted({f"{w.category.__name__}: {w.message}" for w in caught or []})
     return record
@@ -87,7 +85,7 @@ def fit_run(config: dict):
     fit = getattr(jostle, METHODS[name], None)
     if fit is None:
         raise RuntimeError(f"jostle.{METHODS[name]} is not available in this installation of jostle")
-    if "progress" in inspect.signature(fit).parameters:
+    if "progress" in fit.training_options:
         method["progress"] = False  # one bar for the whole sweep, not one per fit
     ens = fit(net, data, seed=config["seed"], **method)
     ens.meta.setdefault("method", name)

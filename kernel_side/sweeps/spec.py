@@ -237,10 +237,9 @@ def _check_hyperparameter_name(method: str, key: str, where: str) -> None:
     fit = fit_function(method)
     if fit is None:
         return  # cannot list the hyper-parameters of a fit this installation lacks
-    parameters = inspect.signature(fit).parameters
-    if any(p.kind is inspect.Parameter.VAR_KEYWORD for p in parameters.values()):
-        return
-    allowed = [p for p in list(parameters)[2:] if p not in _RESERVED_FIT_ARGS]
+    # Each fit declares its options (jostle.fitting.training_options.training_fit): its own,
+    # then the shared training options it takes.
+    allowed = [p for p in (*fit.method_options, *fit.training_options) if p not in _RESERVED_FIT_ARGS]
     if key not in allowed:
         raise SweepConfigError(
             f"{where}.{key}: unknown hyper-parameter of {METHODS[method]} (known: {_listing(allowed)})"
