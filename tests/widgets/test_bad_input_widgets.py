@@ -27,7 +27,7 @@ BAD = {
                 r"samples must be (an integer in \[1, 3\]|an int)"),
     "steps": (st.one_of(st.integers(max_value=0), st.integers(min_value=10_001), st.floats(0.5, 9.5), st.text(max_size=3)),
               r"steps must be an integer in \[1, 10000\]"),
-    "method": (st.one_of(st.text(max_size=6).filter(lambda s: s not in jostle.live.engine.METHODS), st.integers(), st.none()),
+    "method": (st.one_of(st.text(max_size=6).filter(lambda s: s not in jostle.attacks.run.attack_names()), st.integers(), st.none()),
                r"method must be one of 'fgsm', 'pgd', 'cw', 'spsa', 'square'"),
     "norm": (st.one_of(st.sampled_from(["1", "l2", "INF", ""]), st.integers()), r"norm must be one of 'inf', '2'"),
     "objective": (st.one_of(st.sampled_from(["margin", "loss", ""]), st.integers()), r"objective must be one of"),

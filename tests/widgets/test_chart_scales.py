@@ -17,7 +17,7 @@ import jostle
 from jostle.widgets import Explorer, ImageExplorer
 from jostle.widgets._charts import count_axis, loss_axis_for, path_chart, tick_label_limit
 
-from .conftest import has_attacks, tiny_ensemble
+from .conftest import tiny_ensemble
 
 
 def _figures(widget):
@@ -79,7 +79,6 @@ def test_tick_label_limit_shrinks_with_the_number_of_classes():
     assert tick_label_limit(2) == 12 and tick_label_limit(10) == 4 and tick_label_limit(6) == 8
 
 
-@has_attacks
 def test_a_flat_loss_at_a_confident_point_still_draws_both_lines_on_finite_scales(moons):
     ens = _confident_net()
     ex = Explorer(ens, moons, point=[-2.0, -2.0], budget=0.2, steps=8, grid=8, boundaries=1)
