@@ -30,7 +30,7 @@ BAD = {
     "method": (st.one_of(st.text(max_size=6).filter(lambda s: s not in jostle.attacks.run.attack_names()), st.integers(), st.none()),
                r"method must be one of 'fgsm', 'pgd', 'cw', 'spsa', 'square'"),
     "norm": (st.one_of(st.sampled_from(["1", "l2", "INF", ""]), st.integers()), r"norm must be one of 'inf', '2'"),
-    "objective": (st.one_of(st.sampled_from(["margin", "loss", ""]), st.integers()), r"objective must be one of"),
+    "objective": (st.one_of(st.sampled_from(["hinge", "loss", ""]), st.integers()), r"objective must be one of"),
     "layer": (st.sampled_from(["probs", "", "Entropy"]), r"layer must be one of 'predictive', 'epistemic', 'entropy'"),
     "point": (st.one_of(st.lists(st.floats(-1, 1), min_size=0, max_size=4).filter(lambda p: len(p) != 2),
                         st.tuples(NOT_FINITE, st.floats(-1, 1)).map(list), st.just([1e300, 0.0]),
