@@ -1,9 +1,8 @@
 """Packing an attack's outcome: the one helper every attack method ends with."""
 from __future__ import annotations
 
-from torch import Tensor
-
 from jostle.attacks.problem import AttackProblem, AttackResult, norm_of
+from torch import Tensor
 
 __all__ = ["finish"]
 
