@@ -11,7 +11,7 @@ from typing import Any
 
 # The method modules register their attacks on import (this order is the order offered).
 import jostle.attacks.gradient_methods
-import jostle.attacks.gradient_free
+import jostle.attacks.gradient_free  # noqa: F401
 from jostle.attacks.problem import AttackResult, build_problem, compute_threads
 from jostle.attacks.registry import (AttackSpec, attack_choices, attack_names, attack_spec, register_attack,
                                      registered_norms, registered_objectives, resolve_settings, unregister_attack)
