@@ -27,7 +27,7 @@ from jostle.fitting.training_options import OPTIMISER_OPTIONS, TRAINING_OPTIONS,
 from jostle.posterior.forward import MLPPlan, make_plan
 from jostle.datasets import Dataset
 from jostle.posterior.ensemble import Ensemble
-from jostle.fitting.mean_field_reference import gaussian_kl, softplus_inverse
+from jostle.fitting.gaussians import gaussian_kl, softplus_inverse
 
 __all__ = ["fit_vi", "VariationalPosterior", "vi_method_label", "DEFAULT_KL_WEIGHT"]
 

@@ -30,8 +30,6 @@ __all__ = ["Ensemble", "DEFAULT_MEMORY_BUDGET"]
 
 DEFAULT_MEMORY_BUDGET = 256 * 2**20
 
-MemberSelection = "int | Sequence[int] | Tensor | None"
-
 
 class Ensemble:
     """A posterior ensemble: ``template`` evaluated with each of S stacked parameter sets.

@@ -17,7 +17,7 @@ from typing import Any, Callable
 from jostle.common.progress import progress_bar as progress_bar_for
 from jostle.sweeps.results_db import RunStore
 from jostle.sweeps.spec import check_sweep, expand, read_toml, run_key, SweepConfigError
-from jostle.sweeps.one_run import execute_run
+from jostle.sweeps.one_run import execute_run, software_versions
 
 __all__ = ["Sweep", "SweepSummary"]
 
@@ -236,8 +236,6 @@ def _run_on_cluster(client: Any, pending: list[dict], save_ensembles: bool,
 
 
 def _lost_record(config: dict, err: BaseException) -> dict:
-    from jostle.sweeps.one_run import software_versions
-
     return {
         "key": run_key(config), "config": config, "status": "failed", "metrics": None,
         "error": f"{type(err).__name__}: {err}".splitlines()[0][:500],
