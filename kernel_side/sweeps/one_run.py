@@ -11,11 +11,7 @@ different orders.
 """
 from __future__ import annotations
 
-<<<<<<< HEAD
-=======
 import importlib.metadata
-import inspect
->>>>>>> r13-registry
 import os
 import platform
 import socket
@@ -31,12 +27,9 @@ import torch
 
 from jostle import datasets as _datasets
 from jostle import metrics as _metrics
-<<<<<<< HEAD
-from jostle.common.threads import torch_threads
-=======
 from jostle.attacks.readouts import softmax_robustness
 from jostle.attacks.run import attack as run_attack
->>>>>>> r13-registry
+from jostle.common.threads import torch_threads
 from jostle.files.posterior_file import jsonable
 from jostle.posterior.architectures import mlp
 from jostle.sweeps.spec import fit_function, run_key
@@ -91,15 +84,8 @@ def fit_run(config: dict):
     net = build_network(config["architecture"], data)
     method = dict(config["method"])
     name = method.pop("name")
-<<<<<<< HEAD
-    fit = getattr(jostle, METHODS[name], None)
-    if fit is None:
-        raise RuntimeError(f"jostle.{METHODS[name]} is not available in this installation of jostle")
-    if "progress" in fit.training_options:
-=======
     fit = fit_function(name)
-    if "progress" in inspect.signature(fit).parameters:
->>>>>>> r13-registry
+    if "progress" in fit.training_options:
         method["progress"] = False  # one bar for the whole sweep, not one per fit
     ens = fit(net, data, seed=config["seed"], **method)
     ens.meta.setdefault("method", name)

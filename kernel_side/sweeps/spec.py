@@ -241,19 +241,10 @@ def _check_method(spec: Any, where: str) -> list[dict]:
 def _check_hyperparameter_name(method: str, key: str, where: str) -> None:
     if key in _RESERVED_FIT_ARGS:
         raise SweepConfigError(f"{where}.{key}: set by the sweep itself, not a hyper-parameter")
-<<<<<<< HEAD
     fit = fit_function(method)
-    if fit is None:
-        return  # cannot list the hyper-parameters of a fit this installation lacks
     # Each fit declares its options (jostle.fitting.training_options.training_fit): its own,
     # then the shared training options it takes.
     allowed = [p for p in (*fit.method_options, *fit.training_options) if p not in _RESERVED_FIT_ARGS]
-=======
-    parameters = inspect.signature(fit_function(method)).parameters
-    if any(p.kind is inspect.Parameter.VAR_KEYWORD for p in parameters.values()):
-        return
-    allowed = [p for p in list(parameters)[2:] if p not in _RESERVED_FIT_ARGS]
->>>>>>> r13-registry
     if key not in allowed:
         raise SweepConfigError(
             f"{where}.{key}: unknown hyper-parameter of {METHODS[method]} (known: {_listing(allowed)})"

@@ -53,37 +53,6 @@ def _confident_net():
     return ens
 
 
-<<<<<<< HEAD
-@has_attacks
-=======
-@pytest.mark.parametrize("loss", [[0.0] * 9, [9.06e-6] * 9, [float("nan")] * 4, [float("inf"), 1.0, 2.0],
-                                  [5.0] * 3, [0.1, 0.5, 1.2], [0.00024, 0.00026]])
-def test_loss_axis_contains_every_finite_value_strictly_and_ticks_start_at_zero(loss):
-    # facts of the trade (common practice): a domain strictly wider than the data shows every point;
-    # ticks of 1, 2 or 5 times a power of ten, inside the domain
-    axis = loss_axis_for(loss)
-    finite = np.asarray(loss)[np.isfinite(loss)]
-    assert math.isfinite(axis.low) and math.isfinite(axis.high) and axis.low < axis.high
-    if finite.size:
-        assert axis.low < finite.min() and finite.max() < axis.high
-    assert axis.ticks.size >= 2 and axis.ticks[0] == 0.0
-    assert np.all((axis.ticks >= axis.low) & (axis.ticks <= axis.high))
-    step = axis.ticks[1] - axis.ticks[0]
-    mantissa = step / 10 ** math.floor(math.log10(step))
-    assert min(abs(mantissa - m) for m in (1, 2, 5)) < 1e-6
-
-
-def test_count_axis_has_no_negative_tick_and_reaches_the_most_members():
-    for most, expected in ((0, [0, 1]), (1, [0, 1]), (6, [0, 2, 4, 6]), (17, [0, 5, 10, 15])):
-        top, ticks = count_axis(most)
-        assert top >= max(most, 1) and ticks.tolist() == expected
-
-
-def test_tick_label_limit_shrinks_with_the_number_of_classes():
-    assert tick_label_limit(2) == 12 and tick_label_limit(10) == 4 and tick_label_limit(6) == 8
-
-
->>>>>>> r13-registry
 def test_a_flat_loss_at_a_confident_point_still_draws_both_lines_on_finite_scales(moons):
     ens = _confident_net()
     ex = Explorer(ens, moons, point=[-2.0, -2.0], budget=0.2, steps=8, grid=8, boundaries=1)

@@ -24,12 +24,7 @@ from torch import Tensor
 from torch.nn import functional as F
 
 from jostle.common.checks import as_float_tensor, check_float, check_int
-<<<<<<< HEAD:kernel_side/fitting/mean_field_reference.py
-from jostle.common.progress import progress_bar
-from jostle.fitting.training_loop import training_threads
-=======
 from jostle.fitting.gaussians import softplus_inverse
->>>>>>> r13-registry:tests/kernel_side/references/mean_field.py
 
 __all__ = ["MeanFieldGaussian", "fit_mean_field"]
 
@@ -105,20 +100,11 @@ def fit_mean_field(
     rho = softplus_inverse(torch.full_like(mean, init_std)).requires_grad_(True)
     optimiser = torch.optim.Adam([mean, rho], lr=lr)
     schedule = torch.optim.lr_scheduler.CosineAnnealingLR(optimiser, T_max=steps, eta_min=lr * 0.01)
-<<<<<<< HEAD:kernel_side/fitting/mean_field_reference.py
-    with training_threads(mean.numel() * draws, mean.device):
-        return _ascend(log_density, mean, rho, optimiser, schedule, steps, draws, batched, generator, progress)
-=======
     return _ascend(log_density, mean, rho, optimiser, schedule, steps, draws, batched, generator)
->>>>>>> r13-registry:tests/kernel_side/references/mean_field.py
 
 
 def _ascend(log_density, mean, rho, optimiser, schedule, steps, draws, batched, generator):
     elbo: list[float] = []
-<<<<<<< HEAD:kernel_side/fitting/mean_field_reference.py
-    bar = progress_bar(bool(progress), steps, "mean-field VI", unit="step")
-=======
->>>>>>> r13-registry:tests/kernel_side/references/mean_field.py
     for _ in range(steps):
         std = F.softplus(rho)
         noise = torch.randn(draws, *mean.shape, generator=generator, dtype=mean.dtype, device=mean.device)
@@ -130,13 +116,6 @@ def _ascend(log_density, mean, rho, optimiser, schedule, steps, draws, batched, 
         optimiser.step()
         schedule.step()
         elbo.append(float(objective.detach()) + 0.5 * mean.numel() * (1 + math.log(2 * math.pi)))
-<<<<<<< HEAD:kernel_side/fitting/mean_field_reference.py
-        bar.update(1)
-        if not bar.disable:
-            bar.set_postfix(elbo=f"{elbo[-1]:.4f}")
-    bar.close()
-=======
->>>>>>> r13-registry:tests/kernel_side/references/mean_field.py
     return MeanFieldGaussian(mean.detach(), F.softplus(rho).detach(), elbo)
 
 
@@ -160,7 +139,4 @@ def _evaluate(log_density: Callable[[Tensor], Tensor], theta: Tensor, batched: b
 
 def _is_double(value: Any) -> bool:
     return getattr(value, "dtype", None) in (torch.float64, "float64") or str(getattr(value, "dtype", "")) == "float64"
-<<<<<<< HEAD:kernel_side/fitting/mean_field_reference.py
-=======
 
->>>>>>> r13-registry:tests/kernel_side/references/mean_field.py
