@@ -9,13 +9,19 @@ space := $(empty) $(empty)
 TORCH_STAMP := $(VENV)/.stamp-$(subst =,_,$(subst <,_,$(subst >,_,$(subst $(space),_,$(TORCH)))))
 PYTEST_ARGS ?=
 
-.PHONY: demo test bench venv clean
+.PHONY: demo test lint bench venv clean
 
 demo: $(VENV)/.stamp-demo
 	$(VENV)/bin/jostle demo
 
 test: $(VENV)/.stamp-test
+	$(VENV)/bin/ruff check kernel_side widgets tests benchmarks scripts
+	$(VENV)/bin/lint-imports
 	$(PY) -m pytest $(PYTEST_ARGS)
+
+lint: $(VENV)/.stamp-test
+	$(VENV)/bin/ruff check kernel_side widgets tests benchmarks scripts
+	$(VENV)/bin/lint-imports
 
 bench: $(VENV)/.stamp-test
 	$(PY) benchmarks/run.py

@@ -1,7 +1,7 @@
 // jostle attack controls: native range inputs and selects, so keyboard and screen readers work.
 
 /** @typedef {{key: string, label: string, kind: "range"|"select", max?: string, step?: (m: any) => number,
- *             min?: number, options?: string, testid: string, format?: (v: number) => string}} Control */
+ *             min?: number, testid: string, format?: (v: number) => string}} Control */
 
 /** @type {Control[]} */
 const CONTROLS = [
@@ -11,22 +11,47 @@ const CONTROLS = [
     testid: "samples-slider", format: (v) => String(v) },
   { key: "steps", label: "steps", kind: "range", max: "steps_max", min: 1, step: () => 1,
     testid: "steps-slider", format: (v) => String(v) },
-  { key: "method", label: "method", kind: "select", options: "methods", testid: "method-select" },
+  { key: "method", label: "method", kind: "select", testid: "method-select" },
   { key: "norm", label: "norm", kind: "select", testid: "norm-select" },
-  { key: "objective", label: "objective", kind: "select", options: "objectives", testid: "objective-select" },
+  { key: "objective", label: "objective", kind: "select", testid: "objective-select" },
 ];
 const NORM_LABELS = { inf: "L-inf", 2: "L2" };
 
+/** Values a select offers: the registered methods, or the chosen method's norms or objectives
+ *  (from the `attacks` trait, default first). A current value outside them is still shown, so
+ *  the select never hides the state the status line complains about. */
+function optionsFor(model, key) {
+  const attacks = model.get("attacks") || {};
+  const values = key === "method" ? Object.keys(attacks) : [...((attacks[model.get("method")] || {})[`${key}s`] || [])];
+  const current = model.get(key);
+  if (current && !values.includes(current)) values.push(current);
+  return values;
+}
+
 function fillOptions(model, control, select) {
-  const values = control.options ? model.get(control.options) : ["inf", "2"];
+  const attacks = model.get("attacks") || {};
   select.replaceChildren();
-  for (const value of values) {
+  for (const value of optionsFor(model, control.key)) {
     const option = document.createElement("option");
     option.value = value;
-    option.textContent = control.key === "norm" ? NORM_LABELS[value] : String(value).replace("_", " ");
+    option.textContent = control.key === "norm" ? (NORM_LABELS[value] || value) : String(value).replace("_", " ");
+    if (control.key === "method" && attacks[value]) option.title = attacks[value].description;
     select.append(option);
   }
   select.value = model.get(control.key);
+}
+
+/** A new method keeps the norm and objective it supports, else takes its defaults. */
+function chooseMethod(model, method) {
+  const spec = (model.get("attacks") || {})[method];
+  model.set("method", method);
+  if (spec) {
+    for (const key of ["norm", "objective"]) {
+      const allowed = spec[`${key}s`];
+      if (allowed.length && !allowed.includes(model.get(key))) model.set(key, allowed[0]);
+    }
+  }
+  model.save_changes();
 }
 
 function render({ model, el }) {
@@ -65,9 +90,12 @@ function render({ model, el }) {
     } else {
       input = document.createElement("select");
       const sync = () => { fillOptions(model, control, input); input.dataset.value = model.get(control.key); };
-      input.addEventListener("change", () => { model.set(control.key, input.value); model.save_changes(); });
+      input.addEventListener("change", () => {
+        if (control.key === "method") { chooseMethod(model, input.value); return; }
+        model.set(control.key, input.value); model.save_changes();
+      });
       sync();
-      const events = `change:${control.key}` + (control.options ? ` change:${control.options}` : "");
+      const events = `change:${control.key} change:attacks` + (control.key === "method" ? "" : " change:method");
       model.on(events, sync); listeners.push([events, sync]);
     }
     input.id = id; input.dataset.testid = control.testid;

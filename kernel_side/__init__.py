@@ -14,14 +14,13 @@ from jostle.posterior.description import describe
 from jostle.fitting.hmc.sampler import HMCDraws, HMCState, sample_hmc
 from jostle.fitting.hmc.fit import fit_hmc
 from jostle.attacks.problem import AttackResult
-from jostle.attacks.gradient_methods import attack
+from jostle.attacks.run import AttackSpec, attack, register_attack, unregister_attack
 from jostle.attacks.masking import MaskingReport, masking_check
 from jostle.attacks.readouts import (GradientFade, MinimalBudget, expected_gradient, gradient_fade, minimal_budget,
                          softmax_robustness)
 from jostle.fitting.dropout import fit_dropout
 from jostle.fitting.point_estimates import fit_deep_ensemble, fit_map
 from jostle.fitting.variational import VariationalPosterior, fit_vi
-from jostle.fitting.mean_field_reference import fit_mean_field
 from jostle.fitting.laplace import LastLayerLaplace, fit_laplace
 from jostle.sweeps.sweep import Sweep, SweepSummary
 from jostle.sweeps.spec import SweepConfigError
@@ -40,6 +39,9 @@ __all__ = [
     "sample_hmc",
     "AttackResult",
     "attack",
+    "AttackSpec",
+    "register_attack",
+    "unregister_attack",
     "expected_gradient",
     "gradient_fade",
     "GradientFade",
@@ -62,7 +64,6 @@ __all__ = [
     "fit_dropout",
     "fit_laplace",
     "fit_map",
-    "fit_mean_field",
     "fit_vi",
     "init_parameters",
     "load",

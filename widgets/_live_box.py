@@ -29,10 +29,11 @@ class LiveBox(w.VBox):
 
     budget = t.Float(0.1, help="attack budget eps (>= 0) in input units").tag(sync=True)
     samples = t.Int(1, help="posterior samples the attacker averages over, 1..len(ens)").tag(sync=True)
-    method = t.Unicode("pgd", help="attack method: fgsm, pgd, cw, spsa or square").tag(sync=True)
+    method = t.Unicode("pgd", help="attack method: a registered attack (fgsm, pgd, cw, spsa, square built in)").tag(sync=True)
     norm = t.Unicode("inf", help="perturbation norm: inf (L-inf) or 2 (L2)").tag(sync=True)
     steps = t.Int(40, help="attack iterations").tag(sync=True)
-    objective = t.Unicode("expected_loss", help="expected_loss (mean of member losses) or predictive").tag(sync=True)
+    objective = t.Unicode("expected_loss", help="expected_loss (mean of member losses), predictive or margin; "
+                                                "cw and square take only margin").tag(sync=True)
 
     def _setup_live(self, ens: Any, settings: dict, budget_max: float, n_features: int | None = None) -> None:
         """Call before ``super().__init__``: validators need the ensemble.
@@ -58,8 +59,7 @@ class LiveBox(w.VBox):
         # Held by the worker while it writes view traits and by the main thread while it
         # mirrors a control into a view widget, so no widget's pending-sync set is shared.
         self._view_lock = threading.RLock()
-        self._controls = AttackControls(budget_max=budget_max, samples_max=len(ens), methods=list(live.METHODS),
-                                        objectives=list(live.OBJECTIVES),
+        self._controls = AttackControls(budget_max=budget_max, samples_max=len(ens),
                                         steps_max=max(200, int(settings.get("steps", 40))))
         self._status = StatusLine(message="starting", state="busy")
         self._worker = live.LiveWorker(self._compute, self._deliver, on_start=self._started)
@@ -182,13 +182,13 @@ class LiveBox(w.VBox):
 
     def _started(self, generation: int, state: live.ExplorerState) -> None:
         changed = _changed(self._last_state, state)
-        self.show_value(generation, "busy", f"computing after a change of {changed}" if changed else "computing the view")
+        self._show_status(generation, "busy", f"computing after a change of {changed}" if changed else "computing the view")
 
     def _deliver(self, outcome: live.Outcome) -> None:
         if outcome.error is not None:
             self._error = _readable(outcome.error)
             self._error_generation = outcome.generation
-            self.show_value(outcome.generation, "error", self._error)
+            self._show_status(outcome.generation, "error", self._error)
             return
         view = outcome.result
         with self._view_lock:
@@ -198,13 +198,13 @@ class LiveBox(w.VBox):
         if view.errors:
             self._error = "; ".join(view.errors)
             self._error_generation = outcome.generation
-            self.show_value(outcome.generation, "error", self._error)
+            self._show_status(outcome.generation, "error", self._error)
             return
         parts = ", ".join(view.recomputed) if view.recomputed else "nothing new"
         text = f"updated in {outcome.elapsed * 1000:.0f} ms (computed: {parts})"
-        self.show_value(outcome.generation, "idle", "; ".join([text] + view.notes))
+        self._show_status(outcome.generation, "idle", "; ".join([text] + view.notes))
 
-    def show_value(self, generation: int, state: str, text: str) -> None:
+    def _show_status(self, generation: int, state: str, text: str) -> None:
         if self._error is not None and generation <= self._error_generation and state != "error":
             state, text = "error", f"{self._error} (showing the last accepted settings)"
         elif state != "error" and generation > self._error_generation:

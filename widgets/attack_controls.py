@@ -1,8 +1,12 @@
 """Native range inputs and selects for the attack settings (keyboard-usable, with data-testids)."""
 from __future__ import annotations
 
+from typing import Any
+
 import anywidget
 import traitlets as t
+
+from jostle.attacks.run import attack_choices
 
 from ._assets import asset_path
 
@@ -11,7 +15,10 @@ class AttackControls(anywidget.AnyWidget):
     """Budget, samples, steps, method, norm and objective controls.
 
     The owning explorer validates every value and writes the accepted one back, so a
-    rejected value snaps the control back to the last good setting.
+    rejected value snaps the control back to the last good setting. The method, norm and
+    objective choices come from the attack registry (read when the widget is made); the
+    view offers each method's own norms and objectives and, when the method changes to one
+    that lacks the current norm or objective, switches to the method's default.
     """
 
     _esm = asset_path("attack_controls.js")
@@ -26,7 +33,11 @@ class AttackControls(anywidget.AnyWidget):
     steps = t.Int(40, help="attack iterations").tag(sync=True)
     steps_max = t.Int(200, help="right end of the steps slider").tag(sync=True)
     method = t.Unicode("pgd", help="attack method").tag(sync=True)
-    methods = t.List(t.Unicode(), [], help="methods offered").tag(sync=True)
     norm = t.Unicode("inf", help="perturbation norm: inf or 2").tag(sync=True)
     objective = t.Unicode("expected_loss", help="what the attacker ascends").tag(sync=True)
-    objectives = t.List(t.Unicode(), [], help="objectives offered").tag(sync=True)
+    attacks = t.Dict(help="methods offered, in order, each with its norms and objectives (default first), "
+                          "gradient_free flag and one-line description; from the attack registry").tag(sync=True)
+
+    def __init__(self, **kwargs: Any):
+        kwargs.setdefault("attacks", attack_choices())
+        super().__init__(**kwargs)

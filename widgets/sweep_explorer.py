@@ -8,10 +8,16 @@ from typing import Any
 import ipywidgets as ipw
 import traitlets as t
 
+from jostle.posterior.loading import load
+from jostle.sweeps.one_run import load_run_data
 from jostle.sweeps.results_db import RunStore
+from jostle.sweeps.sweep import Sweep
 from jostle.sweeps.chart_data import ROBUSTNESS_MEASURES, sweep_view
 
-from ._charts import share_axis
+from jostle.common.ticks import share_axis
+
+from .explorer import Explorer
+from .image_explorer import ImageExplorer
 from ._wire import to_wire
 from .sweep_chart import SweepChart
 
@@ -176,10 +182,6 @@ class SweepExplorer(ipw.HBox):
             self.detail.children = (self.detail_title,)
             return
         explorer = _explorer_for(path, config, self._attack_settings(config))
-        if isinstance(explorer, str):
-            self.detail_title.value = f"{label}: {explorer}"
-            self.detail.children = (self.detail_title,)
-            return
         self.opened = explorer
         self.detail_title.value = label
         self.detail.children = (self.detail_title, explorer)
@@ -203,8 +205,6 @@ class SweepExplorer(ipw.HBox):
 
 
 def _read_source(source: Any):
-    from jostle.sweeps.sweep import Sweep
-
     keys = None
     if isinstance(source, Sweep):
         keys = source.keys()
@@ -222,21 +222,14 @@ def _read_source(source: Any):
 
 
 def _explorer_for(path: Path, config: dict, settings: dict):
-    """An Explorer (ImageExplorer for image data) over the saved run, or a reason why not.
+    """An Explorer (ImageExplorer for image data) over the saved run.
 
     It opens on the chart's attack and budget; settings it refuses (a budget beyond its
     slider, say) fall back to its own defaults.
     """
-    import jostle
-    import jostle.widgets as widgets
-    from jostle.sweeps.one_run import load_run_data
-
     data = load_run_data(config["data"])
-    name = "ImageExplorer" if data.image_shape else "Explorer"
-    widget = getattr(widgets, name, None)
-    if widget is None:
-        return f"jostle.widgets.{name} is not available in this installation."
-    ens = jostle.load(path)
+    widget = ImageExplorer if data.image_shape else Explorer
+    ens = load(path)
     if settings.get("samples", 0) > len(ens):
         settings.pop("samples")
     try:

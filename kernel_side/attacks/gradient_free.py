@@ -17,7 +17,8 @@ from torch import Tensor
 
 from jostle.common.checks import show_value, check_float, check_int
 from jostle.attacks.problem import AttackProblem, AttackResult
-from jostle.attacks.gradient_methods import finish
+from jostle.attacks.outcome import finish
+from jostle.attacks.registry import register_attack
 
 __all__ = ["spsa", "square", "spsa_gradient", "square_fraction"]
 
@@ -54,6 +55,8 @@ def spsa_gradient(fn: Callable[[Tensor], Tensor], x: Tensor, delta: float, direc
     return (slope.view(slope.shape + (1,) * (x.ndim - 1)) * v).mean(0)
 
 
+@register_attack("spsa", norms=("inf", "2"), objectives=("expected_loss", "predictive", "margin"),
+                 gradient_free=True, description="projected ascent on SPSA gradient estimates (queries only)")
 def spsa(problem: AttackProblem, steps: int = 40, step_size: Any = None, delta: float = 0.01,
          directions: int = 32, random_start: bool = False, record_path: bool = True) -> AttackResult:
     """Projected ascent on SPSA gradient estimates: PGD's steps with queries only.
@@ -87,6 +90,8 @@ def spsa(problem: AttackProblem, steps: int = 40, step_size: Any = None, delta: 
     return result
 
 
+@register_attack("square", norms=("inf", "2"), objectives=("margin",), gradient_free=True,
+                 description="Square Attack: random search that only keeps a lower margin")
 def square(problem: AttackProblem, steps: int = 40, p_init: float = 0.05, image_shape: Any = None,
            record_path: bool = True) -> AttackResult:
     """Square Attack (Andriushchenko et al. 2020): random search that keeps a proposal only
@@ -148,7 +153,7 @@ def square(problem: AttackProblem, steps: int = 40, p_init: float = 0.05, image_
                 path.append(x_best)
     margins_t = torch.stack(margins)
     result = finish(problem, x_best, torch.stack(path) if record_path else None, -margins_t, queries.cpu(),
-                    "square")
+                    "square", objective="margin")
     result.margin = margins_t
     result.info.update(p_init=p_init, image_shape=list(shape) if shape else None)
     return result

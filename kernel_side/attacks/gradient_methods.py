@@ -1,4 +1,5 @@
-"""The attack entry point and the gradient attacks: FGSM, PGD and Carlini-Wagner L2.
+"""The gradient attacks: FGSM, PGD and Carlini-Wagner L2, each registered in
+:mod:`jostle.attacks.registry` (the entry point :func:`jostle.attack` is in :mod:`jostle.attacks.run`).
 
 Gradients come from the ensemble's gradient engine
 (:meth:`jostle.Ensemble.value_and_input_grad`, through
@@ -8,7 +9,6 @@ gradient).
 """
 from __future__ import annotations
 
-import inspect
 import math
 from typing import Any
 
@@ -16,109 +16,17 @@ import torch
 from torch import Tensor
 
 from jostle.common.checks import show_value, check_float, check_int
-from jostle.attacks.problem import AttackProblem, AttackResult, build_problem, compute_threads, norm_of
+from jostle.attacks.outcome import finish
+from jostle.attacks.problem import AttackProblem, AttackResult, norm_of
+from jostle.attacks.registry import register_attack
 
-__all__ = ["attack", "METHODS"]
+__all__ = ["fgsm", "pgd", "cw"]
 
-METHODS = ("fgsm", "pgd", "cw", "spsa", "square")
-
-
-def attack(ens, x: Any, y: Any = None, method: str = "pgd", eps: Any = 0.1, norm: str = "inf",
-           steps: int = 40, samples: Any = None, objective: str = "expected_loss", seed: int = 0, *,
-           target: Any = None, bounds: Any = None, resample: bool = False, judge: str = "ensemble",
-           threads: Any = "auto", backward: str = "auto", **options: Any) -> AttackResult:
-    """Attack the posterior predictive of ``ens`` at inputs ``x``.
-
-    Parameters
-    ----------
-    ens : Ensemble
-    x : Tensor of shape (n_points, *input_shape)
-    y : Tensor of shape (n_points,), optional
-        Labels to push away from. None attacks the label that the judged predictive
-        predicts at ``x``: the full ensemble's prediction with ``judge="ensemble"`` (the
-        default), the attacker's samples' prediction with ``judge="attacker"``.
-    method : {"fgsm", "pgd", "cw", "spsa", "square"}
-    eps : float >= 0, or Tensor of shape (n_points,) for ``pgd`` and ``fgsm``
-        Budget in the chosen norm. Every method returns ``x_adv`` inside the eps-ball and
-        the bounds. ``cw`` searches for the smallest flipping perturbation at any distance;
-        its closest flip beyond the ball is reported in ``info["closest_flip"]`` and
-        ``info["closest_flip_distance"]``, and ``x_adv`` is its best point inside the ball.
-    norm : {"inf", "2"}
-    steps : int
-        Iterations (``pgd``, ``spsa``, ``square``), Adam steps per binary-search round
-        (``cw``); ``fgsm`` takes one step whatever ``steps`` is.
-    samples : None, int or sequence of int
-        The posterior samples the attacker averages over: None all, an int ``k`` the
-        first ``k`` members (or, with ``resample=True``, a fresh random k-subset at every
-        evaluation: an expectation over the posterior), a sequence those members.
-    objective : {"expected_loss", "predictive", "margin"}
-        What ``fgsm``, ``pgd`` and ``spsa`` ascend (see :mod:`jostle.attack_core`);
-        ``cw`` and ``square`` always use the margin.
-    seed : int
-        Seeds every random draw (random starts, member subsets, search directions).
-    target : Tensor of shape (n_points,), optional
-        Make the predictive choose these labels (targeted attack).
-    bounds : pair (lo, hi), optional
-        The input box; defaults to ``ens.meta["bounds"]``, else unbounded.
-    judge : {"ensemble", "attacker"}
-        Judge success on the whole ensemble (default) or on the attacker's samples; the
-        same predictive supplies the default label when ``y`` is None.
-    threads : "auto", int or None
-        Torch threads while the attack runs (restored afterwards): ``"auto"`` uses one for
-        small evaluations, where thread barriers cost more than they save; None leaves
-        torch's setting.
-    backward : {"auto", "autograd"}
-        The gradient engine's switch (see :meth:`jostle.Ensemble.value_and_input_grad`).
-    **options
-        Method options. ``pgd``: ``step_size`` (default ``2.5 * eps / steps``),
-        ``random_start`` (True), ``restarts`` (1), ``record_path`` (True).
-        ``fgsm``: ``record_path``. ``cw``: ``kappa`` (0), ``search_steps`` (6), ``c_init`` (1),
-        ``learning_rate`` (0.01), ``record_path``. ``spsa``: ``step_size``, ``delta`` (0.01),
-        ``directions`` (32), ``random_start`` (False), ``record_path``. ``square``:
-        ``p_init`` (0.05), ``image_shape`` (from ``ens.meta``, or the fit's ``meta["data"]``),
-        ``record_path``.
-
-    Returns
-    -------
-    AttackResult
-        ``x_adv`` (n_points, ...), ``path`` (steps + 1, n_points, ...), ``loss``
-        (steps + 1, n_points), ``success`` (n_points,), ``queries`` and more.
-
-    Raises
-    ------
-    ValueError
-        On an unknown method, norm or objective, a negative eps, mismatched shapes, points
-        outside the bounds, more samples than members, or an option the method lacks.
-
-    Examples
-    --------
-    >>> import jostle, torch
-    >>> ens = jostle.Ensemble.from_modules([jostle.mlp(2, 2, hidden=(8,)) for _ in range(3)])
-    >>> adv = jostle.attack(ens, torch.zeros(4, 2), eps=0.1, steps=5)
-    >>> tuple(adv.path.shape), bool((adv.x_adv.abs() <= 0.1 + 1e-7).all())
-    ((6, 4, 2), True)
-    """
-    from jostle.attacks.gradient_free import square, spsa
-
-    if not isinstance(method, str) or method not in METHODS:
-        raise ValueError(f"method must be one of {', '.join(map(repr, METHODS))}; got {show_value(method)}")
-    runner = {"fgsm": fgsm, "pgd": pgd, "cw": cw, "spsa": spsa, "square": square}[method]
-    allowed = [p for p in inspect.signature(runner).parameters if p not in ("problem", "steps")]
-    unknown = sorted(set(options) - set(allowed))
-    if unknown:
-        raise ValueError(f"method {method!r} takes options {allowed}; got unknown {unknown}")
-    steps = check_int("steps", steps, low=1)
-    if method == "cw" and norm != "2":
-        raise ValueError(f"method 'cw' is an L2 attack: norm must be '2'; got {show_value(norm)}")
-    problem = build_problem(ens, x, y, eps=eps, norm=norm, objective=objective, samples=samples,
-                            resample=resample, target=target, bounds=bounds, seed=seed, judge=judge,
-                            per_point_eps=method in ("pgd", "fgsm"), backward=backward)
-    with compute_threads(threads, ens, problem.points):
-        result = runner(problem, steps, **options)
-    result.method = method
-    return result
+_GRADIENT_OBJECTIVES = ("expected_loss", "predictive", "margin")
 
 
+@register_attack("fgsm", norms=("inf", "2"), objectives=_GRADIENT_OBJECTIVES, gradient_free=False,
+                 per_point_eps=True, description="fast gradient sign method: one step of size eps")
 def fgsm(problem: AttackProblem, steps: int = 1, record_path: bool = True) -> AttackResult:
     """Fast gradient sign method (Goodfellow et al. 2015): one step of size eps.
 
@@ -133,6 +41,8 @@ def fgsm(problem: AttackProblem, steps: int = 1, record_path: bool = True) -> At
     return finish(problem, x_adv, path, torch.stack([start_value, end_value]), queries, "fgsm")
 
 
+@register_attack("pgd", norms=("inf", "2"), objectives=_GRADIENT_OBJECTIVES, gradient_free=False,
+                 per_point_eps=True, description="projected gradient ascent inside the eps-ball")
 def pgd(problem: AttackProblem, steps: int = 40, step_size: Any = None, random_start: bool = True,
         restarts: int = 1, record_path: bool = True) -> AttackResult:
     """Projected gradient ascent (Madry et al. 2018) in L-inf or L2.
@@ -159,6 +69,8 @@ def pgd(problem: AttackProblem, steps: int = 40, step_size: Any = None, random_s
     return finish(problem, x_adv, path, loss, queries, "pgd", success=success, probs=probs)
 
 
+@register_attack("cw", norms=("2",), objectives=("margin",), gradient_free=False,
+                 description="Carlini-Wagner L2: the smallest flipping perturbation, kept inside the ball")
 def cw(problem: AttackProblem, steps: int = 40, kappa: float = 0.0, search_steps: int = 6,
        c_init: float = 1.0, learning_rate: float = 0.01, record_path: bool = True) -> AttackResult:
     """Carlini & Wagner (2017) L2 attack on the attacker's averaged predictive.
@@ -196,28 +108,10 @@ def cw(problem: AttackProblem, steps: int = 40, kappa: float = 0.0, search_steps
     margins = torch.stack([problem.margin(p) for p in path])
     queries = search.queries.cpu() + steps * search_steps + len(path)
     result = finish(problem, search.inside_x, torch.stack(path) if record_path else None, -margins, queries,
-                    "cw", norm="2")
+                    "cw", norm="2", objective="margin")
     result.margin = margins
     result.info.update(search.report(problem), c=c.cpu().numpy(), kappa=kappa)
     return result
-
-
-def finish(problem: AttackProblem, x_adv: Tensor, path: Tensor | None, loss: Tensor, queries: Tensor,
-           method: str, success: Tensor | None = None, norm: str | None = None,
-           probs: Tensor | None = None) -> AttackResult:
-    """Judge the final inputs on the chosen predictive and pack an :class:`AttackResult`
-    (``probs``: the judged predictive at ``x_adv`` when the attack already has it)."""
-    if probs is None:
-        judged, probs = problem.judge(x_adv)
-    else:
-        judged = success
-    return AttackResult(
-        x_adv=x_adv.detach(), path=None if path is None else path.detach(), loss=loss.detach(),
-        success=judged if success is None else success, label=problem.label, target=problem.target,
-        clean_probs=problem.clean_probs, adv_probs=probs, distance=norm_of(x_adv - problem.x, norm or problem.norm),
-        queries=queries, method=method, norm=norm or problem.norm, eps=problem.eps,
-        objective="margin" if method in ("cw", "square") else problem.objective_name,
-    )
 
 
 # ------------------------------------------------------------------ private helpers

@@ -14,7 +14,7 @@ import numpy as np
 import torch
 
 from jostle.common.checks import show_value, check_float, check_int
-from jostle.attacks.gradient_methods import attack
+from jostle.attacks.run import attack, attack_names, attack_spec
 
 __all__ = ["masking_check", "MaskingReport"]
 
@@ -75,11 +75,13 @@ def masking_check(ens, x: Any, y: Any = None, eps: float = 0.1, norm: str = "inf
     ----------
     tolerance : float
         Share of points by which an expectation may be missed before it is flagged.
-    gradient_free : {"square", "spsa"}, optional
-        Default Square for L-inf and SPSA on the margin for L2; either runs in either norm.
+    gradient_free : str, optional
+        A registered gradient-free method supporting ``norm`` (built in: ``"square"``,
+        ``"spsa"``). Default Square for L-inf and SPSA for L2. It ascends the margin when
+        it can (SPSA does), else its default objective.
     free_steps : int, optional
-        Iterations of the gradient-free attack (default ``10 * steps`` for Square, ``steps``
-        for SPSA).
+        Iterations of the gradient-free attack (default ``10 * steps`` for Square, whose
+        iterations are single queries; ``steps`` for the others).
 
     Returns
     -------
@@ -91,8 +93,13 @@ def masking_check(ens, x: Any, y: Any = None, eps: float = 0.1, norm: str = "inf
     scales = _scales(budget_scales)
     if gradient_free is None:
         gradient_free = "square" if norm == "inf" else "spsa"
-    if gradient_free not in ("square", "spsa"):
-        raise ValueError(f"gradient_free must be one of 'square', 'spsa'; got {show_value(gradient_free)}")
+    free_methods = [name for name in attack_names() if attack_spec(name).gradient_free]
+    if not isinstance(gradient_free, str) or gradient_free not in free_methods:
+        raise ValueError(f"gradient_free must be one of {', '.join(map(repr, free_methods))} (the registered "
+                         f"gradient-free attacks); got {show_value(gradient_free)}")
+    if norm not in attack_spec(gradient_free).norms:
+        raise ValueError(f"norm must be one of {list(attack_spec(gradient_free).norms)} for method "
+                         f"{gradient_free!r}; got {show_value(norm)}")
     few = max(1, len(ens) // 10) if few_samples is None else check_int("few_samples", few_samples, low=1,
                                                                           high=len(ens))
     common = dict(norm=norm, bounds=bounds, seed=seed)
@@ -142,11 +149,11 @@ def _scalar(value: Any) -> Any:
 
 
 def _free_attack(ens, x, y, method, eps, steps, free_steps, common):
-    if method == "square":
-        iterations = 10 * steps if free_steps is None else check_int("free_steps", free_steps, low=1)
-        return attack(ens, x, y, method="square", eps=eps, steps=iterations, record_path=False, **common)
-    iterations = steps if free_steps is None else check_int("free_steps", free_steps, low=1)
-    return attack(ens, x, y, method="spsa", eps=eps, steps=iterations, objective="margin", record_path=False,
+    default_steps = 10 * steps if method == "square" else steps
+    iterations = default_steps if free_steps is None else check_int("free_steps", free_steps, low=1)
+    objectives = attack_spec(method).objectives
+    objective = "margin" if "margin" in objectives else objectives[0]
+    return attack(ens, x, y, method=method, eps=eps, steps=iterations, objective=objective, record_path=False,
                   **common)
 
 

@@ -31,9 +31,9 @@ import numpy as np
 import torch
 from torch import Tensor
 
-from jostle.common.checks import (show_value, as_label_tensor, check_choice, check_devices, check_float, check_int, check_real_dtype,
+from jostle.common.checks import (show_value, as_label_tensor, check_choice, check_float, check_int, check_points,
                       check_representable, check_seed)
-from jostle.common.threads import torch_threads
+from jostle.common.threads import threads_for, torch_threads
 from jostle.posterior.gradients import BACKWARDS, OBJECTIVES, objective_values
 
 __all__ = ["AttackResult", "OBJECTIVES", "NORMS", "AttackProblem", "build_problem", "compute_threads"]
@@ -41,9 +41,6 @@ __all__ = ["AttackResult", "OBJECTIVES", "NORMS", "AttackProblem", "build_proble
 NORMS = ("inf", "2")
 JUDGES = ("ensemble", "attacker")
 
-# Floats one evaluation may touch before "auto" keeps torch's own thread count: covers a
-# live single point and the 100-point, 100-member attack of benchmarks/bench_attacks.py.
-_SMALL_WORK = 2**22
 
 # Points may sit this far outside the bounds (float rounding of stored bounds).
 _BOUNDS_SLACK = 1e-6
@@ -283,18 +280,12 @@ class AttackProblem:
 def compute_threads(threads: Any, ens, points: int) -> Iterator[None]:
     """Run the enclosed attack with ``threads`` torch threads, then restore the setting.
 
-    ``"auto"`` uses one thread when one evaluation is small (members x points x
-    activations per pair under ``_SMALL_WORK`` floats). An attack is a long chain of small
-    kernels; on a shared 2-core machine each parallel kernel waits at a thread barrier
-    whenever the other core is busy, and one thread measured up to 25x faster
-    (benchmarks/bench_attacks.py). ``None`` leaves torch's setting alone.
+    The work of one evaluation is members x points x activations per pair; the rule is
+    :func:`jostle.common.threads.threads_for`'s (one thread for small CPU work under
+    ``"auto"``, ``None`` leaves torch's setting alone).
     """
-    if threads == "auto":
-        work = len(ens) * points * ens._plan.floats_per_pair
-        threads = 1 if work <= _SMALL_WORK else None
-    elif threads is not None:
-        threads = check_int("threads", threads, low=1)
-    with torch_threads(threads):
+    work = len(ens) * points * ens._plan.floats_per_pair
+    with torch_threads(threads_for(threads, work, ens.device)):
         yield
 
 
@@ -319,7 +310,7 @@ def build_problem(ens, x: Any, y: Any, *, eps: Any, norm: str, objective: str, s
     seed = check_seed(seed)
     if not isinstance(resample, bool):
         raise ValueError(f"resample must be True or False; got {show_value(resample)}")
-    x = _as_points(ens, x)
+    x = check_points("x", x, ens, min_points=1, detach=True)
     n = int(x.shape[0])
     eps_t = _as_eps(eps, n, x, per_point_eps)
     samples = _check_samples(ens, samples, resample)
@@ -365,25 +356,6 @@ def _tighten(x_adv: Tensor, x: Tensor, eps_b: Tensor, norm: str, clip) -> Tensor
             shrunk = clip(x + delta * (eps_b / size.clamp_min(1e-30)) * (1 - 1e-6))
             x_adv = torch.where(over, shrunk, x_adv)
     return x_adv
-
-
-def _as_points(ens, x: Any) -> Tensor:
-    if not isinstance(x, Tensor):
-        try:
-            x = torch.as_tensor(np.asarray(x), dtype=ens.dtype)
-        except (TypeError, ValueError, RuntimeError):
-            raise ValueError(f"x must be a numeric array of shape (n_points, ...); got {show_value(x)}") from None
-    if x.ndim < 2:
-        raise ValueError(f"x must have shape (n_points, *input_shape); got shape {tuple(x.shape)} "
-                         f"(use x[None] for a single point)")
-    check_devices("x", x.device, "ens", ens.device)
-    x = check_real_dtype("x", x).detach().to(device=ens.device, dtype=ens.dtype)
-    if not bool(torch.isfinite(x).all()):
-        raise ValueError("x must contain only finite values; got NaN or inf")
-    ens._plan.check_input(x)
-    if x.shape[0] == 0:
-        raise ValueError(f"x must hold at least one point; got shape {tuple(x.shape)}")
-    return x
 
 
 def _as_eps(eps: Any, n: int, x: Tensor, per_point: bool) -> Tensor:

@@ -14,7 +14,7 @@ import numpy as np
 import torch
 from torch import Tensor
 
-from jostle.common.checks import show_value, check_choice, check_devices, check_finite, check_int, check_real_dtype, check_seed
+from jostle.common.checks import (check_choice, check_int, check_points, check_seed, show_value)
 from jostle.attacks.problem import build_problem, compute_threads, norm_of
 from jostle.attacks.gradient_methods import pgd
 
@@ -252,8 +252,8 @@ def softmax_robustness(ens, x: Any, x_adv: Any, kind: str = "max", samples: Any 
     kind = check_choice("kind", kind, ("max", "tv"))
     if not isinstance(reduce, bool):
         raise ValueError(f"reduce must be True or False; got {show_value(reduce)}")
-    x = _as_batch(ens, x, "x")
-    x_adv = _as_batch(ens, x_adv, "x_adv")
+    x = check_points("x", x, ens, min_points=1, detach=True)
+    x_adv = check_points("x_adv", x_adv, ens, min_points=1, detach=True)
     if x.shape != x_adv.shape:
         raise ValueError(f"x_adv must have the shape of x {tuple(x.shape)}; got {tuple(x_adv.shape)}")
     gap = (ens.predict(x, samples=samples).probs - ens.predict(x_adv, samples=samples).probs).abs()
@@ -346,18 +346,3 @@ def _attack_at(problem, eps: Tensor, steps: int, random_start: bool, state: dict
     state["x_adv"][chosen] = result.x_adv[result.success]
     state["probs"][chosen] = result.adv_probs[result.success]
     return flipped
-
-
-def _as_batch(ens, x: Any, name: str) -> Tensor:
-    if not isinstance(x, Tensor):
-        try:
-            x = torch.as_tensor(np.asarray(x), dtype=ens.dtype)
-        except (TypeError, ValueError):
-            raise ValueError(f"{name} must be a numeric array of shape (n_points, ...); got {show_value(x)}") from None
-    if x.ndim < 2:
-        raise ValueError(f"{name} must have shape (n_points, *input_shape); got shape {tuple(x.shape)}")
-    check_devices(name, x.device, "ens", ens.device)
-    x = check_real_dtype(name, x).detach().to(device=ens.device, dtype=ens.dtype)
-    if x.shape[0] == 0:
-        raise ValueError(f"{name} must hold at least one point; got shape {tuple(x.shape)}")
-    return check_finite(name, x)

@@ -10,9 +10,10 @@ import argparse
 import json
 from pathlib import Path
 
+from jostle.attacks.run import attack_choices
 from jostle.cli.errors import CommandError
 
-__all__ = ["register"]
+__all__ = ["register", "attack_help"]
 
 
 def register(subparsers: argparse._SubParsersAction) -> None:
@@ -30,7 +31,8 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     actions = sweep.add_subparsers(dest="sweep_command", metavar="ACTION")
     sweep.set_defaults(handler=lambda args: _missing_action(sweep))
     run = actions.add_parser("run", help="execute the runs of a sweep not yet in the store",
-                             description="Execute the runs of a sweep that the store lacks (failed ones are retried).")
+                             description="Execute the runs of a sweep that the store lacks (failed ones are retried).",
+                             epilog=attack_help(), formatter_class=argparse.RawDescriptionHelpFormatter)
     run.add_argument("config", help="TOML file with a [sweep] table")
     run.add_argument("--store", required=True, help="SQLite file for the results (created if missing)")
     run.add_argument("--scheduler", metavar="ADDR", help="Dask scheduler address, e.g. tcp://host:8786 (default: run here)")
@@ -50,6 +52,15 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                                     description="Print the metadata of a .safetensors posterior without loading its tensors.")
     inspect.add_argument("path", help="a posterior written by ens.save or 'jostle fit'")
     inspect.set_defaults(handler=_inspect)
+
+
+def attack_help() -> str:
+    """The attack methods a sweep's ``evaluation.attacks`` may name, from the attack registry."""
+    lines = ["attack methods for [sweep.evaluation] attacks (norms and objectives: default first):"]
+    for name, choice in attack_choices().items():
+        lines.append(f"  {name:<8} {choice['description']}; norms {', '.join(choice['norms'])}; "
+                     f"objectives {', '.join(choice['objectives'])}")
+    return "\n".join(lines)
 
 
 def _fit(args: argparse.Namespace) -> int:

@@ -1,1 +1,1 @@
-"""Helpers every room shares: input checks and the thread policy."""
+"""Helpers every room shares: input checks, the thread policy, progress bars, axis ticks."""

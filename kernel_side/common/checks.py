@@ -103,6 +103,78 @@ def as_float_tensor(
     return tensor
 
 
+def check_points(
+    name: str,
+    x: Any,
+    ens_or_features: Any,
+    *,
+    min_points: int = 0,
+    detach: bool = False,
+    dtype: torch.dtype | None = None,
+    device: torch.device | str | None = None,
+) -> Tensor:
+    """A batch of inputs as a finite real tensor of shape (n_points, *input_shape).
+
+    Parameters
+    ----------
+    name : str
+        The parameter's name, used in every message (``x``, ``x_adv``, ...).
+    x : Tensor or array-like
+        The inputs. A tensor keeps its autograd graph unless ``detach``.
+    ens_or_features : Ensemble-like or int
+        An object with ``dtype``, ``device`` and ``check_input_shape(x, name)`` (an
+        :class:`~jostle.posterior.ensemble.Ensemble`): ``x`` is cast to its dtype and device
+        and must feed its first layer. An int ``d``: ``x`` must have shape (n_points, d).
+    min_points : int
+        Fewest points accepted (1 refuses an empty batch).
+    detach : bool
+        Cut ``x`` from any autograd graph.
+    dtype, device : optional
+        With an int ``ens_or_features``, the dtype (default float32) and device (default:
+        where ``x`` is) to cast to.
+
+    Returns
+    -------
+    Tensor of shape (n_points, *input_shape)
+
+    Examples
+    --------
+    >>> check_points("x", [[0.0, 1.0]], 2).shape
+    torch.Size([1, 2])
+    >>> check_points("x", torch.zeros(3, 5), 2)
+    Traceback (most recent call last):
+    ...
+    ValueError: x must have shape (n_points, 2); got shape (3, 5)
+    """
+    features = None
+    if isinstance(ens_or_features, Integral) and not isinstance(ens_or_features, bool):
+        features = int(ens_or_features)
+        target_dtype = dtype or torch.float32
+    else:
+        target_dtype, device = ens_or_features.dtype, ens_or_features.device
+    x = _as_tensor(name, x)
+    if x.ndim < 2:
+        raise ValueError(f"{name} must have shape (n_points, *input_shape); got shape {tuple(x.shape)} "
+                         f"(use {name}[None] for a single point)")
+    if device is None:
+        check_has_values(name, x)
+    else:
+        check_devices(name, x.device, "ens", device)
+    check_real_dtype(name, x)
+    if detach:
+        x = x.detach()
+    if x.dtype != target_dtype or (device is not None and x.device != torch.device(device)):
+        x = x.to(device=device, dtype=target_dtype)
+    if x.shape[0] < min_points:
+        rule = "at least one point" if min_points == 1 else f"at least {min_points} points"
+        raise ValueError(f"{name} must hold {rule}; got shape {tuple(x.shape)}")
+    if features is None:
+        ens_or_features.check_input_shape(x, name)
+    elif x.ndim != 2 or x.shape[1] != features:
+        raise ValueError(f"{name} must have shape (n_points, {features}); got shape {tuple(x.shape)}")
+    return check_finite(name, x)
+
+
 def as_label_tensor(name: str, value: Any, *, n_points: int, classes: int | None = None) -> Tensor:
     """Integer class labels of shape (n_points,) within [0, classes)."""
     if isinstance(value, Tensor):
@@ -195,3 +267,13 @@ def as_numeric_array(name: str, value: Any) -> np.ndarray:
     except (TypeError, ValueError) as err:
         raise ValueError(f"{name} must be a numeric array; got {show_value(value)} ({err})") from None
     return array
+
+
+def _as_tensor(name: str, value: Any) -> Tensor:
+    """A tensor from array-likes (lists, numpy arrays, frames), kept as is when one already."""
+    if isinstance(value, Tensor):
+        return value
+    try:
+        return torch.as_tensor(np.asarray(value))
+    except (TypeError, ValueError, RuntimeError):
+        raise ValueError(f"{name} must be a numeric array of shape (n_points, ...); got {show_value(value)}") from None

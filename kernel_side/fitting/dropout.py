@@ -19,9 +19,10 @@ from torch.func import functional_call
 
 from jostle.common.checks import show_value, check_float, check_int
 from jostle.fitting.training_loop import (
-    check_config, check_device, check_module_and_data, cross_entropy_per_member, fit_meta,
-    member_generators, split_validation, stacked_initial, stream_seed, train_members,
+    check_module_and_data, cross_entropy_per_member, fit_meta, member_generators, split_validation,
+    stacked_initial, stream_seed, train_members,
 )
+from jostle.fitting.training_options import TrainingOptions, training_fit
 from jostle.datasets import Dataset
 from jostle.posterior.ensemble import Ensemble
 from jostle.posterior.architectures import architecture_of, build_architecture
@@ -31,6 +32,7 @@ __all__ = ["fit_dropout", "fold_dropout_masks", "sample_dropout"]
 _DEFAULT_P = 0.1
 
 
+@training_fit()
 def fit_dropout(
     module: nn.Module,
     data: Dataset,
@@ -51,6 +53,9 @@ def fit_dropout(
 ) -> Ensemble:
     """Train with dropout, then fold ``samples`` sampled masks into an ensemble (MC dropout).
 
+    The validation loss uses the network without dropout; ``seed`` also seeds the
+    training masks and the folded masks.
+
     Parameters
     ----------
     module : nn.Sequential
@@ -63,25 +68,22 @@ def fit_dropout(
         a number sets every Dropout layer to it.
     samples : int
         Masks drawn after training; each becomes one member.
-    epochs, batch_size, lr, weight_decay, optimizer, momentum, validation, patience
-        As in :func:`jostle.fit_map`. Validation loss uses the network without dropout.
-    seed : int
-        Seeds initialisation, minibatches, training masks and the folded masks.
-    progress : bool
-    device : str or torch.device, optional
+    {training_options}
 
     Returns
     -------
     Ensemble
         ``samples`` members of the dropout-free network; ``meta["method"] == "dropout"``.
     """
-    seed = check_int("seed", seed, low=0)
+    options = TrainingOptions(
+        epochs=epochs, batch_size=batch_size, lr=lr, weight_decay=weight_decay, optimizer=optimizer,
+        momentum=momentum, validation=validation, patience=patience, seed=seed, progress=progress, device=device,
+    ).checked()
     samples = check_int("samples", samples, low=1)
     if p is not None:
         p = check_float("p", p, low=0.0, high=1.0, high_open=True)
-    config = check_config(epochs, batch_size, lr, weight_decay, optimizer, momentum, validation, patience)
     check_module_and_data(module, data)
-    device = check_device(device)
+    config, seed, device = options, options.seed, options.device
     dropped = _with_dropout(module, p)
     layout = _layout(dropped)
     x, y = data.x_train.to(device), data.y_train.to(device)
@@ -93,7 +95,7 @@ def fit_dropout(
     record = train_members(
         params, _dropout_loss(trainee, train=True), x_fit, y_fit, generators, config,
         validation_loss=_validation(trainee, x_val, y_val) if x_val is not None else None,
-        progress=bool(progress), desc="dropout",
+        progress=options.progress, desc="dropout",
     )
     state = {name: value[0].detach() for name, value in params.items()}
     masks = _draw_masks(layout, samples, torch.Generator().manual_seed(stream_seed(seed, 2)), device)

@@ -1,4 +1,4 @@
-"""Laplace approximations: a generic one over any log density, and last-layer Laplace for nets.
+"""Last-layer Laplace for networks, with its evidence and prior-precision search.
 
 Around a mode theta* the posterior is approximated by N(theta*, (-grad^2 log p)^-1)
 (MacKay 1992; Bishop 2006, sec. 4.4). For a network, only the last Linear layer is
@@ -11,24 +11,24 @@ from __future__ import annotations
 
 import copy
 import math
-from dataclasses import dataclass
-from typing import Any, Callable
+from typing import Any
 
 import torch
 from torch import Tensor, nn
 
-from jostle.common.checks import as_float_tensor, check_float, check_int
+from jostle.common.checks import check_float, check_int
 from jostle.fitting.training_loop import stream_seed
+from jostle.fitting.training_options import TrainingOptions, training_fit
 from jostle.datasets import Dataset
 from jostle.posterior.ensemble import Ensemble
 from jostle.fitting.point_estimates import fit_map
 
 __all__ = [
-    "fit_laplace", "LastLayerLaplace", "GaussianApproximation", "laplace_approximation",
-    "softmax_hessian", "log_marginal_likelihood", "optimise_prior_precision", "probit_approximation",
+    "fit_laplace", "LastLayerLaplace", "softmax_hessian", "log_marginal_likelihood", "optimise_prior_precision",
 ]
 
 
+@training_fit()
 def fit_laplace(
     module: nn.Module,
     data: Dataset,
@@ -49,6 +49,9 @@ def fit_laplace(
 ) -> Ensemble:
     """Last-layer Laplace around the MAP network, ``samples`` draws folded into an ensemble.
 
+    The training options are those of the MAP fit (:func:`jostle.fit_map`); ``seed``
+    seeds it and the draws.
+
     Parameters
     ----------
     module : nn.Sequential
@@ -59,12 +62,7 @@ def fit_laplace(
     prior_precision : float, optional
         Precision of the N(0, 1/prior_precision I) prior on the last layer. None picks
         the value maximising the Laplace marginal likelihood (a log grid, then Brent).
-    epochs, batch_size, lr, weight_decay, optimizer, momentum, validation, patience
-        Settings of the MAP fit, as in :func:`jostle.fit_map`.
-    seed : int
-        Seeds the MAP fit and the draws.
-    progress : bool
-    device : str or torch.device, optional
+    {training_options}
 
     Returns
     -------
@@ -72,13 +70,16 @@ def fit_laplace(
         ``meta["method"] == "laplace"``; its ``posterior`` attribute is the
         :class:`LastLayerLaplace` (mean, precision; ``.draw(samples, seed)``).
     """
+    options = TrainingOptions(
+        epochs=epochs, batch_size=batch_size, lr=lr, weight_decay=weight_decay, optimizer=optimizer,
+        momentum=momentum, validation=validation, patience=patience, seed=seed, progress=progress, device=device,
+    ).checked()
     samples = check_int("samples", samples, low=1)
     if prior_precision is not None:
         prior_precision = check_float("prior_precision", prior_precision, low=0.0, low_open=True)
     _last_linear(module)
-    point = fit_map(module, data, epochs=epochs, batch_size=batch_size, lr=lr, weight_decay=weight_decay,
-                    optimizer=optimizer, momentum=momentum, validation=validation, patience=patience,
-                    seed=seed, progress=progress, device=device)
+    point = fit_map(module, data, **options.keywords())
+    seed = options.seed
     posterior = LastLayerLaplace.around(point, data.x_train.to(point.device), data.y_train.to(point.device),
                                         prior_precision)
     ensemble = posterior.draw(samples, seed=stream_seed(seed, 3) % 2**31)
@@ -169,57 +170,6 @@ class LastLayerLaplace:
         return moved
 
 
-@dataclass(frozen=True)
-class GaussianApproximation:
-    """N(mean, covariance) with covariance = precision^-1; the log density at the mode."""
-
-    mean: Tensor
-    precision: Tensor
-    log_density_at_mode: float
-    iterations: int
-
-    @property
-    def covariance(self) -> Tensor:
-        return torch.cholesky_inverse(torch.linalg.cholesky(self.precision))
-
-
-def laplace_approximation(
-    log_density: Callable[[Tensor], Tensor], initial: Any, *, max_iterations: int = 100, tolerance: float = 1e-10,
-) -> GaussianApproximation:
-    """Find the mode of ``log_density`` by Newton's method and take the Hessian there.
-
-    Parameters
-    ----------
-    log_density : callable, Tensor of shape (P,) -> scalar Tensor
-        Twice differentiable by torch.autograd; should be concave near its mode.
-    initial : array of shape (P,)
-        Starting point (float64 is used throughout).
-    max_iterations : int
-    tolerance : float
-        Stop when the Newton step's norm falls below this.
-
-    Returns
-    -------
-    GaussianApproximation
-        ``precision`` is ``-hessian(log_density)`` at the mode (exact posterior
-        precision for a Gaussian likelihood with a Gaussian prior).
-    """
-    theta = as_float_tensor("initial", initial, ndim=1, dtype=torch.float64).clone()
-    max_iterations = check_int("max_iterations", max_iterations, low=1)
-    tolerance = check_float("tolerance", tolerance, low=0.0, low_open=True)
-    iterations = 0
-    for iterations in range(1, max_iterations + 1):
-        point = theta.clone().requires_grad_(True)
-        gradient = torch.autograd.grad(log_density(point), point)[0]
-        precision = -torch.autograd.functional.hessian(log_density, theta)
-        step = torch.linalg.solve(precision, gradient)
-        theta = _damped(log_density, theta, step)
-        if float(step.norm()) < tolerance:
-            break
-    precision = -torch.autograd.functional.hessian(log_density, theta)
-    return GaussianApproximation(theta, precision, float(log_density(theta)), iterations)
-
-
 def softmax_hessian(features: Tensor, probs: Tensor, bias: bool = True, chunk: int = 1024) -> Tensor:
     """Hessian of the summed softmax cross-entropy w.r.t. a last Linear layer.
 
@@ -279,26 +229,6 @@ def optimise_prior_precision(log_likelihood: float, mode: Tensor, hessian_eigenv
     lo, hi = grid[max(best - 1, 0)], grid[min(best + 1, len(grid) - 1)]
     result = minimize_scalar(loss, bounds=(lo, hi), method="bounded", options={"xatol": 1e-6})
     return float(10.0 ** (result.x if result.fun <= values[best] else grid[best]))
-
-
-def probit_approximation(mean: Tensor, variance: Tensor) -> Tensor:
-    """E[sigmoid(a)] for a ~ N(mean, variance) ~= sigmoid(kappa * mean),
-    kappa = (1 + pi variance / 8)^(-1/2) (MacKay 1992; Bishop 2006, eq. 4.153)."""
-    mean, variance = torch.as_tensor(mean), torch.as_tensor(variance)
-    if bool((variance < 0).any()):
-        raise ValueError("variance must be >= 0 everywhere; got a negative value")
-    return torch.sigmoid(mean / torch.sqrt(1.0 + math.pi * variance / 8.0))
-
-
-def _damped(log_density, theta: Tensor, step: Tensor) -> Tensor:
-    """theta + step, halved until the log density does not fall (Newton can overshoot)."""
-    current = float(log_density(theta))
-    for _ in range(30):
-        candidate = theta + step
-        if float(log_density(candidate)) >= current - 1e-12 * abs(current):
-            return candidate
-        step = step / 2
-    return theta
 
 
 def _last_linear(module: nn.Module) -> int:

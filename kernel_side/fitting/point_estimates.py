@@ -14,15 +14,17 @@ from torch import nn
 
 from jostle.common.checks import check_int
 from jostle.fitting.training_loop import (
-    TrainingConfig, check_config, check_device, check_module_and_data, cross_entropy_per_member,
-    fit_meta, member_generators, split_validation, stacked_initial, train_members,
+    check_module_and_data, cross_entropy_per_member, fit_meta, member_generators, split_validation,
+    stacked_initial, train_members,
 )
+from jostle.fitting.training_options import TrainingOptions, training_fit
 from jostle.datasets import Dataset
 from jostle.posterior.ensemble import Ensemble
 
 __all__ = ["fit_map", "fit_deep_ensemble"]
 
 
+@training_fit()
 def fit_map(
     module: nn.Module,
     data: Dataset,
@@ -48,24 +50,7 @@ def fit_map(
         (its own weights are not used). Dropout layers are switched off.
     data : jostle.Dataset
         Trained on ``data.x_train`` of shape (n_train, n_features) and ``data.y_train``.
-    epochs, batch_size, lr : int, int, float
-        Passes over the training points, minibatch size, learning rate.
-    weight_decay : float
-        L2 penalty coefficient (a Gaussian prior on the weights, in the MAP reading).
-    optimizer : {"adam", "sgd"}
-    momentum : float
-        SGD momentum (ignored by Adam).
-    validation : float
-        Share of the training points held out for early stopping (0 trains on all for
-        ``epochs`` epochs). The parameters of the best validation epoch are kept.
-    patience : int
-        Epochs without a validation gain before stopping.
-    seed : int
-        Seeds the initialisation, the minibatch order and the validation split.
-    progress : bool
-        Show a tqdm bar with the loss.
-    device : str or torch.device, optional
-        Where to train (default CPU).
+    {training_options}
 
     Returns
     -------
@@ -80,11 +65,14 @@ def fit_map(
     >>> len(ens)
     1
     """
-    seed = check_int("seed", seed, low=0)
-    config = check_config(epochs, batch_size, lr, weight_decay, optimizer, momentum, validation, patience)
-    return _fit_stacked(module, data, [seed], "map", config, seed, progress, device)
+    options = TrainingOptions(
+        epochs=epochs, batch_size=batch_size, lr=lr, weight_decay=weight_decay, optimizer=optimizer,
+        momentum=momentum, validation=validation, patience=patience, seed=seed, progress=progress, device=device,
+    ).checked()
+    return _fit_stacked(module, data, [options.seed], "map", options)
 
 
+@training_fit()
 def fit_deep_ensemble(
     module: nn.Module,
     data: Dataset,
@@ -108,7 +96,16 @@ def fit_deep_ensemble(
     ``fit_map(module, data, seed=seed + m)`` would be; all members share one optimiser
     over stacked parameters (Adam and SGD act elementwise, so this is the same as
     separate optimisers). With ``validation > 0`` one split (from ``seed``) is shared and
-    each member keeps its own best epoch. Other parameters are as in :func:`fit_map`.
+    each member keeps its own best epoch.
+
+    Parameters
+    ----------
+    module : nn.Module
+        The architecture, copied and re-initialised per member.
+    data : jostle.Dataset
+    members : int
+        Networks in the ensemble.
+    {training_options}
 
     Returns
     -------
@@ -116,20 +113,21 @@ def fit_deep_ensemble(
         ``members`` members; ``meta["method"] == "deep_ensemble"``.
     """
     members = check_int("members", members, low=1)
-    seed = check_int("seed", seed, low=0)
-    config = check_config(epochs, batch_size, lr, weight_decay, optimizer, momentum, validation, patience)
-    seeds = [seed + m for m in range(members)]
-    return _fit_stacked(module, data, seeds, "deep_ensemble", config, seed, progress, device, members=members)
+    options = TrainingOptions(
+        epochs=epochs, batch_size=batch_size, lr=lr, weight_decay=weight_decay, optimizer=optimizer,
+        momentum=momentum, validation=validation, patience=patience, seed=seed, progress=progress, device=device,
+    ).checked()
+    seeds = [options.seed + m for m in range(members)]
+    return _fit_stacked(module, data, seeds, "deep_ensemble", options, members=members)
 
 
 def _fit_stacked(
-    module: nn.Module, data: Dataset, seeds: list[int], method: str, config: TrainingConfig,
-    seed: int, progress: bool, device: Any, **extra: Any,
+    module: nn.Module, data: Dataset, seeds: list[int], method: str, config: TrainingOptions, **extra: Any,
 ) -> Ensemble:
     check_module_and_data(module, data)
-    device = check_device(device)
+    device = config.device
     x, y = data.x_train.to(device), data.y_train.to(device)
-    x_fit, y_fit, x_val, y_val = split_validation(x, y, config.validation, seed)
+    x_fit, y_fit, x_val, y_val = split_validation(x, y, config.validation, config.seed)
     generators = member_generators(seeds)
     params = stacked_initial(module, generators, device)
     template = copy.deepcopy(module).eval().to(device)
@@ -144,11 +142,11 @@ def _fit_stacked(
     record = train_members(
         params, member_loss, x_fit, y_fit, generators, config,
         validation_loss=validation_loss if x_val is not None else None,
-        progress=bool(progress), desc=method.replace("_", " "),
+        progress=config.progress, desc=method.replace("_", " "),
     )
     fitted = {name: value.detach() for name, value in params.items()}
     meta = fit_meta(
-        method, data, module, seed, record.seconds, **extra, **config.as_meta(),
+        method, data, module, config.seed, record.seconds, **extra, **config.as_meta(),
         member_seeds=seeds, epochs_run=record.epochs_run, final_loss=record.final_loss,
         best_epoch=record.best_epoch,
     )

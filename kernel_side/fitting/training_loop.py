@@ -1,5 +1,8 @@
 """The pieces every ``fit_*`` shares: argument checks, the stacked training loop, metadata.
 
+The shared training keywords themselves are :class:`TrainingOptions`
+(:mod:`jostle.fitting.training_options`), importable from here too.
+
 Members are trained together as stacked parameters ``[S, ...]`` under one optimiser.
 Adam and SGD update every element on its own, so one optimiser over the stacks is
 exactly S separate optimisers, as long as each member's loss depends only on its own
@@ -8,7 +11,6 @@ exactly the gradient of its own loss.
 """
 from __future__ import annotations
 
-import contextlib
 import copy
 import time
 from dataclasses import dataclass, field
@@ -17,29 +19,15 @@ from typing import Any, Callable
 import torch
 from torch import Tensor, nn
 
-from jostle.common.checks import show_value, check_choice, check_float, check_int
+from jostle.common.progress import progress_bar
+from jostle.common.threads import threads_for, torch_threads
 from jostle.datasets import Dataset
+from jostle.fitting.training_options import (  # noqa: F401 (check_device is shared from here too)
+    OPTIMIZERS, TrainingOptions, check_device,
+)
 from jostle.posterior.architectures import architecture_of, init_parameters
 
 MemberLoss = Callable[[dict, Tensor, Tensor], Tensor]
-OPTIMIZERS = ("adam", "sgd")
-
-
-@dataclass(frozen=True)
-class TrainingConfig:
-    """Checked optimisation settings shared by every fit."""
-
-    epochs: int
-    batch_size: int
-    lr: float
-    weight_decay: float
-    optimizer: str
-    momentum: float
-    validation: float
-    patience: int
-
-    def as_meta(self) -> dict:
-        return dict(self.__dict__)
 
 
 @dataclass
@@ -51,34 +39,6 @@ class TrainingRecord:
     best_epoch: list[int] | None = None
     seconds: float = 0.0
     history: list[float] = field(default_factory=list)
-
-
-def check_config(
-    epochs: Any, batch_size: Any, lr: Any, weight_decay: Any, optimizer: Any,
-    momentum: Any, validation: Any, patience: Any,
-) -> TrainingConfig:
-    return TrainingConfig(
-        epochs=check_int("epochs", epochs, low=1),
-        batch_size=check_int("batch_size", batch_size, low=1),
-        lr=check_float("lr", lr, low=0.0, low_open=True),
-        weight_decay=check_float("weight_decay", weight_decay, low=0.0),
-        optimizer=check_choice("optimizer", optimizer, OPTIMIZERS),
-        momentum=check_float("momentum", momentum, low=0.0, high=1.0, high_open=True),
-        validation=check_float("validation", validation, low=0.0, high=1.0, high_open=True),
-        patience=check_int("patience", patience, low=1),
-    )
-
-
-def check_device(device: Any) -> torch.device:
-    if device is None:
-        return torch.device("cpu")
-    try:
-        device = torch.device(device)
-    except (RuntimeError, TypeError):
-        raise ValueError(f"device must name a torch device such as 'cpu' or 'cuda'; got {show_value(device)}") from None
-    if device.type == "meta":
-        raise ValueError("device must hold values to train on, such as 'cpu' or 'cuda'; got 'meta'")
-    return device
 
 
 def check_module_and_data(module: Any, data: Any) -> None:
@@ -159,7 +119,7 @@ def train_members(
     x: Tensor,
     y: Tensor,
     generators: list[torch.Generator],
-    config: TrainingConfig,
+    config: TrainingOptions,
     *,
     validation_loss: Callable[[dict], Tensor] | None = None,
     progress: bool = True,
@@ -174,7 +134,7 @@ def train_members(
     """
     started = time.perf_counter()
     trainable = [p for p in params.values() if p.requires_grad]
-    with threads_for(sum(p.numel() for p in trainable), x.device):
+    with training_threads(sum(p.numel() for p in trainable), x.device):
         return _train_loop(params, trainable, member_loss, x, y, generators, config, validation_loss,
                            progress, desc, started)
 
@@ -184,7 +144,7 @@ def _train_loop(params, trainable, member_loss, x, y, generators, config, valida
     optimiser = _optimiser(trainable, config)
     n = int(x.shape[0])
     tracker = _BestTracker(params, validation_loss, config.patience) if validation_loss else None
-    bar = _progress(config.epochs, progress, desc)
+    bar = progress_bar(bool(progress), config.epochs, desc, unit="epoch")
     history: list[float] = []
     epoch_loss = torch.zeros(len(generators))
     epochs_run = 0
@@ -201,18 +161,15 @@ def _train_loop(params, trainable, member_loss, x, y, generators, config, valida
         epoch_loss = (total / n).cpu()
         history.append(float(epoch_loss.mean()))
         if not bool(torch.isfinite(epoch_loss).all()):
-            if bar is not None:
-                bar.close()
+            bar.close()
             raise ValueError(f"training diverged: the loss became {history[-1]} in epoch {len(history)}; "
                              f"lr = {config.lr:g} is probably too large")
         epochs_run = epoch + 1
-        if bar is not None:
-            bar.update(1)
-            bar.set_postfix(loss=f"{history[-1]:.4f}")
+        bar.update(1)
+        bar.set_postfix(loss=f"{history[-1]:.4f}")
         if tracker is not None and tracker.update(epoch):
             break
-    if bar is not None:
-        bar.close()
+    bar.close()
     best = tracker.restore() if tracker is not None else None
     return TrainingRecord(epochs_run, epoch_loss.tolist(), best, time.perf_counter() - started, history)
 
@@ -232,38 +189,21 @@ def fit_meta(method: str, data: Dataset, module: nn.Module, seed: int, seconds: 
     return meta
 
 
-# Below this many trainable elements every op of a step is tiny, and a second thread
+# Up to this many trainable elements every op of a step is tiny, and a second thread
 # only adds pool hand-offs: on a shared 2-core CPU under load, measured 5-40 ms per
 # minibatch cross-entropy with 2 threads against 0.1 ms with one.
-_SINGLE_THREAD_BELOW = 2**20
+_SMALL_TRAINING = 2**20
 
 
-@contextlib.contextmanager
-def threads_for(elements: int, device: torch.device):
-    """Train small CPU problems on one intra-op thread, restoring the setting afterwards."""
-    before = torch.get_num_threads()
-    single = device.type == "cpu" and elements < _SINGLE_THREAD_BELOW and before > 1
-    if single:
-        torch.set_num_threads(1)
-    try:
-        yield
-    finally:
-        if single:
-            torch.set_num_threads(before)
+def training_threads(elements: int, device: torch.device):
+    """Train small CPU problems on one intra-op thread (the rule of :func:`threads_for`)."""
+    return torch_threads(threads_for("auto", elements, device, small=_SMALL_TRAINING))
 
 
-def _optimiser(trainable: list[Tensor], config: TrainingConfig) -> torch.optim.Optimizer:
+def _optimiser(trainable: list[Tensor], config: TrainingOptions) -> torch.optim.Optimizer:
     if config.optimizer == "adam":
         return torch.optim.Adam(trainable, lr=config.lr, weight_decay=config.weight_decay)
     return torch.optim.SGD(trainable, lr=config.lr, momentum=config.momentum, weight_decay=config.weight_decay)
-
-
-def _progress(epochs: int, progress: bool, desc: str):
-    if not progress:
-        return None
-    from tqdm.auto import tqdm
-
-    return tqdm(total=epochs, desc=desc, unit="epoch", leave=False)
 
 
 class _BestTracker:

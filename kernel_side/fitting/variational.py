@@ -20,13 +20,14 @@ from torch.nn import functional as F
 
 from jostle.common.checks import check_float, check_int
 from jostle.fitting.training_loop import (
-    check_config, check_device, check_module_and_data, cross_entropy_per_member, fit_meta,
-    member_generators, split_validation, stacked_initial, stream_seed, train_members,
+    check_module_and_data, cross_entropy_per_member, fit_meta, member_generators, split_validation,
+    stacked_initial, stream_seed, train_members,
 )
+from jostle.fitting.training_options import OPTIMISER_OPTIONS, TRAINING_OPTIONS, TrainingOptions, training_fit
 from jostle.posterior.forward import MLPPlan, make_plan
 from jostle.datasets import Dataset
 from jostle.posterior.ensemble import Ensemble
-from jostle.fitting.mean_field_reference import gaussian_kl, softplus_inverse
+from jostle.fitting.gaussians import gaussian_kl, softplus_inverse
 
 __all__ = ["fit_vi", "VariationalPosterior", "vi_method_label", "DEFAULT_KL_WEIGHT"]
 
@@ -98,6 +99,7 @@ class VariationalPosterior:
         return f"VariationalPosterior(parameters={count}, prior_std={self.prior_std:g}, kl={self.kl():.2f})"
 
 
+@training_fit(tuple(o for o in TRAINING_OPTIONS if o not in OPTIMISER_OPTIONS))
 def fit_vi(
     module: nn.Module,
     data: Dataset,
@@ -119,6 +121,9 @@ def fit_vi(
     device: Any = None,
 ) -> Ensemble:
     """Mean-field Gaussian variational inference (Bayes by Backprop), then ``samples`` draws.
+
+    Training uses Adam without weight decay (the KL is the regulariser); ``seed`` also
+    seeds the training noise and the final draws.
 
     Parameters
     ----------
@@ -147,12 +152,7 @@ def fit_vi(
         Monte Carlo draws per minibatch step.
     local_reparameterisation : bool
         Sample pre-activations of Linear layers (Linear + elementwise stacks only).
-    epochs, batch_size, lr, validation, patience
-        As in :func:`jostle.fit_map` (Adam, no weight decay: the KL is the regulariser).
-    seed : int
-        Seeds the initial means, minibatches, training noise and the final draws.
-    progress : bool
-    device : str or torch.device, optional
+    {training_options}
 
     Returns
     -------
@@ -160,16 +160,18 @@ def fit_vi(
         ``samples`` draws, ``meta["method"]`` from :func:`vi_method_label`; its ``posterior`` attribute is the :class:`VariationalPosterior`
         (kept by slicing and ``.to``, not by saving).
     """
-    seed = check_int("seed", seed, low=0)
+    config = TrainingOptions(
+        epochs=epochs, batch_size=batch_size, lr=lr, weight_decay=0.0, optimizer="adam", momentum=0.0,
+        validation=validation, patience=patience, seed=seed, progress=progress, device=device,
+    ).checked()
+    seed, device = config.seed, config.device
     samples = check_int("samples", samples, low=1)
     prior_std = check_float("prior_std", prior_std, low=0.0, low_open=True)
     kl_weight = check_float("kl_weight", kl_weight, low=0.0)
     kl_anneal = check_float("kl_anneal", kl_anneal, low=0.0, high=1.0)
     init_std = check_float("init_std", init_std, low=0.0, low_open=True)
     train_draws = check_int("train_draws", train_draws, low=1)
-    config = check_config(epochs, batch_size, lr, 0.0, "adam", 0.0, validation, patience)
     check_module_and_data(module, data)
-    device = check_device(device)
     x, y = data.x_train.to(device), data.y_train.to(device)
     x_fit, y_fit, x_val, y_val = split_validation(x, y, config.validation, seed)
     generators = member_generators([seed])
@@ -197,7 +199,7 @@ def fit_vi(
 
     record = train_members(
         variational, member_loss, x_fit, y_fit, generators, config,
-        validation_loss=validation_loss if x_val is not None else None, progress=bool(progress), desc="vi",
+        validation_loss=validation_loss if x_val is not None else None, progress=config.progress, desc="vi",
     )
     hyper = dict(prior_std=prior_std, kl_weight=kl_weight, kl_anneal=kl_anneal, init_std=init_std, train_draws=train_draws,
                  local_reparameterisation=local, **config.as_meta())

@@ -17,6 +17,7 @@ from typing import Any
 import numpy as np
 import torch
 
+from jostle.attacks.run import attack_names, registered_norms, registered_objectives
 from jostle.common.checks import show_value, check_choice, check_float, check_int, check_representable
 from jostle.live.view_parts import (AttackView, FadeView, GridView, PointView, attack_part,
                           fade_part, grid_part, grid_prediction, point_part, SpreadView, spread_part)
@@ -26,12 +27,9 @@ from jostle.posterior.ensemble import Ensemble
 __all__ = [
     "ExplorerState", "ViewData", "ViewCache", "compute_view", "check_field", "check_state",
     "LiveWorker", "Outcome", "PointView", "GridView", "AttackView", "FadeView", "SpreadView",
-    "METHODS", "NORMS", "OBJECTIVES", "LAYERS",
+    "LAYERS",
 ]
 
-METHODS = ("fgsm", "pgd", "cw", "spsa", "square")
-NORMS = ("inf", "2")
-OBJECTIVES = ("expected_loss", "predictive")
 LAYERS = ("predictive", "epistemic", "entropy")
 
 
@@ -49,7 +47,9 @@ class ExplorerState:
         Posterior samples the attacker averages over (first ``samples`` members); None = all.
         The background layer shows the predictive of the same members.
     method, norm, steps, objective, seed
-        Passed to :func:`jostle.attack`.
+        Passed to :func:`jostle.attack`. ``method`` is a registered attack, ``norm`` and
+        ``objective`` are each some registered attack's; a pair the method lacks (``cw``
+        with ``inf``) is reported in :attr:`ViewData.errors`, the other parts still shown.
     layer : str
         Background layer: ``predictive`` (class mix), ``epistemic`` (mutual information) or
         ``entropy`` (total predictive entropy).
@@ -239,9 +239,11 @@ def check_field(ens: Ensemble, name: str, value: Any, n_features: int | None = N
         return check_int(name, value, low=0, high=512 if name == "grid" else 64)
     if name in ("fade_repeats", "seed"):
         return check_int(name, value, low=1 if name == "fade_repeats" else 0)
-    choices = {"method": METHODS, "norm": NORMS, "objective": OBJECTIVES, "layer": LAYERS}
+    # read at call time, so an attack registered after import is accepted
+    choices = {"method": attack_names, "norm": registered_norms, "objective": registered_objectives,
+               "layer": lambda: LAYERS}
     if name in choices:
-        return check_choice(name, value, choices[name])
+        return check_choice(name, value, choices[name]())
     raise ValueError(f"name must be a field of ExplorerState; got {name!r}")
 
 

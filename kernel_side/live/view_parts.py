@@ -8,7 +8,7 @@ from typing import Any
 import numpy as np
 import torch
 
-from jostle.attacks.gradient_methods import attack
+from jostle.attacks.run import attack
 from jostle.attacks.readouts import gradient_fade
 from jostle.live.contours import decision_segments
 from jostle.posterior.ensemble import Ensemble

@@ -18,10 +18,8 @@ from jostle.common.checks import (
     show_value,
     as_label_tensor,
     check_choice,
-    check_devices,
-    check_finite,
     check_int,
-    check_real_dtype,
+    check_points,
     check_seed,
 )
 from jostle.files.posterior_file import write_posterior
@@ -34,8 +32,6 @@ from jostle.posterior.prediction import Prediction
 __all__ = ["Ensemble", "DEFAULT_MEMORY_BUDGET"]
 
 DEFAULT_MEMORY_BUDGET = 256 * 2**20
-
-MemberSelection = "int | Sequence[int] | Tensor | None"
 
 
 class Ensemble:
@@ -407,24 +403,12 @@ class Ensemble:
             raise ValueError("samples must select at least one member; got an empty selection")
         return {name: value[index] for name, value in self.params.items()}
 
-    def _prepare_input(self, x: Any) -> Tensor:
-        if not isinstance(x, Tensor):
-            try:
-                x = torch.as_tensor(x, dtype=self.dtype)
-            except (TypeError, ValueError, RuntimeError):
-                raise ValueError(f"x must be a numeric array of shape (n_points, ...); got {show_value(x)}") from None
-        if x.ndim < 2:
-            raise ValueError(
-                f"x must have shape (n_points, *input_shape); got shape {tuple(x.shape)} "
-                f"(use x[None] for a single point)"
-            )
-        check_devices("x", x.device, "ens", self.device)
-        check_real_dtype("x", x)
-        if x.dtype != self.dtype or x.device != self.device:
-            x = x.to(device=self.device, dtype=self.dtype)
-        self._plan.check_input(x)
-        check_finite("x", x)
-        return x
+    def check_input_shape(self, x: Tensor, name: str = "x") -> None:
+        """Raise a ValueError naming ``name`` when ``x`` [n, ...] cannot feed the first layer."""
+        self._plan.check_input(x, name)
+
+    def _prepare_input(self, x: Any, name: str = "x") -> Tensor:
+        return check_points(name, x, self)
 
 
 def _softmax(logits: Tensor) -> Tensor:

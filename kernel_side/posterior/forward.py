@@ -57,8 +57,8 @@ class ForwardPlan:
     def forward(self, params: dict[str, Tensor], x: Tensor, per_member: bool = False) -> Tensor:
         raise NotImplementedError
 
-    def check_input(self, x: Tensor) -> None:
-        """Raise a clear error when ``x`` cannot feed the first layer."""
+    def check_input(self, x: Tensor, name: str = "x") -> None:
+        """Raise a clear error, naming the parameter ``name``, when ``x`` cannot feed the first layer."""
 
     def chunk_sizes(self, members: int, points: int, memory_budget: int, element_bytes: int) -> tuple[int, int]:
         grad = torch.is_grad_enabled()
@@ -153,11 +153,11 @@ class MLPPlan(ForwardPlan):
             return None
         return cls(steps, in_features, widths)
 
-    def check_input(self, x: Tensor) -> None:
+    def check_input(self, x: Tensor, name: str = "x") -> None:
         features = x[0].numel() if any(s[0] == "flatten" for s in self.steps) else x.shape[-1]
         if (x.ndim != 2 and not any(s[0] == "flatten" for s in self.steps)) or features != self.in_features:
             raise ValueError(
-                f"x must have shape (n_points, {self.in_features}) for this network; got shape {tuple(x.shape)}"
+                f"{name} must have shape (n_points, {self.in_features}) for this network; got shape {tuple(x.shape)}"
             )
 
     def forward(self, params: dict[str, Tensor], x: Tensor, per_member: bool = False) -> Tensor:

@@ -9,6 +9,8 @@ from torch import Tensor
 
 __all__ = ["Prediction", "entropy"]
 
+_QUANTILE_LIMIT = 2**24
+
 
 def entropy(probs: Tensor, dim: int = -1) -> Tensor:
     """Shannon entropy in nats along ``dim``, with 0 log 0 = 0."""
@@ -90,15 +92,15 @@ class Prediction:
         return (votes == self.label.unsqueeze(0)).to(self.member_probs.dtype).mean(0)
 
     def quantile(self, q: float) -> Tensor:
-        """Per-class ``q``-quantile across members (linear interpolation), shape (N, C)."""
+        """Per-class ``q``-quantile across members (linear interpolation, ``torch.quantile``), shape (N, C)."""
         if not 0.0 <= float(q) <= 1.0:
             raise ValueError(f"q must be a float in [0, 1]; got {q}")
-        ordered = self.member_probs.sort(dim=0).values
-        position = float(q) * (ordered.shape[0] - 1)
-        low = int(math.floor(position))
-        high = min(low + 1, ordered.shape[0] - 1)
-        weight = position - low
-        return ordered[low] * (1 - weight) + ordered[high] * weight
+        members, points, classes = self.member_probs.shape
+        # torch.quantile refuses inputs past 2**24 elements: take blocks of points under that.
+        block = max(1, _QUANTILE_LIMIT // max(1, members * classes))
+        parts = [torch.quantile(self.member_probs[:, start:start + block], float(q), dim=0)
+                 for start in range(0, points, block)]
+        return torch.cat(parts) if parts else self.member_probs.new_empty((0, classes))
 
     def __len__(self) -> int:
         return int(self.member_probs.shape[1])

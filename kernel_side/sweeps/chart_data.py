@@ -13,6 +13,7 @@ from typing import Any, Sequence
 import numpy as np
 
 from jostle.common.checks import check_choice
+from jostle.fitting.variational import DEFAULT_KL_WEIGHT, vi_method_label
 
 __all__ = ["SweepPoints", "Correlation", "ROBUSTNESS_MEASURES", "sweep_view", "sweep_points",
            "family_correlations", "exact_permutation_p", "FAMILIES"]
@@ -180,6 +181,4 @@ def _method_label(method: str, hyper: dict) -> str:
     """The fit's own name for its method: VI runs say whether their ELBO was tempered."""
     if method != "vi":
         return method
-    from jostle.fitting.variational import DEFAULT_KL_WEIGHT, vi_method_label
-
     return vi_method_label(hyper.get("kl_weight", DEFAULT_KL_WEIGHT))

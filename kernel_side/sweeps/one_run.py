@@ -4,13 +4,14 @@
 compute code (no widget libraries). It never raises for a failing run: the failure comes
 back as a record with ``status = "failed"`` and the traceback, so the other runs go on.
 
-Determinism: each run sets ``torch.set_num_threads(1)`` while it runs (restoring the old
-value afterwards), so a seeded run gives bit-identical metrics in the calling process and
-in a worker process, whose thread pools would otherwise reduce sums in different orders.
+Determinism: each run holds torch to one intra-op thread while it runs (``torch_threads(1)``,
+restoring the old count afterwards), so a seeded run gives bit-identical metrics in the
+calling process and in a worker process, whose thread pools would otherwise reduce sums in
+different orders.
 """
 from __future__ import annotations
 
-import inspect
+import importlib.metadata
 import os
 import platform
 import socket
@@ -26,8 +27,12 @@ import torch
 
 from jostle import datasets as _datasets
 from jostle import metrics as _metrics
+from jostle.attacks.readouts import softmax_robustness
+from jostle.attacks.run import attack as run_attack
+from jostle.common.threads import torch_threads
 from jostle.files.posterior_file import jsonable
-from jostle.sweeps.spec import METHODS, run_key
+from jostle.posterior.architectures import mlp
+from jostle.sweeps.spec import fit_function, run_key
 
 __all__ = ["execute_run", "fit_run", "evaluate", "load_run_data", "build_network", "software_versions"]
 
@@ -58,11 +63,9 @@ def execute_run(config: dict, save_ensemble: bool = False) -> dict:
         "started": time.time(), "finished": None, "worker": f"{socket.gethostname()}:{os.getpid()}",
         "versions": software_versions(), "ensemble_bytes": None,
     }
-    threads = torch.get_num_threads()
-    torch.set_num_threads(1)
     caught: list = []
     try:
-        with warnings.catch_warnings(record=True) as caught:
+        with torch_threads(1), warnings.catch_warnings(record=True) as caught:
             # Kept with the run (a convergence warning is a result), not printed on a worker.
             warnings.simplefilter("always")
             _fit_and_score(config, save_ensemble, record)
@@ -70,7 +73,6 @@ def execute_run(config: dict, save_ensemble: bool = False) -> dict:
         record["error"] = f"{type(err).__name__}: {err}".splitlines()[0][:500]
         record["traceback"] = traceback.format_exc()
     finally:
-        torch.set_num_threads(threads)
         record["finished"] = time.time()
         record["warnings"] = sorted({f"{w.category.__name__}: {w.message}" for w in caught or []})
     return record
@@ -78,16 +80,12 @@ def execute_run(config: dict, save_ensemble: bool = False) -> dict:
 
 def fit_run(config: dict):
     """Build the run's data and network and fit its posterior; returns ``(ensemble, data)``."""
-    import jostle
-
     data = load_run_data(config["data"])
     net = build_network(config["architecture"], data)
     method = dict(config["method"])
     name = method.pop("name")
-    fit = getattr(jostle, METHODS[name], None)
-    if fit is None:
-        raise RuntimeError(f"jostle.{METHODS[name]} is not available in this installation of jostle")
-    if "progress" in inspect.signature(fit).parameters:
+    fit = fit_function(name)
+    if "progress" in fit.training_options:
         method["progress"] = False  # one bar for the whole sweep, not one per fit
     ens = fit(net, data, seed=config["seed"], **method)
     ens.meta.setdefault("method", name)
@@ -106,8 +104,6 @@ def evaluate(ens, data, evaluation: dict, seed: int = 0) -> dict:
         ``attack`` (label), ``method``, ``norm``, ``steps``, ``samples``, ``budget``,
         ``success_rate`` and ``robustness``.
     """
-    import jostle
-
     # float64 and renormalised: float32 rows miss 1 by ~1e-7, which scikit-learn's log loss flags
     probs = ens.predict(data.x_test).probs.double()
     probs = probs / probs.sum(1, keepdim=True)
@@ -124,14 +120,14 @@ def evaluate(ens, data, evaluation: dict, seed: int = 0) -> dict:
     for attack in evaluation["attacks"]:
         samples = None if attack["samples"] is None else min(attack["samples"], len(ens))
         for budget in evaluation["budgets"]:
-            adv = jostle.attack(ens, x, y, method=attack["method"], eps=budget, norm=attack["norm"],
-                                steps=attack["steps"], samples=samples, objective=attack["objective"],
-                                seed=seed)
+            adv = run_attack(ens, x, y, method=attack["method"], eps=budget, norm=attack["norm"],
+                             steps=attack["steps"], samples=samples, objective=attack["objective"],
+                             seed=seed)
             rows.append({
                 "attack": attack["label"], "method": attack["method"], "norm": attack["norm"],
                 "steps": attack["steps"], "samples": samples, "budget": budget,
                 "success_rate": float(torch.as_tensor(adv.success).double().mean()),
-                "robustness": float(jostle.softmax_robustness(ens, x, adv.x_adv)),
+                "robustness": float(softmax_robustness(ens, x, adv.x_adv)),
             })
     scores["attacks"] = rows
     return scores
@@ -153,16 +149,12 @@ def load_run_data(spec: dict):
 
 def build_network(spec: dict, data) -> torch.nn.Module:
     """An MLP with ``depth`` hidden layers of ``width`` units for the data's shape."""
-    import jostle
-
     hidden = (spec["width"],) * spec["depth"]
-    return jostle.mlp(data.n_features, data.n_classes, hidden=hidden, activation=spec["activation"])
+    return mlp(data.n_features, data.n_classes, hidden=hidden, activation=spec["activation"])
 
 
 def software_versions() -> dict:
-    import jostle
-
-    return {"jostle": jostle.__version__, "torch": torch.__version__, "numpy": np.__version__,
+    return {"jostle": importlib.metadata.version("jostle"), "torch": torch.__version__, "numpy": np.__version__,
             "python": platform.python_version()}
 
 

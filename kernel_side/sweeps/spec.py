@@ -22,28 +22,37 @@ except ImportError:  # Python 3.10: the same parser, published as tomli
     import tomli as tomllib
 
 from jostle import datasets as _datasets
+from jostle.attacks.run import attack_names, attack_spec, resolve_settings
+from jostle.fitting.dropout import fit_dropout
+from jostle.fitting.hmc.fit import fit_hmc
+from jostle.fitting.laplace import fit_laplace
+from jostle.fitting.point_estimates import fit_deep_ensemble, fit_map
+from jostle.fitting.variational import fit_vi
 from jostle.posterior.architectures import ACTIVATIONS
 
 __all__ = [
-    "SweepConfigError", "METHODS", "DETERMINISTIC_METHODS", "ATTACK_METHODS", "DATASETS",
-    "run_key", "canonical_json", "read_toml", "check_sweep", "expand", "check_run",
+    "SweepConfigError", "FITS", "METHODS", "DETERMINISTIC_METHODS", "DATASETS",
+    "run_key", "canonical_json", "read_toml", "check_sweep", "expand", "check_run", "fit_function",
 ]
 
-#: posterior method -> name of the jostle function that fits it
-METHODS: dict[str, str] = {
-    "map": "fit_map",
-    "deep_ensemble": "fit_deep_ensemble",
-    "dropout": "fit_dropout",
-    "vi": "fit_vi",
-    "laplace": "fit_laplace",
-    "hmc": "fit_hmc",
+#: posterior method -> the jostle function that fits it
+FITS = {
+    "map": fit_map,
+    "deep_ensemble": fit_deep_ensemble,
+    "dropout": fit_dropout,
+    "vi": fit_vi,
+    "laplace": fit_laplace,
+    "hmc": fit_hmc,
 }
+#: posterior method -> the name of that function (as exported by jostle)
+METHODS: dict[str, str] = {name: fit.__name__ for name, fit in FITS.items()}
 #: methods that give a single network (S = 1); every other method is Bayesian
 DETERMINISTIC_METHODS = ("map",)
-ATTACK_METHODS = ("fgsm", "pgd", "cw", "spsa", "square")
 DATASETS = ("moons", "circles", "spirals", "digits", "leak_alarm")
 _TARGETS = ("predicted", "true")
-_OBJECTIVES = ("expected_loss", "predictive", "margin")
+# Attack steps when the sweep does not say: this many, or fewer where the method's own
+# default is smaller (fgsm takes one step).
+_ATTACK_STEPS = 20
 # Arguments the sweep sets itself and so may not appear among a method's hyper-parameters.
 _RESERVED_FIT_ARGS = ("net", "model", "module", "data", "dataset", "seed", "device", "progress")
 _SWEEP_KEYS = ("name", "datasets", "architectures", "methods", "train_sizes", "seeds", "evaluation")
@@ -167,10 +176,8 @@ def check_evaluation(spec: Any, where: str) -> dict:
 
 
 def fit_function(method: str):
-    """The jostle function that fits ``method``, or None while this installation lacks it."""
-    import jostle
-
-    return getattr(jostle, METHODS[method], None)
+    """The jostle function that fits posterior method ``method`` (a key of :data:`FITS`)."""
+    return FITS[method]
 
 
 # ---------------------------------------------------------------------- private helpers
@@ -235,12 +242,9 @@ def _check_hyperparameter_name(method: str, key: str, where: str) -> None:
     if key in _RESERVED_FIT_ARGS:
         raise SweepConfigError(f"{where}.{key}: set by the sweep itself, not a hyper-parameter")
     fit = fit_function(method)
-    if fit is None:
-        return  # cannot list the hyper-parameters of a fit this installation lacks
-    parameters = inspect.signature(fit).parameters
-    if any(p.kind is inspect.Parameter.VAR_KEYWORD for p in parameters.values()):
-        return
-    allowed = [p for p in list(parameters)[2:] if p not in _RESERVED_FIT_ARGS]
+    # Each fit declares its options (jostle.fitting.training_options.training_fit): its own,
+    # then the shared training options it takes.
+    allowed = [p for p in (*fit.method_options, *fit.training_options) if p not in _RESERVED_FIT_ARGS]
     if key not in allowed:
         raise SweepConfigError(
             f"{where}.{key}: unknown hyper-parameter of {METHODS[method]} (known: {_listing(allowed)})"
@@ -248,20 +252,26 @@ def _check_hyperparameter_name(method: str, key: str, where: str) -> None:
 
 
 def _check_attack(spec: Any, where: str) -> dict:
+    """One attack entry; method, norm and objective from the attack registry (norm and
+    objective default to the method's own)."""
     if isinstance(spec, str):
         spec = {"method": spec}
     spec = _table(spec, where)
     _known_keys(spec, ("method", "norm", "steps", "samples", "objective", "label"), where)
     method = spec.get("method")
-    if method not in ATTACK_METHODS:
-        raise SweepConfigError(f"{where}.method: unknown attack {method!r} (known: {_listing(ATTACK_METHODS)})")
-    norm = str(spec.get("norm", "inf"))
-    if norm not in ("inf", "2"):
-        raise SweepConfigError(f"{where}.norm: must be 'inf' or '2'; got {spec.get('norm')!r}")
-    objective = spec.get("objective", "expected_loss")
-    if objective not in _OBJECTIVES:
-        raise SweepConfigError(f"{where}.objective: must be one of {_listing(_OBJECTIVES)}; got {objective!r}")
-    steps = _int(spec.get("steps", 1 if method == "fgsm" else 20), f"{where}.steps", low=1)
+    if not isinstance(method, str) or method not in attack_names():
+        raise SweepConfigError(f"{where}.method: unknown attack {method!r} (known: {_listing(attack_names())})")
+    norm = spec.get("norm")
+    norm = str(norm) if isinstance(norm, int) and not isinstance(norm, bool) else norm  # TOML: norm = 2
+    try:
+        _, norm, _ = resolve_settings(method, norm, None)
+    except ValueError as err:
+        raise SweepConfigError(f"{where}.norm: {err}") from None
+    try:
+        _, _, objective = resolve_settings(method, norm, spec.get("objective"))
+    except ValueError as err:
+        raise SweepConfigError(f"{where}.objective: {err}") from None
+    steps = _int(spec.get("steps", _default_steps(method)), f"{where}.steps", low=1)
     samples = spec.get("samples")
     samples = None if samples is None else _int(samples, f"{where}.samples", low=1)
     label = spec.get("label") or f"{method}-{norm}" + (f"-s{samples}" if samples else "")
@@ -269,6 +279,13 @@ def _check_attack(spec: Any, where: str) -> dict:
         raise SweepConfigError(f"{where}.label: must be a string; got {label!r}")
     return {"method": method, "norm": norm, "steps": steps, "samples": samples,
             "objective": objective, "label": label}
+
+
+def _default_steps(method: str) -> int:
+    own = inspect.signature(attack_spec(method).function).parameters.get("steps")
+    if own is None or not isinstance(own.default, int):
+        return _ATTACK_STEPS
+    return min(_ATTACK_STEPS, own.default)
 
 
 def _known_keys(spec: dict, allowed, where: str) -> None:

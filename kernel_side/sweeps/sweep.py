@@ -14,9 +14,10 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable
 
+from jostle.common.progress import progress_bar as progress_bar_for
 from jostle.sweeps.results_db import RunStore
 from jostle.sweeps.spec import check_sweep, expand, read_toml, run_key, SweepConfigError
-from jostle.sweeps.one_run import execute_run
+from jostle.sweeps.one_run import execute_run, software_versions
 
 __all__ = ["Sweep", "SweepSummary"]
 
@@ -148,7 +149,7 @@ class Sweep:
 
             pending = [c for c in configs if wanted(run_key(c))]
             summary = SweepSummary(total=len(configs), skipped=len(configs) - len(pending))
-            with _progress_bar(len(pending), self.name, progress_bar) as bar:
+            with progress_bar_for(bool(progress_bar), len(pending), self.name, unit="run", leave=True) as bar:
                 def commit(record: dict) -> None:
                     record.pop("_future_key", None)
                     db.record(record, sweep=self.name)
@@ -235,33 +236,9 @@ def _run_on_cluster(client: Any, pending: list[dict], save_ensembles: bool,
 
 
 def _lost_record(config: dict, err: BaseException) -> dict:
-    from jostle.sweeps.one_run import software_versions
-
     return {
         "key": run_key(config), "config": config, "status": "failed", "metrics": None,
         "error": f"{type(err).__name__}: {err}".splitlines()[0][:500],
         "traceback": "".join(traceback.format_exception(type(err), err, err.__traceback__)),
         "versions": software_versions(), "worker": None,
     }
-
-
-class _NullBar:
-    def __enter__(self):
-        return self
-
-    def __exit__(self, *exc):
-        return None
-
-    def update(self, n):
-        return None
-
-    def set_postfix(self, **kwargs):
-        return None
-
-
-def _progress_bar(total: int, name: str, enabled: bool):
-    if not enabled:
-        return _NullBar()
-    from tqdm.auto import tqdm
-
-    return tqdm(total=total, desc=name, unit="run")

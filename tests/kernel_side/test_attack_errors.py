@@ -20,8 +20,9 @@ def x():
     ({"eps": -0.1}, r"eps must be a finite float >= 0; got -0.1"),
     ({"eps": float("nan")}, r"eps must be a finite float >= 0; got nan"),
     ({"method": "boil"}, r"method must be one of 'fgsm', 'pgd', 'cw', 'spsa', 'square'; got 'boil'"),
-    ({"norm": "1"}, r"norm must be one of 'inf', '2'; got '1'"),
-    ({"objective": "hinge"}, r"objective must be one of 'expected_loss', 'predictive', 'margin'; got 'hinge'"),
+    ({"norm": "1"}, r"norm must be one of \['inf', '2'\] for method 'pgd'; got '1'"),
+    ({"objective": "hinge"},
+     r"objective must be one of \['expected_loss', 'predictive', 'margin'\] for method 'pgd'; got 'hinge'"),
     ({"steps": 0}, r"steps must be an integer >= 1; got 0"),
     ({"samples": 5}, r"samples must be an integer in \[1, 2\]; got 5"),
     ({"samples": [0, 7]}, r"samples must index members in \[0, 2\)"),
@@ -30,7 +31,11 @@ def x():
     ({"judge": "crowd"}, r"judge must be one of 'ensemble', 'attacker'; got 'crowd'"),
     ({"seed": -1}, r"seed must be an integer >= 0; got -1"),
     ({"threads": 0}, r"threads must be an integer >= 1; got 0"),
-    ({"method": "cw"}, r"method 'cw' is an L2 attack: norm must be '2'; got 'inf'"),
+    ({"method": "cw", "norm": "inf"}, r"norm must be one of \['2'\] for method 'cw'; got 'inf'"),
+    ({"method": "cw", "objective": "expected_loss"},
+     r"objective must be one of \['margin'\] for method 'cw'; got 'expected_loss'"),
+    ({"method": "square", "objective": "predictive"},
+     r"objective must be one of \['margin'\] for method 'square'; got 'predictive'"),
     ({"method": "square", "p_init": 0.0}, r"p_init must be a finite float > 0 and <= 1; got 0"),
     ({"kappa": 1.0}, r"method 'pgd' takes options \[.*\]; got unknown \['kappa'\]"),
     ({"restarts": 3, "random_start": False}, r"restarts > 1 needs random_start=True"),
@@ -107,7 +112,7 @@ def test_robustness_functions_refuse_bad_arguments(ens, x):
 def test_masking_check_refuses_bad_arguments(ens, x):
     with pytest.raises(ValueError, match=r"eps must be a finite float > 0; got 0"):
         jostle.masking_check(ens, x, eps=0.0)
-    with pytest.raises(ValueError, match=r"gradient_free must be one of 'square', 'spsa'; got 'pgd'"):
+    with pytest.raises(ValueError, match=r"gradient_free must be one of 'spsa', 'square' \(the registered gradient-free attacks\); got 'pgd'"):
         jostle.masking_check(ens, x, gradient_free="pgd")
     with pytest.raises(ValueError, match=r"budget_scales must hold at least two distinct scales; got \[1.0\]"):
         jostle.masking_check(ens, x, budget_scales=[1.0])

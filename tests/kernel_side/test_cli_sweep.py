@@ -14,11 +14,6 @@ import pytest
 import jostle
 from jostle.sweeps.results_db import RunStore, StoreError
 
-needs_attacks = pytest.mark.skipif(
-    not all(hasattr(jostle, n) for n in ("attack", "softmax_robustness")),
-    reason="needs jostle.attack and jostle.softmax_robustness",
-)
-
 FIT = """
 seed = 1
 [data]
@@ -160,7 +155,6 @@ def test_bad_arguments_fail_in_one_line(tmp_path, capsys, monkeypatch):
     assert no_out.returncode == 2 and "--out" in no_out.stderr  # argparse usage error
 
 
-@needs_attacks
 def test_sweep_run_and_show(tmp_path, capsys, monkeypatch):
     (tmp_path / "sweep.toml").write_text(SWEEP.format(epochs=2))
     result = jostle_cli("sweep", "run", "sweep.toml", "--store", "runs.sqlite", "--save-ensembles", "--quiet",
@@ -183,7 +177,6 @@ def test_sweep_run_and_show(tmp_path, capsys, monkeypatch):
     assert len(list((tmp_path / "runs.ensembles").glob("*.safetensors"))) == 2
 
 
-@needs_attacks
 def test_unreachable_scheduler(tmp_path, capsys, monkeypatch):
     (tmp_path / "sweep.toml").write_text(SWEEP.format(epochs=2))
     result = in_process(["sweep", "run", "sweep.toml", "--store", "runs.sqlite", "--scheduler", "tcp://127.0.0.1:9",
@@ -192,7 +185,6 @@ def test_unreachable_scheduler(tmp_path, capsys, monkeypatch):
     assert one_line_error(result).startswith("jostle sweep run: cannot reach the scheduler at tcp://127.0.0.1:9")
 
 
-@needs_attacks
 @pytest.mark.slow
 def test_sigint_then_rerun_executes_only_the_missing_runs(tmp_path):
     (tmp_path / "sweep.toml").write_text(SWEEP.format(epochs=400).replace("seeds = [0, 1]", "seeds = [0, 1, 2, 3]"))

@@ -3,14 +3,13 @@ from __future__ import annotations
 
 import math
 
-import numpy as np
 import pytest
 import scipy.stats
 import torch
 
 import jostle
 from jostle.fitting.hmc.diagnostics import SamplingInterruptedWarning
-from jostle.fitting.hmc.sampler import HMCState, evaluate, hmc_transition, kinetic_energy, leapfrog
+from jostle.fitting.hmc.sampler import evaluate, hmc_transition, kinetic_energy, leapfrog
 
 F64 = torch.float64
 

@@ -109,7 +109,7 @@ def test_default_attacks_are_fgsm_and_pgd():
     ({"methods": [{"name": "map", "seed": 3}]}, r"^sweep\.methods\[0\]\.seed: set by the sweep itself"),
     ({"methods": [{"name": "map", "lr": {"a": 1}}]}, r"^sweep\.methods\[0\]\.lr: must be a number, string"),
     ({"evaluation": {"budgets": [0.1, -0.2]}}, r"^sweep\.evaluation\.budgets\[1\]: must be a finite number >= 0; got -0.2"),
-    ({"evaluation": {"attacks": [{"method": "fgsm", "norm": "1"}]}}, r"^sweep\.evaluation\.attacks\[0\]\.norm: must be 'inf' or '2'"),
+    ({"evaluation": {"attacks": [{"method": "fgsm", "norm": "1"}]}}, r"^sweep\.evaluation\.attacks\[0\]\.norm: norm must be one of \['inf', '2'\] for method 'fgsm'; got '1'"),
     ({"evaluation": {"attacks": ["pgd", "deepfool"]}}, r"^sweep\.evaluation\.attacks\[1\]\.method: unknown attack 'deepfool'"),
     ({"evaluation": {"attacks": ["pgd", "pgd"]}}, r"^sweep\.evaluation\.attacks\[1\]: label 'pgd-inf' repeats"),
     ({"evaluation": {"point": 3}}, r"^sweep\.evaluation: unknown key 'point'"),

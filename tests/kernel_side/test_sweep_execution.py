@@ -11,14 +11,8 @@ import pytest
 
 import jostle
 from jostle.sweeps.results_db import RunStore
-from jostle.sweeps.spec import run_key
 
 distributed = pytest.importorskip("distributed")
-
-pytestmark = pytest.mark.skipif(
-    not all(hasattr(jostle, n) for n in ("attack", "softmax_robustness", "fit_map", "fit_deep_ensemble")),
-    reason="needs jostle.attack, jostle.softmax_robustness, fit_map and fit_deep_ensemble",
-)
 
 TINY = dict(
     datasets=[{"name": "moons", "n_test": 40, "noise": 0.2}],

@@ -26,7 +26,3 @@ def ens():
     return tiny_ensemble()
 
 
-has_attacks = pytest.mark.skipif(not hasattr(jostle, "attack"), reason="jostle.attack is not in this tree yet")
-has_expected_gradient = pytest.mark.skipif(
-    not (hasattr(jostle, "expected_gradient") and hasattr(jostle, "gradient_fade")),
-    reason="jostle.expected_gradient / jostle.gradient_fade are not in this tree yet")

@@ -15,9 +15,10 @@ import pytest
 
 import jostle
 from jostle.widgets import Explorer, ImageExplorer
-from jostle.widgets._charts import count_axis, loss_axis_for, path_chart, tick_label_limit
+from jostle.common.ticks import tick_label_limit
+from jostle.widgets._charts import path_chart
 
-from .conftest import has_attacks, tiny_ensemble
+from .conftest import tiny_ensemble
 
 
 def _figures(widget):
@@ -52,34 +53,6 @@ def _confident_net():
     return ens
 
 
-@pytest.mark.parametrize("loss", [[0.0] * 9, [9.06e-6] * 9, [float("nan")] * 4, [float("inf"), 1.0, 2.0],
-                                  [5.0] * 3, [0.1, 0.5, 1.2], [0.00024, 0.00026]])
-def test_loss_axis_contains_every_finite_value_strictly_and_ticks_start_at_zero(loss):
-    # facts of the trade (common practice): a domain strictly wider than the data shows every point;
-    # ticks of 1, 2 or 5 times a power of ten, inside the domain
-    axis = loss_axis_for(loss)
-    finite = np.asarray(loss)[np.isfinite(loss)]
-    assert math.isfinite(axis.low) and math.isfinite(axis.high) and axis.low < axis.high
-    if finite.size:
-        assert axis.low < finite.min() and finite.max() < axis.high
-    assert axis.ticks.size >= 2 and axis.ticks[0] == 0.0
-    assert np.all((axis.ticks >= axis.low) & (axis.ticks <= axis.high))
-    step = axis.ticks[1] - axis.ticks[0]
-    mantissa = step / 10 ** math.floor(math.log10(step))
-    assert min(abs(mantissa - m) for m in (1, 2, 5)) < 1e-6
-
-
-def test_count_axis_has_no_negative_tick_and_reaches_the_most_members():
-    for most, expected in ((0, [0, 1]), (1, [0, 1]), (6, [0, 2, 4, 6]), (17, [0, 5, 10, 15])):
-        top, ticks = count_axis(most)
-        assert top >= max(most, 1) and ticks.tolist() == expected
-
-
-def test_tick_label_limit_shrinks_with_the_number_of_classes():
-    assert tick_label_limit(2) == 12 and tick_label_limit(10) == 4 and tick_label_limit(6) == 8
-
-
-@has_attacks
 def test_a_flat_loss_at_a_confident_point_still_draws_both_lines_on_finite_scales(moons):
     ens = _confident_net()
     ex = Explorer(ens, moons, point=[-2.0, -2.0], budget=0.2, steps=8, grid=8, boundaries=1)
@@ -152,19 +125,3 @@ def explorer_view(moons):
     assert ex.wait(60)
     yield ex
     ex.close()
-
-
-def test_log_ticks_are_nice_numbers_inside_the_range():
-    # 1-2-5 ticks on a log axis (common practice), never outside the data, at most 4.
-    from jostle.widgets._charts import log_ticks
-
-    assert log_ticks(0.3, 10.0).tolist() == [1.0, 10.0]          # five 1-2-5 numbers: decades only
-    assert log_ticks(0.15, 0.6).tolist() == [0.2, 0.5]
-    assert log_ticks(0.15, 2.5).tolist() == [0.2, 0.5, 1.0, 2.0]
-    assert log_ticks(1.0, 1000.0).tolist() == [1.0, 10.0, 100.0, 1000.0]
-    narrow = log_ticks(6.1, 6.9)  # no 1-2-5 number inside: the ends, to two digits
-    assert narrow.tolist() == [6.1, 6.9]
-    for low, high in [(1e-6, 3e-6), (0.02, 40.0), (5.0, 5.0), (3e-9, 2e3)]:
-        ticks = log_ticks(low, high)
-        assert 1 <= len(ticks) <= 4
-        assert ticks.min() >= low * 0.95 and ticks.max() <= high * 1.05

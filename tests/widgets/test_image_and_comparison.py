@@ -10,7 +10,7 @@ import jostle
 from jostle.widgets import Comparison, ImageExplorer
 from jostle.widgets._wire import from_wire
 
-from .conftest import has_attacks, tiny_ensemble
+from .conftest import tiny_ensemble
 
 
 @pytest.fixture(scope="module")
@@ -57,7 +57,6 @@ def test_image_explorer_refuses_data_without_images(moons, ens):
         ImageExplorer(ens, moons)
 
 
-@has_attacks
 def test_image_panels_hold_the_attack_from_jostle_attack(image_explorer, digits):
     ex = image_explorer
     view = ex.result

@@ -11,7 +11,7 @@ import torch
 import jostle
 import jostle.live.engine as live
 
-from .conftest import has_attacks, has_expected_gradient, tiny_ensemble
+from .conftest import tiny_ensemble
 
 BOUNDS = ([-2.0, -1.5], [2.5, 2.0])
 
@@ -98,7 +98,7 @@ def test_samples_none_resolves_to_every_member(ens, state):
     ("norm", "1", r"norm must be one of 'inf', '2'; got '1'"),
     ("steps", 0, r"steps must be an integer in \[1, 10000\]; got 0"),
     ("layer", "heat", r"layer must be one of 'predictive', 'epistemic', 'entropy'; got 'heat'"),
-    ("objective", "max", r"objective must be one of 'expected_loss', 'predictive'; got 'max'"),
+    ("objective", "max", r"objective must be one of 'expected_loss', 'predictive', 'margin'; got 'max'"),
 ])
 def test_bad_fields_name_field_rule_and_value(ens, state, field, value, message):
     with pytest.raises(ValueError, match=message):
@@ -122,7 +122,6 @@ def test_image_inputs_skip_the_map():
     assert view.classes == [str(c) for c in range(10)]
 
 
-@has_attacks
 def test_attack_panel_matches_jostle_attack(ens, state):
     view = live.compute_view(ens, state, bounds=BOUNDS)
     x = torch.tensor([state.point])
@@ -139,7 +138,6 @@ def test_attack_panel_matches_jostle_attack(ens, state):
     assert view.attack.distance <= state.budget + 1e-6  # PGD stays in the eps-ball (Madry et al. 2018)
 
 
-@has_expected_gradient
 def test_fade_panel_matches_gradient_fade_and_expected_gradient(ens, state):
     view = live.compute_view(ens, state, bounds=BOUNDS)
     fade = view.fade

@@ -145,17 +145,6 @@ def test_sweep_chart_axes_tick_at_round_numbers_inside_their_domain(store):
             assert axis["labels"] == [f"{t:.{max(0, -int(np.floor(np.log10(steps[0]))))}f}" for t in ticks]
 
 
-def test_share_axis_ticks_where_even_spacing_did_not():
-    # the old even split of a padded range gave 0.61, 0.69, 0.77-style ticks; round steps instead
-    from jostle.widgets._charts import share_axis
-
-    axis = share_axis([0.6416, 0.7384])
-    assert axis.ticks.tolist() == [0.64, 0.66, 0.68, 0.7, 0.72, 0.74]
-    assert axis.labels == ["0.64", "0.66", "0.68", "0.70", "0.72", "0.74"]
-    assert share_axis([]).ticks.tolist() == [0.0, 0.2, 0.4, 0.6, 0.8, 1.0]
-    assert share_axis([0.2758, 0.597]).labels == ["0.3", "0.4", "0.5", "0.6"]
-
-
 def test_bad_choices_are_refused(store):
     w = SweepExplorer(store)
     with pytest.raises(traitlets.TraitError, match=r"budget must be one of \[0.1, 0.2\].*got 0.5"):

@@ -5,6 +5,7 @@ import torch
 from torch import Tensor
 
 import jostle.fitting.hmc.adaptation as adapt
+from jostle.common.progress import progress_bar
 from jostle.fitting.hmc.transitions import (
     HMCDraws, HMCState, LogDensity, Settings, evaluate, hmc_transition, kinetic_energy, leapfrog, now,
     summarise_draws, warn_interrupted,
@@ -35,7 +36,10 @@ def run_chains(
             f"initial must give a finite log density and gradient for every chain; chains {bad} do not"
         )
     run = _Run(log_density, state, settings, generator, num_samples)
-    bar = _progress_bar(progress, warmup + num_samples)
+    # miniters=1: iterations slow down sharply as the step size adapts, and a dynamic
+    # minimum would leave the bar frozen for minutes.
+    bar = progress_bar(bool(progress), warmup + num_samples, "HMC", unit="it", leave=True, miniters=1,
+                       mininterval=0.5)
     interrupted = False
     try:
         run.start_step(step_size)
@@ -45,8 +49,7 @@ def run_chains(
         interrupted = True
         warn_interrupted(run.kept, num_samples)
     finally:
-        if bar is not None:
-            bar.close()
+        bar.close()
     return run.result(diagnostics, interrupted, now() - started)
 
 
@@ -190,18 +193,8 @@ class _Run:
         )
 
 
-def _progress_bar(enabled: bool, total: int):
-    if not enabled:
-        return None
-    from tqdm.auto import tqdm
-
-    # miniters=1: iterations slow down sharply as the step size adapts, and a dynamic
-    # minimum would leave the bar frozen for minutes.
-    return tqdm(total=total, desc="HMC", unit="it", leave=True, miniters=1, mininterval=0.5)
-
-
 def _tick(bar, phase: str, accept: float, divergences: Tensor) -> None:
-    if bar is None:
+    if bar.disable:  # skip the device sync of reading the divergence count
         return
     bar.set_postfix(phase=phase, accept=f"{accept:.2f}", divergences=int(divergences.sum()), refresh=False)
     bar.update(1)

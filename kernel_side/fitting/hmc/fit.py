@@ -8,18 +8,18 @@ hidden units can be permuted.
 """
 from __future__ import annotations
 
-import contextlib
 import copy
 import time
 import warnings
-from typing import Any, Iterator
+from typing import Any
 
 import torch
 from torch import Tensor, nn
 
 from jostle.common.checks import show_value, check_choice, check_float, check_int
-from jostle.common.threads import torch_threads
+from jostle.common.threads import threads_for, torch_threads
 from jostle.fitting.training_loop import stream_seed
+from jostle.fitting.training_options import training_fit
 from jostle.fitting.hmc.network_density import (
     NetworkPosterior, convergence_checks, function_space_diagnostics, map_start, prior_start,
 )
@@ -31,6 +31,7 @@ from jostle.posterior.architectures import architecture_of
 __all__ = ["fit_hmc"]
 
 
+@training_fit(("seed", "device", "progress"))
 def fit_hmc(
     module: nn.Module,
     data,
@@ -166,15 +167,9 @@ def _fit(posterior: NetworkPosterior, data, settings: dict, started: float, prog
 _SMALL_WORK = 2**23
 
 
-@contextlib.contextmanager
-def _compute_threads(threads: Any, posterior: NetworkPosterior, chains: int) -> Iterator[None]:
-    if threads == "auto":
-        work = chains * posterior.x.shape[0] * posterior.floats_per_pair
-        threads = 1 if posterior.device.type == "cpu" and work <= _SMALL_WORK else None
-    elif threads is not None:
-        threads = check_int("threads", threads, low=1)
-    with torch_threads(threads):
-        yield
+def _compute_threads(threads: Any, posterior: NetworkPosterior, chains: int):
+    work = chains * posterior.x.shape[0] * posterior.floats_per_pair
+    return torch_threads(threads_for(threads, work, posterior.device, small=_SMALL_WORK))
 
 
 # ---------------------------------------------------------------------------- helpers

@@ -1,4 +1,10 @@
-"""Mean-field Gaussian variational inference over any log density.
+"""Test reference: mean-field Gaussian variational inference over any log density.
+
+Not part of jostle: :func:`jostle.fit_vi` takes a classifier and a data set (softmax
+cross-entropy likelihood), so the closed forms of mean-field VI on a Gaussian target
+(Bishop 2006, sec. 10.1.2) cannot be posed to it; this small fitter over an arbitrary log
+density poses them, with the same ELBO estimator (reparameterised draws, std =
+softplus(rho), jostle's shipped ``softplus_inverse``).
 
 q(theta) = prod_i N(mean_i, std_i^2) with std = softplus(rho) (Blundell et al. 2015).
 The fitter maximises the evidence lower bound
@@ -18,30 +24,9 @@ from torch import Tensor
 from torch.nn import functional as F
 
 from jostle.common.checks import as_float_tensor, check_float, check_int
-from jostle.fitting.training_loop import threads_for
+from jostle.fitting.gaussians import softplus_inverse
 
-__all__ = ["gaussian_kl", "softplus_inverse", "MeanFieldGaussian", "fit_mean_field"]
-
-
-def gaussian_kl(mean_q: Tensor, std_q: Tensor, mean_p: Tensor | float, std_p: Tensor | float) -> Tensor:
-    """Elementwise KL(N(mean_q, std_q^2) || N(mean_p, std_p^2)) in nats.
-
-    ``log(std_p / std_q) + (std_q^2 + (mean_q - mean_p)^2) / (2 std_p^2) - 1/2``.
-
-    Examples
-    --------
-    >>> round(float(gaussian_kl(torch.tensor(0.0), torch.tensor(1.0), 1.0, 2.0)), 6)
-    0.443147
-    """
-    mean_p = torch.as_tensor(mean_p, dtype=mean_q.dtype, device=mean_q.device)
-    std_p = torch.as_tensor(std_p, dtype=mean_q.dtype, device=mean_q.device)
-    return torch.log(std_p / std_q) + (std_q**2 + (mean_q - mean_p) ** 2) / (2 * std_p**2) - 0.5
-
-
-def softplus_inverse(std: Tensor | float) -> Tensor:
-    """rho with softplus(rho) = std, stable for small and large std."""
-    std = torch.as_tensor(std, dtype=torch.get_default_dtype()) if not isinstance(std, Tensor) else std
-    return std + torch.log(-torch.expm1(-std))
+__all__ = ["MeanFieldGaussian", "fit_mean_field"]
 
 
 @dataclass
@@ -81,7 +66,6 @@ def fit_mean_field(
     init_std: float = 0.1,
     batched: bool = True,
     seed: int = 0,
-    progress: bool = False,
 ) -> MeanFieldGaussian:
     """Fit q(theta) = N(mean, diag(std^2)) to an unnormalised log density by maximising the ELBO.
 
@@ -101,7 +85,6 @@ def fit_mean_field(
     lr, init_std : float
         Adam's starting learning rate; the starting standard deviation.
     seed : int
-    progress : bool
 
     Returns
     -------
@@ -117,13 +100,11 @@ def fit_mean_field(
     rho = softplus_inverse(torch.full_like(mean, init_std)).requires_grad_(True)
     optimiser = torch.optim.Adam([mean, rho], lr=lr)
     schedule = torch.optim.lr_scheduler.CosineAnnealingLR(optimiser, T_max=steps, eta_min=lr * 0.01)
-    with threads_for(mean.numel() * draws, mean.device):
-        return _ascend(log_density, mean, rho, optimiser, schedule, steps, draws, batched, generator, progress)
+    return _ascend(log_density, mean, rho, optimiser, schedule, steps, draws, batched, generator)
 
 
-def _ascend(log_density, mean, rho, optimiser, schedule, steps, draws, batched, generator, progress):
+def _ascend(log_density, mean, rho, optimiser, schedule, steps, draws, batched, generator):
     elbo: list[float] = []
-    bar = _bar(steps, progress)
     for _ in range(steps):
         std = F.softplus(rho)
         noise = torch.randn(draws, *mean.shape, generator=generator, dtype=mean.dtype, device=mean.device)
@@ -135,11 +116,6 @@ def _ascend(log_density, mean, rho, optimiser, schedule, steps, draws, batched, 
         optimiser.step()
         schedule.step()
         elbo.append(float(objective.detach()) + 0.5 * mean.numel() * (1 + math.log(2 * math.pi)))
-        if bar is not None:
-            bar.update(1)
-            bar.set_postfix(elbo=f"{elbo[-1]:.4f}")
-    if bar is not None:
-        bar.close()
     return MeanFieldGaussian(mean.detach(), F.softplus(rho).detach(), elbo)
 
 
@@ -164,10 +140,3 @@ def _evaluate(log_density: Callable[[Tensor], Tensor], theta: Tensor, batched: b
 def _is_double(value: Any) -> bool:
     return getattr(value, "dtype", None) in (torch.float64, "float64") or str(getattr(value, "dtype", "")) == "float64"
 
-
-def _bar(total: int, progress: bool):
-    if not progress:
-        return None
-    from tqdm.auto import tqdm
-
-    return tqdm(total=total, desc="mean-field VI", unit="step", leave=False)

@@ -1,0 +1,1 @@
+"""Plain reference implementations the tests compare jostle against (not shipped)."""
