@@ -13,12 +13,11 @@ start from) by the planned backward and by ``vmap(grad)``.
 from __future__ import annotations
 
 import torch
+from _timing import interleaved, matmul_gflops, median
 from torch import nn
 
 import jostle
 from jostle.attacks.readouts import member_gradients
-
-from _timing import interleaved, matmul_gflops, median
 
 MEMBERS, POINTS, STEPS, EPS = 100, 100, 40, 0.1
 WIDTHS = [(2, 64), (64, 64), (64, 2)]

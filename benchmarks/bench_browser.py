@@ -25,10 +25,20 @@ REPO = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(REPO))
 
 from _timing import median, percentile  # noqa: E402
+
 from tests.browser.explorer_page import DESCRIBE_JS, click_map, set_range, snapshot, wait_for_explorer  # noqa: E402
 from tests.browser.harness import (  # noqa: E402
-    CHROMIUM, CHROMIUM_ARGS, PageErrors, free_port, jupyter_environment, lab_command, open_and_run, start_server,
-    wait_until, write_lab_settings, write_notebook,
+    CHROMIUM,
+    CHROMIUM_ARGS,
+    PageErrors,
+    free_port,
+    jupyter_environment,
+    lab_command,
+    open_and_run,
+    start_server,
+    wait_until,
+    write_lab_settings,
+    write_notebook,
 )
 
 MEMBERS = 100

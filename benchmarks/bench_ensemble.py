@@ -13,10 +13,10 @@ import sys
 import textwrap
 
 import torch
+from _timing import interleaved, matmul_gflops, median
 from torch.func import functional_call, stack_module_state, vmap
 
 import jostle
-from _timing import interleaved, matmul_gflops, median
 
 HIDDEN = (64, 64)
 

@@ -19,8 +19,8 @@ import warnings
 import torch
 
 import jostle
-from jostle.fitting.hmc.network_density import NetworkPosterior
 from jostle.fitting.hmc.diagnostics import ConvergenceWarning, chain_diagnostics
+from jostle.fitting.hmc.network_density import NetworkPosterior
 from jostle.fitting.hmc.sampler import evaluate
 
 CHAINS = 8

@@ -9,8 +9,9 @@ from __future__ import annotations
 
 import time
 
-import jostle
 from _timing import interleaved, median
+
+import jostle
 
 MEMBERS = 10
 EPOCHS = 30

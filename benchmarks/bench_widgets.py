@@ -19,10 +19,10 @@ import itertools
 from dataclasses import replace
 
 import torch
+from _timing import interleaved, matmul_gflops, median, percentile
 
 import jostle
 import jostle.live.engine as live
-from _timing import interleaved, matmul_gflops, median, percentile
 
 MEMBERS = 100
 HIDDEN = (64, 64)

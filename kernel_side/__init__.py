@@ -2,28 +2,34 @@
 from __future__ import annotations
 
 from jostle import datasets, metrics
-from jostle.datasets import Dataset
-from jostle.posterior.ensemble import DEFAULT_MEMORY_BUDGET, Ensemble
-from jostle.posterior.architectures import build_architecture, init_parameters, mlp, register_architecture
-from jostle.posterior.prediction import Prediction, entropy
-from jostle.files.posterior_file import FormatError
-from jostle.posterior.loading import load
-from jostle.posterior.demo_posteriors import DEMO_POSTERIORS, demo_posterior
-from jostle.fitting.hmc.diagnostics import ConvergenceWarning, SamplingInterruptedWarning
-from jostle.posterior.description import describe
-from jostle.fitting.hmc.sampler import HMCDraws, HMCState, sample_hmc
-from jostle.fitting.hmc.fit import fit_hmc
-from jostle.attacks.problem import AttackResult
-from jostle.attacks.run import AttackSpec, attack, register_attack, unregister_attack
 from jostle.attacks.masking import MaskingReport, masking_check
-from jostle.attacks.readouts import (GradientFade, MinimalBudget, expected_gradient, gradient_fade, minimal_budget,
-                         softmax_robustness)
+from jostle.attacks.problem import AttackResult
+from jostle.attacks.readouts import (
+                         GradientFade,
+                         MinimalBudget,
+                         expected_gradient,
+                         gradient_fade,
+                         minimal_budget,
+                         softmax_robustness,
+)
+from jostle.attacks.run import AttackSpec, attack, register_attack, unregister_attack
+from jostle.datasets import Dataset
+from jostle.files.posterior_file import FormatError
 from jostle.fitting.dropout import fit_dropout
+from jostle.fitting.hmc.diagnostics import ConvergenceWarning, SamplingInterruptedWarning
+from jostle.fitting.hmc.fit import fit_hmc
+from jostle.fitting.hmc.sampler import HMCDraws, HMCState, sample_hmc
+from jostle.fitting.laplace import LastLayerLaplace, fit_laplace
 from jostle.fitting.point_estimates import fit_deep_ensemble, fit_map
 from jostle.fitting.variational import VariationalPosterior, fit_vi
-from jostle.fitting.laplace import LastLayerLaplace, fit_laplace
-from jostle.sweeps.sweep import Sweep, SweepSummary
+from jostle.posterior.architectures import build_architecture, init_parameters, mlp, register_architecture
+from jostle.posterior.demo_posteriors import DEMO_POSTERIORS, demo_posterior
+from jostle.posterior.description import describe
+from jostle.posterior.ensemble import DEFAULT_MEMORY_BUDGET, Ensemble
+from jostle.posterior.loading import load
+from jostle.posterior.prediction import Prediction, entropy
 from jostle.sweeps.spec import SweepConfigError
+from jostle.sweeps.sweep import Sweep, SweepSummary
 
 __version__ = "0.1.0"
 

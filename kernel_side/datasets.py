@@ -6,8 +6,9 @@ the UCI Optical Recognition of Handwritten Digits data (test part: 1,797 8x8 ima
 """
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass, field
-from typing import Any, Sequence
+from typing import Any
 
 import numpy as np
 import torch

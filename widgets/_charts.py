@@ -6,14 +6,21 @@ Axis ranges and ticks come from :mod:`jostle.common.ticks`; this module only pla
 """
 from __future__ import annotations
 
-from typing import Any, Callable
+from collections.abc import Callable
+from typing import Any
 
 import bqplot as bq
 import ipywidgets as w
 import numpy as np
 
 from jostle.common.ticks import (  # noqa: F401 (share_axis is the sweep chart's too)
-    count_axis, log_ticks, loss_axis_for, share_axis, step_ticks, thinned, tick_label_limit,
+    count_axis,
+    log_ticks,
+    loss_axis_for,
+    share_axis,
+    step_ticks,
+    thinned,
+    tick_label_limit,
 )
 
 from ._palette import ATTACK_COLOUR, INPUT_COLOUR

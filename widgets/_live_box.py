@@ -12,9 +12,8 @@ from typing import Any
 import ipywidgets as w
 import traitlets as t
 
-from jostle import Ensemble
-
 import jostle.live.engine as live
+from jostle import Ensemble
 
 from .attack_controls import AttackControls
 from .status_line import StatusLine

@@ -1,7 +1,8 @@
 """Explorers of several posteriors side by side, sharing one input, budget and sample count."""
 from __future__ import annotations
 
-from typing import Any, Sequence
+from collections.abc import Sequence
+from typing import Any
 
 import ipywidgets as w
 import traitlets

@@ -8,17 +8,16 @@ from typing import Any
 import ipywidgets as ipw
 import traitlets as t
 
+from jostle.common.ticks import share_axis
 from jostle.posterior.loading import load
+from jostle.sweeps.chart_data import ROBUSTNESS_MEASURES, sweep_view
 from jostle.sweeps.one_run import load_run_data
 from jostle.sweeps.results_db import RunStore
 from jostle.sweeps.sweep import Sweep
-from jostle.sweeps.chart_data import ROBUSTNESS_MEASURES, sweep_view
 
-from jostle.common.ticks import share_axis
-
+from ._wire import to_wire
 from .explorer import Explorer
 from .image_explorer import ImageExplorer
-from ._wire import to_wire
 from .sweep_chart import SweepChart
 
 _SYNCED = ("methods", "budget", "attack", "measure", "selected_key")

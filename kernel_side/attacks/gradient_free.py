@@ -9,16 +9,17 @@ ball, or over the surface of the L2 ball with energy moved between square window
 """
 from __future__ import annotations
 
-from typing import Any, Callable
+from collections.abc import Callable
+from typing import Any
 
 import numpy as np
 import torch
 from torch import Tensor
 
-from jostle.common.checks import show_value, check_float, check_int
-from jostle.attacks.problem import AttackProblem, AttackResult
 from jostle.attacks.outcome import finish
+from jostle.attacks.problem import AttackProblem, AttackResult
 from jostle.attacks.registry import register_attack
+from jostle.common.checks import check_float, check_int, show_value
 
 __all__ = ["spsa", "square", "spsa_gradient", "square_fraction"]
 

@@ -15,10 +15,10 @@ from typing import Any
 import torch
 from torch import Tensor
 
-from jostle.common.checks import show_value, check_float, check_int
 from jostle.attacks.outcome import finish
 from jostle.attacks.problem import AttackProblem, AttackResult, norm_of
 from jostle.attacks.registry import register_attack
+from jostle.common.checks import check_float, check_int, show_value
 
 __all__ = ["fgsm", "pgd", "cw"]
 
@@ -175,7 +175,7 @@ class _CWSearch:
         self.queries = queries
 
     @classmethod
-    def start(cls, problem: AttackProblem, kappa: float) -> "_CWSearch":
+    def start(cls, problem: AttackProblem, kappa: float) -> _CWSearch:
         x = problem.x
         ok, _ = problem.judge(x)
         margin = problem.margin(x)

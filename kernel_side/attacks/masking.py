@@ -13,8 +13,8 @@ from typing import Any
 import numpy as np
 import torch
 
-from jostle.common.checks import show_value, check_float, check_int
 from jostle.attacks.run import attack, attack_names, attack_spec
+from jostle.common.checks import check_float, check_int, show_value
 
 __all__ = ["masking_check", "MaskingReport"]
 

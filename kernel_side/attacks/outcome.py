@@ -1,8 +1,9 @@
 """Packing an attack's outcome: the one helper every attack method ends with."""
 from __future__ import annotations
 
-from jostle.attacks.problem import AttackProblem, AttackResult, norm_of
 from torch import Tensor
+
+from jostle.attacks.problem import AttackProblem, AttackResult, norm_of
 
 __all__ = ["finish"]
 

@@ -24,15 +24,24 @@ target label: it pulls the target's probability up.
 from __future__ import annotations
 
 import contextlib
+from collections.abc import Iterator
 from dataclasses import dataclass, field, replace
-from typing import Any, Iterator
+from typing import Any
 
 import numpy as np
 import torch
 from torch import Tensor
 
-from jostle.common.checks import (show_value, as_label_tensor, check_choice, check_float, check_int, check_points,
-                      check_representable, check_seed)
+from jostle.common.checks import (
+    as_label_tensor,
+    check_choice,
+    check_float,
+    check_int,
+    check_points,
+    check_representable,
+    check_seed,
+    show_value,
+)
 from jostle.common.threads import threads_for, torch_threads
 from jostle.posterior.gradients import BACKWARDS, OBJECTIVES, objective_values
 
@@ -159,7 +168,7 @@ class AttackProblem:
         return int(self.x.shape[0])
 
     def subset(self, index: Any = None, eps: Tensor | None = None,
-               generator: torch.Generator | None = None) -> "AttackProblem":
+               generator: torch.Generator | None = None) -> AttackProblem:
         """The problem of points ``index`` (indices or a bool mask; None: all points).
 
         ``eps`` [k] replaces their budgets. ``generator`` continues a given random stream

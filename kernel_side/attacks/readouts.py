@@ -14,9 +14,9 @@ import numpy as np
 import torch
 from torch import Tensor
 
-from jostle.common.checks import (check_choice, check_int, check_points, check_seed, show_value)
-from jostle.attacks.problem import build_problem, compute_threads, norm_of
 from jostle.attacks.gradient_methods import pgd
+from jostle.attacks.problem import build_problem, compute_threads, norm_of
+from jostle.common.checks import check_choice, check_int, check_points, check_seed, show_value
 
 __all__ = ["expected_gradient", "member_gradients", "gradient_fade", "GradientFade", "minimal_budget",
            "MinimalBudget", "softmax_robustness"]

@@ -20,8 +20,9 @@ so the built-in attacks are registered before anyone reads the registry.
 """
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Any, Callable
+from typing import Any
 
 from jostle.attacks.problem import NORMS, OBJECTIVES
 from jostle.common.checks import check_choice, show_value

@@ -9,12 +9,21 @@ from __future__ import annotations
 import inspect
 from typing import Any
 
-# The method modules register their attacks on import (this order is the order offered).
-import jostle.attacks.gradient_methods
 import jostle.attacks.gradient_free  # noqa: F401
+
+# The method modules register their attacks on import (this order is the order offered).
 from jostle.attacks.problem import AttackResult, build_problem, compute_threads
-from jostle.attacks.registry import (AttackSpec, attack_choices, attack_names, attack_spec, register_attack,
-                                     registered_norms, registered_objectives, resolve_settings, unregister_attack)
+from jostle.attacks.registry import (
+    AttackSpec,
+    attack_choices,
+    attack_names,
+    attack_spec,
+    register_attack,
+    registered_norms,
+    registered_objectives,
+    resolve_settings,
+    unregister_attack,
+)
 from jostle.common.checks import check_int
 
 __all__ = ["attack", "AttackSpec", "attack_choices", "attack_names", "attack_spec", "register_attack",

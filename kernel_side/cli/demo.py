@@ -16,13 +16,13 @@ import signal
 import socket
 import sys
 import tempfile
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 from importlib import resources
 from pathlib import Path
-from typing import Iterator
 
-from jostle.common.checks import check_int
 from jostle.cli.errors import CommandError
+from jostle.common.checks import check_int
 
 __all__ = ["FIRST_TOUR", "CopyReport", "copy_demo_notebooks", "register"]
 

@@ -64,8 +64,8 @@ def attack_help() -> str:
 
 
 def _fit(args: argparse.Namespace) -> int:
-    from jostle.sweeps.spec import SweepConfigError, check_run, read_toml
     from jostle.sweeps.one_run import evaluate, fit_run
+    from jostle.sweeps.spec import SweepConfigError, check_run, read_toml
 
     out = Path(args.out)
     if out.suffix != ".safetensors":
@@ -89,8 +89,8 @@ _NO_ATTACKS = {"budgets": [], "points": 1, "ece_bins": 15, "target": "predicted"
 
 
 def _sweep_run(args: argparse.Namespace) -> int:
-    from jostle.sweeps.sweep import Sweep
     from jostle.sweeps.spec import SweepConfigError
+    from jostle.sweeps.sweep import Sweep
 
     try:
         sweep = Sweep.from_toml(args.config)

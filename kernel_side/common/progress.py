@@ -52,7 +52,7 @@ class _SilentBar:
 
     disable = True
 
-    def __enter__(self) -> "_SilentBar":
+    def __enter__(self) -> _SilentBar:
         return self
 
     def __exit__(self, *exc: Any) -> None:

@@ -14,7 +14,8 @@ Every entry point that takes ``threads`` (attacks, fits, sweep runs) resolves it
 from __future__ import annotations
 
 import contextlib
-from typing import Any, Iterator
+from collections.abc import Iterator
+from typing import Any
 
 import torch
 

@@ -10,22 +10,29 @@ members, and predicting needs no randomness.
 from __future__ import annotations
 
 import copy
+from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any, Sequence
+from typing import Any
 
 import torch
 from torch import Tensor, nn
 from torch.func import functional_call
 
-from jostle.common.checks import show_value, check_float, check_int
+from jostle.common.checks import check_float, check_int, show_value
+from jostle.datasets import Dataset
 from jostle.fitting.training_loop import (
-    check_module_and_data, cross_entropy_per_member, fit_meta, member_generators, split_validation,
-    stacked_initial, stream_seed, train_members,
+    check_module_and_data,
+    cross_entropy_per_member,
+    fit_meta,
+    member_generators,
+    split_validation,
+    stacked_initial,
+    stream_seed,
+    train_members,
 )
 from jostle.fitting.training_options import TrainingOptions, training_fit
-from jostle.datasets import Dataset
-from jostle.posterior.ensemble import Ensemble
 from jostle.posterior.architectures import architecture_of, build_architecture
+from jostle.posterior.ensemble import Ensemble
 
 __all__ = ["fit_dropout", "fold_dropout_masks", "sample_dropout"]
 

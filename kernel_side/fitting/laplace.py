@@ -17,11 +17,11 @@ import torch
 from torch import Tensor, nn
 
 from jostle.common.checks import check_float, check_int
+from jostle.datasets import Dataset
+from jostle.fitting.point_estimates import fit_map
 from jostle.fitting.training_loop import stream_seed
 from jostle.fitting.training_options import TrainingOptions, training_fit
-from jostle.datasets import Dataset
 from jostle.posterior.ensemble import Ensemble
-from jostle.fitting.point_estimates import fit_map
 
 __all__ = [
     "fit_laplace", "LastLayerLaplace", "softmax_hessian", "log_marginal_likelihood", "optimise_prior_precision",
@@ -118,7 +118,7 @@ class LastLayerLaplace:
         self.meta = dict(point.meta)
 
     @classmethod
-    def around(cls, point: Ensemble, x: Tensor, y: Tensor, prior_precision: float | None) -> "LastLayerLaplace":
+    def around(cls, point: Ensemble, x: Tensor, y: Tensor, prior_precision: float | None) -> LastLayerLaplace:
         """Build the approximation at the MAP ensemble ``point`` from training data."""
         import time
 
@@ -161,7 +161,7 @@ class LastLayerLaplace:
         meta = {**copy.deepcopy(self.meta), "samples": samples, "draw_seed": int(seed)}
         return Ensemble(copy.deepcopy(self.point.template), params, meta=meta, posterior=self)
 
-    def to(self, device: Any = None, dtype: torch.dtype | None = None) -> "LastLayerLaplace":
+    def to(self, device: Any = None, dtype: torch.dtype | None = None) -> LastLayerLaplace:
         """A copy whose MAP network (and so every draw) sits on another device or dtype; the
         curvature stays in float64 on the CPU, where the draws are made."""
         moved = copy.copy(self)

@@ -13,12 +13,17 @@ from typing import Any
 from torch import nn
 
 from jostle.common.checks import check_int
+from jostle.datasets import Dataset
 from jostle.fitting.training_loop import (
-    check_module_and_data, cross_entropy_per_member, fit_meta, member_generators, split_validation,
-    stacked_initial, train_members,
+    check_module_and_data,
+    cross_entropy_per_member,
+    fit_meta,
+    member_generators,
+    split_validation,
+    stacked_initial,
+    train_members,
 )
 from jostle.fitting.training_options import TrainingOptions, training_fit
-from jostle.datasets import Dataset
 from jostle.posterior.ensemble import Ensemble
 
 __all__ = ["fit_map", "fit_deep_ensemble"]

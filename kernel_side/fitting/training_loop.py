@@ -13,8 +13,9 @@ from __future__ import annotations
 
 import copy
 import time
+from collections.abc import Callable
 from dataclasses import dataclass, field
-from typing import Any, Callable
+from typing import Any
 
 import torch
 from torch import Tensor, nn
@@ -23,7 +24,9 @@ from jostle.common.progress import progress_bar
 from jostle.common.threads import threads_for, torch_threads
 from jostle.datasets import Dataset
 from jostle.fitting.training_options import (  # noqa: F401 (check_device is shared from here too)
-    OPTIMIZERS, TrainingOptions, check_device,
+    OPTIMIZERS,
+    TrainingOptions,
+    check_device,
 )
 from jostle.posterior.architectures import architecture_of, init_parameters
 

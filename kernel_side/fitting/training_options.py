@@ -13,8 +13,9 @@ from __future__ import annotations
 
 import inspect
 import textwrap
+from collections.abc import Callable
 from dataclasses import asdict, dataclass, fields, replace
-from typing import Any, Callable, TypeVar
+from typing import Any, TypeVar
 
 import torch
 
@@ -52,7 +53,7 @@ class TrainingOptions:
     progress: bool = True
     device: Any = None
 
-    def checked(self) -> "TrainingOptions":
+    def checked(self) -> TrainingOptions:
         """The same options with every value checked (``device`` a ``torch.device``).
 
         Raises

@@ -19,15 +19,21 @@ from torch import Tensor, nn
 from torch.nn import functional as F
 
 from jostle.common.checks import check_float, check_int
+from jostle.datasets import Dataset
+from jostle.fitting.gaussians import gaussian_kl, softplus_inverse
 from jostle.fitting.training_loop import (
-    check_module_and_data, cross_entropy_per_member, fit_meta, member_generators, split_validation,
-    stacked_initial, stream_seed, train_members,
+    check_module_and_data,
+    cross_entropy_per_member,
+    fit_meta,
+    member_generators,
+    split_validation,
+    stacked_initial,
+    stream_seed,
+    train_members,
 )
 from jostle.fitting.training_options import OPTIMISER_OPTIONS, TRAINING_OPTIONS, TrainingOptions, training_fit
-from jostle.posterior.forward import MLPPlan, make_plan
-from jostle.datasets import Dataset
 from jostle.posterior.ensemble import Ensemble
-from jostle.fitting.gaussians import gaussian_kl, softplus_inverse
+from jostle.posterior.forward import MLPPlan, make_plan
 
 __all__ = ["fit_vi", "VariationalPosterior", "vi_method_label", "DEFAULT_KL_WEIGHT"]
 
@@ -86,7 +92,7 @@ class VariationalPosterior:
         meta = {**copy.deepcopy(self.meta), "samples": samples, "draw_seed": seed}
         return Ensemble(copy.deepcopy(self.template), params, meta=meta, posterior=self)
 
-    def to(self, device: Any = None, dtype: torch.dtype | None = None) -> "VariationalPosterior":
+    def to(self, device: Any = None, dtype: torch.dtype | None = None) -> VariationalPosterior:
         """A copy on another device or floating dtype (draws then land there)."""
         def move(values: dict[str, Tensor]) -> dict[str, Tensor]:
             return {k: v.to(device=device, dtype=dtype if v.is_floating_point() else None) for k, v in values.items()}

@@ -18,9 +18,20 @@ import numpy as np
 import torch
 
 from jostle.attacks.run import attack_names, registered_norms, registered_objectives
-from jostle.common.checks import show_value, check_choice, check_float, check_int, check_representable
-from jostle.live.view_parts import (AttackView, FadeView, GridView, PointView, attack_part,
-                          fade_part, grid_part, grid_prediction, point_part, SpreadView, spread_part)
+from jostle.common.checks import check_choice, check_float, check_int, check_representable, show_value
+from jostle.live.view_parts import (
+    AttackView,
+    FadeView,
+    GridView,
+    PointView,
+    SpreadView,
+    attack_part,
+    fade_part,
+    grid_part,
+    grid_prediction,
+    point_part,
+    spread_part,
+)
 from jostle.live.worker import LiveWorker, Outcome
 from jostle.posterior.ensemble import Ensemble
 

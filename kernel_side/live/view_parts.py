@@ -8,8 +8,8 @@ from typing import Any
 import numpy as np
 import torch
 
-from jostle.attacks.run import attack
 from jostle.attacks.readouts import gradient_fade
+from jostle.attacks.run import attack
 from jostle.live.contours import decision_segments
 from jostle.posterior.ensemble import Ensemble
 from jostle.posterior.prediction import Prediction

@@ -9,8 +9,9 @@ from __future__ import annotations
 import threading
 import time
 import traceback
+from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Any, Callable
+from typing import Any
 
 __all__ = ["LiveWorker", "Outcome"]
 

@@ -17,8 +17,8 @@ input gradient (:mod:`jostle.posterior.planned_gradient`). Each entry holds
 """
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Callable
 
 import torch
 from torch import Tensor, nn

@@ -8,25 +8,26 @@ stays under ``memory_budget`` bytes whatever S and N are.
 from __future__ import annotations
 
 import copy
+from collections.abc import Callable, Iterable, Sequence
 from numbers import Integral
-from typing import Any, Callable, Iterable, Sequence
+from typing import Any
 
 import torch
 from torch import Tensor, nn
 
 from jostle.common.checks import (
-    show_value,
     as_label_tensor,
     check_choice,
     check_int,
     check_points,
     check_seed,
+    show_value,
 )
 from jostle.files.posterior_file import write_posterior
+from jostle.posterior.architectures import architecture_of
 from jostle.posterior.description import describe
 from jostle.posterior.forward import ForwardPlan, make_plan
 from jostle.posterior.gradients import OBJECTIVES, GradientEngine, check_backward
-from jostle.posterior.architectures import architecture_of
 from jostle.posterior.prediction import Prediction
 
 __all__ = ["Ensemble", "DEFAULT_MEMORY_BUDGET"]
@@ -123,7 +124,7 @@ class Ensemble:
 
     # ------------------------------------------------------------------ construction
     @classmethod
-    def from_modules(cls, modules: Iterable[nn.Module], meta: dict | None = None, **kwargs: Any) -> "Ensemble":
+    def from_modules(cls, modules: Iterable[nn.Module], meta: dict | None = None, **kwargs: Any) -> Ensemble:
         """Stack the parameters of modules that share one architecture.
 
         Raises
@@ -146,7 +147,7 @@ class Ensemble:
     @classmethod
     def from_state_dicts(
         cls, template: nn.Module, state_dicts: Sequence[dict[str, Tensor]], meta: dict | None = None, **kwargs: Any
-    ) -> "Ensemble":
+    ) -> Ensemble:
         """Stack state dicts (e.g. saved checkpoints) that all fit ``template``."""
         state_dicts = list(state_dicts)
         if not state_dicts:
@@ -178,7 +179,7 @@ class Ensemble:
     def __len__(self) -> int:
         return int(next(iter(self.params.values())).shape[0])
 
-    def __getitem__(self, index: int | slice | Sequence[int] | Tensor) -> "Ensemble":
+    def __getitem__(self, index: int | slice | Sequence[int] | Tensor) -> Ensemble:
         if isinstance(index, Integral) and not isinstance(index, bool):
             index = [check_int("index", index, low=-len(self), high=len(self) - 1)]
         if isinstance(index, slice):
@@ -189,14 +190,14 @@ class Ensemble:
             raise ValueError(f"index must select at least one member of {len(self)}; got {show_value(index)}")
         return self._with(chosen)
 
-    def subset(self, k: int, seed: int = 0) -> "Ensemble":
+    def subset(self, k: int, seed: int = 0) -> Ensemble:
         """``k`` members drawn at random without replacement (seeded)."""
         k = check_int("k", k, low=1, high=len(self))
         generator = torch.Generator().manual_seed(check_seed(seed))
         order = torch.randperm(len(self), generator=generator)[:k]
         return self[order]
 
-    def to(self, device: torch.device | str | None = None, dtype: torch.dtype | None = None) -> "Ensemble":
+    def to(self, device: torch.device | str | None = None, dtype: torch.dtype | None = None) -> Ensemble:
         """A copy on another device or floating dtype."""
         moved = {
             name: value.to(device=device, dtype=dtype if value.is_floating_point() else None)
@@ -356,7 +357,7 @@ class Ensemble:
 
     # ------------------------------------------------------------------ helpers
     def _with(self, params: dict[str, Tensor], template: nn.Module | None = None,
-              posterior: Any = "same") -> "Ensemble":
+              posterior: Any = "same") -> Ensemble:
         clone = object.__new__(Ensemble)
         clone.template = self.template if template is None else template
         clone.params = params

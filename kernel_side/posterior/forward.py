@@ -7,7 +7,7 @@ much faster than ``vmap`` at small N). ``GeneralPlan`` handles any module with
 """
 from __future__ import annotations
 
-from typing import Callable
+from collections.abc import Callable
 
 import torch
 from torch import Tensor, nn
@@ -43,7 +43,7 @@ def chunk_sizes(members: int, points: int, pair_bytes: int, row_bytes: int, memo
     return max(1, min(members, member_budget, member_cache)), point_chunk
 
 
-def make_plan(template: nn.Module, params: dict[str, Tensor]) -> "ForwardPlan":
+def make_plan(template: nn.Module, params: dict[str, Tensor]) -> ForwardPlan:
     plan = MLPPlan.try_build(template, params)
     return plan if plan is not None else GeneralPlan(template)
 
@@ -129,7 +129,7 @@ class MLPPlan(ForwardPlan):
         self.widest = max([in_features] + widths)
 
     @classmethod
-    def try_build(cls, template: nn.Module, params: dict[str, Tensor]) -> "MLPPlan | None":
+    def try_build(cls, template: nn.Module, params: dict[str, Tensor]) -> MLPPlan | None:
         if not isinstance(template, nn.Sequential) or any(True for _ in template.buffers()):
             return None
         steps: list[tuple] = []

@@ -22,15 +22,16 @@ from __future__ import annotations
 import math
 import threading
 import weakref
+from collections.abc import Callable
 from numbers import Integral
-from typing import Any, Callable
+from typing import Any
 
 import torch
 from torch import Tensor
 from torch.func import functional_call, grad, vmap
 
-from jostle.common.checks import check_choice
 import jostle.posterior.forward as forward_plans
+from jostle.common.checks import check_choice
 from jostle.posterior.forward import ForwardPlan, MLPPlan, chunk_sizes
 from jostle.posterior.planned_gradient import ExpectedLossGradient
 

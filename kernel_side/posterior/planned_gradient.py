@@ -95,7 +95,7 @@ class ExpectedLossGradient:
 
     @classmethod
     def try_build(cls, steps: list[tuple], params: dict[str, Tensor], labels: Tensor, sign: float,
-                  chunk_bytes: int | None = None) -> "ExpectedLossGradient | None":
+                  chunk_bytes: int | None = None) -> ExpectedLossGradient | None:
         """The planned evaluation, or None when the network is not a plain Linear stack.
 
         ``steps`` are :class:`jostle.posterior.forward.MLPPlan` steps; ``params`` the selected

@@ -50,7 +50,7 @@ class Prediction:
         self.units = units
         self._scale = 1.0 if units == "nats" else 1.0 / math.log(2.0)
 
-    def in_bits(self) -> "Prediction":
+    def in_bits(self) -> Prediction:
         return Prediction(self.member_probs, classes=self.classes, units="bits")
 
     @cached_property

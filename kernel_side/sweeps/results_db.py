@@ -12,8 +12,9 @@ from __future__ import annotations
 import json
 import sqlite3
 import time
+from collections.abc import Iterable
 from pathlib import Path
-from typing import Any, Iterable
+from typing import Any
 
 from jostle.files.posterior_file import atomic_write
 from jostle.sweeps.spec import DETERMINISTIC_METHODS, canonical_json
@@ -200,7 +201,7 @@ class RunStore:
     def close(self) -> None:
         self._db.close()
 
-    def __enter__(self) -> "RunStore":
+    def __enter__(self) -> RunStore:
         return self
 
     def __exit__(self, *exc: Any) -> None:

@@ -10,14 +10,15 @@ from __future__ import annotations
 
 import traceback
 import uuid
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
 from jostle.common.progress import progress_bar as progress_bar_for
-from jostle.sweeps.results_db import RunStore
-from jostle.sweeps.spec import check_sweep, expand, read_toml, run_key, SweepConfigError
 from jostle.sweeps.one_run import execute_run, software_versions
+from jostle.sweeps.results_db import RunStore
+from jostle.sweeps.spec import SweepConfigError, check_sweep, expand, read_toml, run_key
 
 __all__ = ["Sweep", "SweepSummary"]
 
@@ -89,7 +90,7 @@ class Sweep:
         self.store = None if store is None else Path(store)
 
     @classmethod
-    def from_toml(cls, path: str | Path, store: str | Path | None = None) -> "Sweep":
+    def from_toml(cls, path: str | Path, store: str | Path | None = None) -> Sweep:
         """Read a sweep from a TOML file whose ``[sweep]`` table holds the same fields."""
         document = read_toml(path)
         unknown = [k for k in document if k != "sweep"]

@@ -7,8 +7,17 @@ from pathlib import Path
 import pytest
 
 from .harness import (
-    Server, chromium_browser, free_port, jupyter_environment, lab_command, page, require_chromium,
-    shutdown_kernels, start_server, voila_command, write_lab_settings,
+    Server,
+    chromium_browser,
+    free_port,
+    jupyter_environment,
+    lab_command,
+    page,
+    require_chromium,
+    shutdown_kernels,
+    start_server,
+    voila_command,
+    write_lab_settings,
 )
 
 __all__ = ["chromium_browser", "page"]

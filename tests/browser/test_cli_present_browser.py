@@ -6,7 +6,14 @@ import signal
 import pytest
 
 from .harness import (
-    START_TIMEOUT_S, JostleCommand, free_port, port_closed, screenshot, wait_for_http, wait_until, write_notebook,
+    START_TIMEOUT_S,
+    JostleCommand,
+    free_port,
+    port_closed,
+    screenshot,
+    wait_for_http,
+    wait_until,
+    write_notebook,
 )
 
 pytestmark = [pytest.mark.browser, pytest.mark.slow]

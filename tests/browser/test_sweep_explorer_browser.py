@@ -3,8 +3,7 @@ from __future__ import annotations
 
 import pytest
 
-from .harness import (PageErrors, block_outside_traffic, open_and_run, screenshot, wait_for, wait_until,
-                      write_notebook)
+from .harness import PageErrors, block_outside_traffic, open_and_run, screenshot, wait_for, wait_until, write_notebook
 
 pytestmark = [pytest.mark.browser, pytest.mark.slow]
 

@@ -5,10 +5,11 @@ perturbation at +-eps, the corner property of the L-inf ball that Square Attack'
 iterates also have (Andriushchenko et al. 2020); with no bounds the projection leaves
 it there, so |x_adv - x| = eps coordinate by coordinate.
 """
-import jostle
-import jostle.live.engine as live
 import pytest
 import torch
+
+import jostle
+import jostle.live.engine as live
 from jostle.attacks.run import (
     attack_choices,
     attack_names,
@@ -16,7 +17,6 @@ from jostle.attacks.run import (
     registered_norms,
 )
 from jostle.sweeps.spec import SweepConfigError, check_evaluation
-
 from tests.conftest import random_mlp_ensemble
 
 

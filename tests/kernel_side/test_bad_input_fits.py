@@ -4,12 +4,13 @@ from __future__ import annotations
 import math
 import re
 
-import jostle
 import numpy as np
 import pytest
 import torch
 from hypothesis import given, settings
 from hypothesis import strategies as st
+
+import jostle
 
 FEW = settings(max_examples=25, deadline=None)
 NOT_FINITE = st.sampled_from([math.nan, math.inf, -math.inf])

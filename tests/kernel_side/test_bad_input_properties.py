@@ -5,12 +5,13 @@ from __future__ import annotations
 import math
 import re
 
-import jostle
 import numpy as np
 import pytest
 import torch
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+
+import jostle
 from jostle import metrics
 
 FEW = settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])

@@ -10,8 +10,7 @@ import torch
 from sklearn.datasets import make_moons
 
 import jostle
-from jostle.datasets import (LEAK_ALARM_CENTRE, LEAK_ALARM_SCALE, LEAK_ALARM_SIGN, TEST_SEED_OFFSET,
-                             leak_alarm)
+from jostle.datasets import LEAK_ALARM_CENTRE, LEAK_ALARM_SCALE, LEAK_ALARM_SIGN, TEST_SEED_OFFSET, leak_alarm
 
 ROOT = Path(__file__).resolve().parents[2]
 DATA_DIR = ROOT / "kernel_side" / "data"

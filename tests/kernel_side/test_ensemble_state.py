@@ -10,10 +10,10 @@ import pytest
 import torch
 
 import jostle
-from jostle.attacks.problem import build_problem
 from jostle.attacks.gradient_methods import pgd
-from jostle.fitting.variational import VariationalPosterior
+from jostle.attacks.problem import build_problem
 from jostle.fitting.laplace import LastLayerLaplace
+from jostle.fitting.variational import VariationalPosterior
 from tests.conftest import random_mlp_ensemble
 
 

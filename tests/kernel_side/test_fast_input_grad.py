@@ -11,9 +11,9 @@ from torch import nn
 
 import jostle
 import jostle.posterior.forward as _forward
+from jostle.attacks.problem import build_problem
 from jostle.posterior.forward import GeneralPlan, MLPPlan
 from jostle.posterior.gradients import objective_values as _objective
-from jostle.attacks.problem import build_problem
 
 OBJECTIVES = ("expected_loss", "predictive", "margin")
 TOLERANCE = {torch.float32: 1e-5, torch.float64: 1e-10}

@@ -10,7 +10,11 @@ from torch.nn import functional as F
 
 import jostle
 from jostle.fitting.laplace import (
-    LastLayerLaplace, fit_laplace, log_marginal_likelihood, optimise_prior_precision, softmax_hessian,
+    LastLayerLaplace,
+    fit_laplace,
+    log_marginal_likelihood,
+    optimise_prior_precision,
+    softmax_hessian,
 )
 from tests.kernel_side.references.laplace import laplace_approximation
 

@@ -8,9 +8,9 @@ from torch.distributions import Normal, kl_divergence
 from torch.nn import functional as F
 
 import jostle
-from jostle.posterior.forward import make_plan
-from jostle.fitting.variational import VariationalPosterior, _local_forward, fit_vi
 from jostle.fitting.gaussians import gaussian_kl, softplus_inverse
+from jostle.fitting.variational import VariationalPosterior, _local_forward, fit_vi
+from jostle.posterior.forward import make_plan
 from tests.kernel_side.references.mean_field import fit_mean_field
 
 

@@ -6,9 +6,9 @@ import pytest
 import torch
 
 import jostle
-from jostle.fitting.hmc.network_density import convergence_checks, failed_checks, point_rhat_summary
 from jostle.fitting.hmc.diagnostics import chain_diagnostics
 from jostle.fitting.hmc.fit import _thin_interleaved
+from jostle.fitting.hmc.network_density import convergence_checks, failed_checks, point_rhat_summary
 
 
 def test_iid_draws_give_rhat_near_one_and_ess_near_the_draw_count():

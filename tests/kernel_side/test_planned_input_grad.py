@@ -15,9 +15,9 @@ from torch import nn
 import jostle
 import jostle.posterior.forward as _forward
 import jostle.posterior.planned_gradient as _input_grad
+from jostle.attacks.problem import build_problem
 from jostle.posterior.gradients import objective_values as _objective
 from jostle.posterior.planned_gradient import ExpectedLossGradient
-from jostle.attacks.problem import build_problem
 
 # Hand backward vs autograd, two code paths: unit roundoff (float32 1.2e-7, float64 2.2e-16)
 # x ~100 for products over up to 20 inputs, 4 hidden layers and 12 classes, with margin.

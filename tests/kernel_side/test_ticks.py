@@ -7,7 +7,14 @@ import numpy as np
 import pytest
 
 from jostle.common.ticks import (
-    count_axis, log_ticks, loss_axis_for, nice_step, share_axis, step_ticks, thinned, tick_label_limit,
+    count_axis,
+    log_ticks,
+    loss_axis_for,
+    nice_step,
+    share_axis,
+    step_ticks,
+    thinned,
+    tick_label_limit,
 )
 
 

@@ -5,11 +5,12 @@ from __future__ import annotations
 import math
 import re
 
-import jostle
 import pytest
 import traitlets
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+
+import jostle
 from jostle.widgets import Comparison, Explorer, ImageExplorer, SweepExplorer
 
 from .conftest import tiny_ensemble

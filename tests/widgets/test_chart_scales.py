@@ -14,8 +14,8 @@ import numpy as np
 import pytest
 
 import jostle
-from jostle.widgets import Explorer, ImageExplorer
 from jostle.common.ticks import tick_label_limit
+from jostle.widgets import Explorer, ImageExplorer
 from jostle.widgets._charts import path_chart
 
 from .conftest import tiny_ensemble

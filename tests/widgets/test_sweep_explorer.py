@@ -9,8 +9,8 @@ from scipy import stats
 import jostle
 from jostle.sweeps.results_db import RunStore
 from jostle.sweeps.spec import run_key
-from jostle.widgets.sweep_explorer import SweepExplorer
 from jostle.widgets._wire import from_wire
+from jostle.widgets.sweep_explorer import SweepExplorer
 
 BUDGETS = [0.1, 0.2]
 SWEEP = jostle.Sweep(
@@ -197,7 +197,6 @@ def test_sweep_source_limits_to_its_runs(store):
 
 def test_clicking_a_saved_run_opens_an_explorer_beside_the_chart(tmp_path):
     from jostle.sweeps.one_run import fit_run
-
     from jostle.widgets import Explorer as explorer_class  # a lost export fails here, it never skips
     small = jostle.Sweep(
         datasets=[{"name": "moons", "n_test": 20}], methods=[{"name": "map", "epochs": 2}],

@@ -7,8 +7,17 @@ from torch import Tensor
 import jostle.fitting.hmc.adaptation as adapt
 from jostle.common.progress import progress_bar
 from jostle.fitting.hmc.transitions import (
-    HMCDraws, HMCState, LogDensity, Settings, evaluate, hmc_transition, kinetic_energy, leapfrog, now,
-    summarise_draws, warn_interrupted,
+    HMCDraws,
+    HMCState,
+    LogDensity,
+    Settings,
+    evaluate,
+    hmc_transition,
+    kinetic_energy,
+    leapfrog,
+    now,
+    summarise_draws,
+    warn_interrupted,
 )
 
 _HEURISTIC_ROUNDS = 60

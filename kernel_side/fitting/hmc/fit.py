@@ -16,17 +16,21 @@ from typing import Any
 import torch
 from torch import Tensor, nn
 
-from jostle.common.checks import show_value, check_choice, check_float, check_int
+from jostle.common.checks import check_choice, check_float, check_int, show_value
 from jostle.common.threads import threads_for, torch_threads
+from jostle.fitting.hmc.diagnostics import ConvergenceWarning
+from jostle.fitting.hmc.network_density import (
+    NetworkPosterior,
+    convergence_checks,
+    function_space_diagnostics,
+    map_start,
+    prior_start,
+)
+from jostle.fitting.hmc.sampler import HMCDraws, sample_hmc
 from jostle.fitting.training_loop import stream_seed
 from jostle.fitting.training_options import training_fit
-from jostle.fitting.hmc.network_density import (
-    NetworkPosterior, convergence_checks, function_space_diagnostics, map_start, prior_start,
-)
-from jostle.fitting.hmc.diagnostics import ConvergenceWarning
-from jostle.posterior.ensemble import Ensemble
-from jostle.fitting.hmc.sampler import HMCDraws, sample_hmc
 from jostle.posterior.architectures import architecture_of
+from jostle.posterior.ensemble import Ensemble
 
 __all__ = ["fit_hmc"]
 

@@ -7,10 +7,10 @@ import numpy as np
 import torch
 from torch import Tensor, nn
 
-from jostle.posterior.forward import make_plan
 from jostle.fitting.hmc.diagnostics import ESS_PER_CHAIN, RHAT_LIMIT, chain_diagnostics
-from jostle.posterior.ensemble import DEFAULT_MEMORY_BUDGET
 from jostle.posterior.architectures import init_parameters
+from jostle.posterior.ensemble import DEFAULT_MEMORY_BUDGET
+from jostle.posterior.forward import make_plan
 
 # Draws evaluated together when computing function-space quantities after sampling.
 _MEMBER_BLOCK = 256

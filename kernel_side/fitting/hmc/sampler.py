@@ -11,15 +11,21 @@ chain estimated in expanding warm-up windows.
 """
 from __future__ import annotations
 
-
 import torch
 from torch import Tensor
 
-from jostle.common.checks import show_value, check_float, check_has_values, check_int
-
+from jostle.common.checks import check_float, check_has_values, check_int, show_value
 from jostle.fitting.hmc.chains import run_chains
-from jostle.fitting.hmc.transitions import (HMCDraws, HMCState, LogDensity, Settings, evaluate, hmc_transition,
-                                          kinetic_energy, leapfrog)
+from jostle.fitting.hmc.transitions import (
+    HMCDraws,
+    HMCState,
+    LogDensity,
+    Settings,
+    evaluate,
+    hmc_transition,
+    kinetic_energy,
+    leapfrog,
+)
 
 __all__ = ["HMCState", "HMCDraws", "sample_hmc", "evaluate", "leapfrog", "hmc_transition", "kinetic_energy"]
 

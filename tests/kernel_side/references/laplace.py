@@ -7,8 +7,9 @@ posed to it; this generic approximation poses it.
 """
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Any, Callable
+from typing import Any
 
 import torch
 from torch import Tensor

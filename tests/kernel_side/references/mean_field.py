@@ -16,8 +16,9 @@ variance 1 / Lambda_ii of the target's precision Lambda (Bishop 2006, sec. 10.1.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import dataclass, field
-from typing import Any, Callable
+from typing import Any
 
 import torch
 from torch import Tensor
