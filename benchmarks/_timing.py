@@ -7,7 +7,9 @@ from collections.abc import Callable
 import torch
 
 
-def interleaved(candidates: dict[str, Callable[[], object]], repeats: int = 15, warmup: int = 2) -> dict[str, list[float]]:
+def interleaved(
+    candidates: dict[str, Callable[[], object]], repeats: int = 15, warmup: int = 2
+) -> dict[str, list[float]]:
     """Run each candidate once per round, round after round, so load swings hit all alike.
 
     Returns seconds per call for every round, by candidate name.

@@ -45,14 +45,14 @@ MEMBERS = 100
 REPEATS = 15
 TARGETS_MS = {"budget -> path redrawn": 150.0, "samples -> background redrawn": 400.0}
 NOTEBOOK = [
-    '''import jostle
+    f'''import jostle
 from jostle.widgets import Explorer
 
 data = jostle.datasets.moons(n_train=300, n_test=100, noise=0.2, seed=0)
-ens = jostle.fit_deep_ensemble(jostle.mlp(2, 2, hidden=(64, 64)), data, members=%d, epochs=20,
+ens = jostle.fit_deep_ensemble(jostle.mlp(2, 2, hidden=(64, 64)), data, members={MEMBERS}, epochs=20,
                                batch_size=100, lr=0.02, seed=0, progress=False)
 explorer = Explorer(ens, data, grid=64, steps=40, method="pgd", budget=0.1)
-explorer''' % MEMBERS,
+explorer''',
 ]
 
 # Start the clock at the input event itself (capture phase, before the widget's handler).

@@ -46,9 +46,9 @@ def compare(points_list=(1, 100, 2500), members: int = 100) -> list[dict]:
         x = torch.randn(points, 2, generator=torch.Generator().manual_seed(points))
         with torch.no_grad():
             times = interleaved({
-                "jostle": lambda: ens.logits(x),
-                "loop": lambda: torch.stack([net(x) for net in nets]),
-                "vmap": lambda: vmapped(stacked, x),
+                "jostle": lambda x=x: ens.logits(x),
+                "loop": lambda x=x: torch.stack([net(x) for net in nets]),
+                "vmap": lambda x=x: vmapped(stacked, x),
             }, repeats=21 if points < 1000 else 11)
         medians = {name: median(values) for name, values in times.items()}
         rows.append({"points": points, **{f"{k}_ms": v * 1e3 for k, v in medians.items()},
@@ -121,7 +121,8 @@ def main() -> None:
     rows = compare()
     after = matmul_gflops()
     print(f"fp32 1024x1024 matmul: {gflops:.0f} GFLOP/s before, {after:.0f} after")
-    print(f"{'N':>6} {'jostle ms':>10} {'loop ms':>9} {'vmap ms':>9} {'vs loop':>8} {'vs vmap':>8} {'share of matmul rate':>21}")
+    print(f"{'N':>6} {'jostle ms':>10} {'loop ms':>9} {'vmap ms':>9} "
+          f"{'vs loop':>8} {'vs vmap':>8} {'share of matmul rate':>21}")
     for r in rows:
         share = r["flop_rate"] / max(gflops, after)
         print(f"{r['points']:>6} {r['jostle_ms']:>10.3f} {r['loop_ms']:>9.3f} {r['vmap_ms']:>9.3f} "

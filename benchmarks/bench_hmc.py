@@ -66,7 +66,10 @@ def vectorised_gradients() -> None:
 
 def gaussian_efficiency() -> None:
     sd = torch.linspace(0.01, 1.0, 100, dtype=torch.float64)
-    log_density = lambda q: -0.5 * ((q / sd) ** 2).sum(-1)
+
+    def log_density(q):
+        return -0.5 * ((q / sd) ** 2).sum(-1)
+
     start = torch.zeros(4, 100, dtype=torch.float64)
     began = time.perf_counter()
     draws = jostle.sample_hmc(log_density, start, num_samples=1000, warmup=1000, seed=0, diagnostics=False)
@@ -97,7 +100,8 @@ def bnn_fit() -> None:
           f"{d['gradient_evaluations']} chain-gradient evaluations")
     print(f"  test accuracy {accuracy:.3f}, acceptance {statistics.mean(d['accept_rate']):.2f}, "
           f"divergences {d['divergences']}, median test-probability R-hat {d['test_probs']['rhat_median']:.3f}, "
-          f"train log-lik R-hat {d['train_log_likelihood']['rhat']:.3f}, bulk ESS {d['train_log_likelihood']['ess_bulk']:.0f}")
+          f"train log-lik R-hat {d['train_log_likelihood']['rhat']:.3f}, "
+          f"bulk ESS {d['train_log_likelihood']['ess_bulk']:.0f}")
     print(f"  convergence warnings: {len(caught)}")
 
 

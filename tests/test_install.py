@@ -41,7 +41,8 @@ def test_editable_install_maps_the_folders(tmp_path):
 def test_wheel_installs_and_finds_its_files(tmp_path):
     wheel_dir = tmp_path / "wheel"
     built = subprocess.run(
-        [sys.executable, "-m", "pip", "wheel", "--no-deps", "--no-build-isolation", "-q", "-w", str(wheel_dir), str(ROOT)],
+        [sys.executable, "-m", "pip", "wheel", "--no-deps", "--no-build-isolation", "-q",
+         "-w", str(wheel_dir), str(ROOT)],
         capture_output=True, text=True, timeout=300,
     )
     assert built.returncode == 0, built.stderr
@@ -50,8 +51,8 @@ def test_wheel_installs_and_finds_its_files(tmp_path):
     (wheel,) = wheel_dir.glob("jostle-*.whl")
     names = set(zipfile.ZipFile(wheel).namelist())
     demo = ("01_first_tour", "02_fading_gradient", "03_meter_cards", "04_robustness_vs_accuracy", "05_bring_your_own")
-    for expected in ("jostle/__init__.py", "jostle/posterior/ensemble.py", "jostle/attacks/problem.py", "jostle/widgets/__init__.py",
-                     "jostle/js/theme.css", "jostle/data/leak_alarm_hmc.safetensors",
+    for expected in ("jostle/__init__.py", "jostle/posterior/ensemble.py", "jostle/attacks/problem.py",
+                     "jostle/widgets/__init__.py", "jostle/js/theme.css", "jostle/data/leak_alarm_hmc.safetensors",
                      "jostle/data/leak_alarm_map.safetensors", *(f"jostle/demo_notebooks/{n}.ipynb" for n in demo)):
         assert expected in names, f"{expected} missing from the wheel"
     target = tmp_path / "site"

@@ -28,7 +28,9 @@ class LiveBox(w.VBox):
 
     budget = t.Float(0.1, help="attack budget eps (>= 0) in input units").tag(sync=True)
     samples = t.Int(1, help="posterior samples the attacker averages over, 1..len(ens)").tag(sync=True)
-    method = t.Unicode("pgd", help="attack method: a registered attack (fgsm, pgd, cw, spsa, square built in)").tag(sync=True)
+    method = t.Unicode(
+        "pgd", help="attack method: a registered attack (fgsm, pgd, cw, spsa, square built in)"
+    ).tag(sync=True)
     norm = t.Unicode("inf", help="perturbation norm: inf (L-inf) or 2 (L2)").tag(sync=True)
     steps = t.Int(40, help="attack iterations").tag(sync=True)
     objective = t.Unicode("expected_loss", help="expected_loss (mean of member losses), predictive or margin; "
@@ -181,7 +183,8 @@ class LiveBox(w.VBox):
 
     def _started(self, generation: int, state: live.ExplorerState) -> None:
         changed = _changed(self._last_state, state)
-        self._show_status(generation, "busy", f"computing after a change of {changed}" if changed else "computing the view")
+        message = f"computing after a change of {changed}" if changed else "computing the view"
+        self._show_status(generation, "busy", message)
 
     def _deliver(self, outcome: live.Outcome) -> None:
         if outcome.error is not None:

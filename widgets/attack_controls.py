@@ -27,7 +27,9 @@ class AttackControls(anywidget.AnyWidget):
     budget = t.Float(0.1, help="attack budget eps").tag(sync=True)
     budget_max = t.Float(1.0, help="right end of the budget slider").tag(sync=True)
     samples = t.Int(1, help="posterior samples the attacker averages over").tag(sync=True)
-    samples_max = t.Int(1, help="right end of the samples slider (the ensemble's size, or a comparison's largest)").tag(sync=True)
+    samples_max = t.Int(
+        1, help="right end of the samples slider (the ensemble's size, or a comparison's largest)"
+    ).tag(sync=True)
     samples_note = t.Unicode("", help="shown beside the samples slider instead of its value when set, "
                                       "e.g. '1 of 1' (plain text)").tag(sync=True)
     steps = t.Int(40, help="attack iterations").tag(sync=True)

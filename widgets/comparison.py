@@ -57,7 +57,8 @@ class Comparison(w.VBox):
             for name in SHARED:
                 self._links.append(traitlets.link((first, name), (other, name)))
         self._largest, self._spreading = largest, False
-        self.samples_control = w.IntSlider(value=shared, min=1, max=largest, description="attacker samples, all columns",
+        self.samples_control = w.IntSlider(value=shared, min=1, max=largest,
+                                           description="attacker samples, all columns",
                                            style={"description_width": "initial"}, layout=w.Layout(width="420px"))
         self.samples_control.add_class("jostle-tid-comparison-samples")
         self._links.append(traitlets.link((self.samples_control, "value"), (self, "samples")))

@@ -24,14 +24,18 @@ class ExplorerMap(anywidget.AnyWidget):
     _esm = canvas_module("explorer_map.js")
     _css = asset_path("theme.css")
 
-    point = t.List(t.Float(), [0.0, 0.0], help="picked input (x, y) in data units; set by click, drag or arrow keys").tag(sync=True)
+    point = t.List(
+        t.Float(), [0.0, 0.0], help="picked input (x, y) in data units; set by click, drag or arrow keys"
+    ).tag(sync=True)
     layer = t.Unicode("predictive", help="background layer shown: predictive, epistemic or entropy").tag(sync=True)
     layer_labels = t.Dict(LAYER_LABELS, help="readable name of each background layer").tag(sync=True)
     bounds = t.List(t.Float(), [-1.0, 1.0, -1.0, 1.0], help="input box [x_lo, x_hi, y_lo, y_hi] drawn").tag(sync=True)
     classes = t.List(t.Unicode(), [], help="class names, shown as plain text in the legend").tag(sync=True)
     train_points = t.Dict(empty_wire(2), help="training inputs, float32 (n, 2)").tag(sync=True)
     train_labels = t.Dict(empty_wire(None, "uint8"), help="training labels, uint8 (n,)").tag(sync=True)
-    background = t.Dict(empty_wire(None), help="grid predictive probabilities, float32 (n_y, n_x, n_classes)").tag(sync=True)
+    background = t.Dict(
+        empty_wire(None), help="grid predictive probabilities, float32 (n_y, n_x, n_classes)"
+    ).tag(sync=True)
     layer_values = t.Dict(empty_wire(None), help="chosen layer on the grid, float32 (n_y, n_x)").tag(sync=True)
     layer_shown = t.Unicode("predictive", help="layer the background arrays hold").tag(sync=True)
     layer_max = t.Float(1.0, help="top of the layer's colour scale").tag(sync=True)
@@ -40,6 +44,8 @@ class ExplorerMap(anywidget.AnyWidget):
     path = t.Dict(empty_wire(2), help="attack path from the input, float32 (steps + 1, 2)").tag(sync=True)
     ball_budget = t.Float(0.0, help="eps of the drawn eps-ball (the computed view's budget)").tag(sync=True)
     ball_norm = t.Unicode("inf", help="norm of the drawn eps-ball: inf (square) or 2 (disc)").tag(sync=True)
-    ball_centre = t.List(t.Float(), [], help="centre of the drawn eps-ball and path (the computed input)").tag(sync=True)
+    ball_centre = t.List(
+        t.Float(), [], help="centre of the drawn eps-ball and path (the computed input)"
+    ).tag(sync=True)
     success = t.Bool(False, help="whether the drawn attack flips the whole ensemble's label").tag(sync=True)
     view_revision = t.Int(0, help="number of views the kernel has sent").tag(sync=True)

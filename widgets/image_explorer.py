@@ -49,8 +49,9 @@ class ImageExplorer(LiveBox):
         self._value_range = [float(lo.min()), float(hi.max())]
         self._classes = [str(c) for c in data.classes]
         index = check_int("index", index, low=0, high=self._images.shape[0] - 1)
+        budget_max = round(0.5 * (self._value_range[1] - self._value_range[0]), 3)
         self._setup_live(ens, {"budget": budget, "samples": samples, "method": method, "norm": norm, "steps": steps,
-                               "objective": objective, "seed": seed}, budget_max=round(0.5 * (self._value_range[1] - self._value_range[0]), 3))
+                               "objective": objective, "seed": seed}, budget_max=budget_max)
         self._fixed = {"grid": 0, "boundaries": 0, "seed": seed}
         truth = data.y_test[: self._images.shape[0]].tolist()
         self._strip = ImageStrip(images=to_wire(self._images.reshape((-1,) + self._shape)),
@@ -59,8 +60,9 @@ class ImageExplorer(LiveBox):
         self._panels = ImagePanels(value_range=self._value_range)
         predictive, self._draw_predictive = _charts.predictive_chart()
         fade, self._draw_fade = _charts.fade_chart()
-        super().__init__(children=_layout(data, ens, self._strip, self._panels, predictive,
-                                          [self._controls, fade, _charts.caption(_charts.FADE_CAPTION)], self._status), **kwargs)
+        attack = [self._controls, fade, _charts.caption(_charts.FADE_CAPTION)]
+        super().__init__(children=_layout(data, ens, self._strip, self._panels, predictive, attack, self._status),
+                         **kwargs)
         self.add_class("jostle-root")
         for name in ("jostle-image-explorer", "jostle-tag-scope", "jostle-tid-image-explorer"):
             self.add_class(name)

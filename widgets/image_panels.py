@@ -18,6 +18,8 @@ class ImagePanels(anywidget.AnyWidget):
     perturbation = t.Dict(empty_wire(None), help="attacked minus original, float32 (height, width)").tag(sync=True)
     attacked = t.Dict(empty_wire(None), help="the attacked image, float32 (height, width)").tag(sync=True)
     value_range = t.List(t.Float(), [0.0, 1.0], help="pixel values drawn as lightest and darkest").tag(sync=True)
-    max_abs = t.Float(0.0, help="largest |perturbation|; the diverging scale spans +-max(max_abs, budget)").tag(sync=True)
+    max_abs = t.Float(
+        0.0, help="largest |perturbation|; the diverging scale spans +-max(max_abs, budget)"
+    ).tag(sync=True)
     scale = t.Float(0.1, help="half-width of the diverging colour scale").tag(sync=True)
     captions = t.List(t.Unicode(), ["original", "perturbation", "attacked"], help="plain-text captions").tag(sync=True)

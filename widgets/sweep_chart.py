@@ -19,10 +19,16 @@ class SweepChart(anywidget.AnyWidget):
     _css = read_asset("theme.css") + "\n" + read_asset("sweep_chart.css")
 
     accuracy = t.Dict(empty_wire(dtype="float64"), help="x of each mark: test accuracy (binary float64)").tag(sync=True)
-    value = t.Dict(empty_wire(dtype="float64"), help="y of each mark: the robustness measure (binary float64)").tag(sync=True)
-    family = t.Dict(empty_wire(dtype="uint8"), help="0 deterministic, 1 Bayesian, per mark (binary uint8)").tag(sync=True)
+    value = t.Dict(
+        empty_wire(dtype="float64"), help="y of each mark: the robustness measure (binary float64)"
+    ).tag(sync=True)
+    family = t.Dict(
+        empty_wire(dtype="uint8"), help="0 deterministic, 1 Bayesian, per mark (binary uint8)"
+    ).tag(sync=True)
     point_keys = t.List(t.Unicode(), [], help="run key of each mark").tag(sync=True)
-    point_notes = t.List(t.Unicode(), [], help="hover note of each mark: the run's configuration, plain text").tag(sync=True)
+    point_notes = t.List(
+        t.Unicode(), [], help="hover note of each mark: the run's configuration, plain text"
+    ).tag(sync=True)
     method_options = t.List(t.Unicode(), [], help="posterior methods present in the results").tag(sync=True)
     methods = t.List(t.Unicode(), [], help="posterior methods shown").tag(sync=True)
     budget_options = t.List(t.Float(), [], help="attack budgets present in the results").tag(sync=True)

@@ -47,7 +47,9 @@ class SweepExplorer(ipw.HBox):
     methods = t.List(t.Unicode(), help="posterior methods shown (a subset of those in the results)")
     budget = t.Float(0.0, help="attack budget eps whose results are shown")
     attack = t.Unicode("", help="label of the attack whose results are shown")
-    measure = t.Unicode("robustness", help="y axis: 'robustness' (softmax robustness) or 'unflipped' (1 - success rate)")
+    measure = t.Unicode(
+        "robustness", help="y axis: 'robustness' (softmax robustness) or 'unflipped' (1 - success rate)"
+    )
     selected_key = t.Unicode("", help="key of the run opened beside the chart ('' for none)")
 
     def __init__(self, source: Any, **kwargs: Any):
@@ -91,7 +93,9 @@ class SweepExplorer(ipw.HBox):
         options = self._budget_options()
         value = float(proposal["value"])
         if options and not any(abs(value - b) < 1e-12 for b in options):
-            raise t.TraitError(f"budget must be one of {options} (the budgets of attack {self.attack!r}); got {value:g}")
+            raise t.TraitError(
+                f"budget must be one of {options} (the budgets of attack {self.attack!r}); got {value:g}"
+            )
         return value
 
     @t.validate("measure")

@@ -253,7 +253,9 @@ def _onto_sphere(v: Tensor, radius) -> Tensor:
     return v / v.flatten(1).norm(dim=1).clamp_min(1e-30).view((-1,) + (1,) * (v.ndim - 1)) * radius
 
 
-def _window_masks(n: int, height: int, width: int, side: int, generator: torch.Generator) -> tuple[Tensor, Tensor, Tensor]:
+def _window_masks(
+    n: int, height: int, width: int, side: int, generator: torch.Generator
+) -> tuple[Tensor, Tensor, Tensor]:
     """Random h x h windows, one per point: a mask [n, 1, H, W] and their corners [n]."""
     top = torch.randint(0, height - side + 1, (n, 1), generator=generator)
     left = torch.randint(0, width - side + 1, (n, 1), generator=generator)

@@ -212,7 +212,8 @@ class _CWSearch:
 
     def report(self, problem: AttackProblem) -> dict:
         flipped = torch.isfinite(self.flip_distance)
-        return {"flipped": flipped.cpu().numpy(), "beyond_budget": (flipped & (self.flip_distance > problem.eps)).cpu().numpy(),
+        return {"flipped": flipped.cpu().numpy(),
+                "beyond_budget": (flipped & (self.flip_distance > problem.eps)).cpu().numpy(),
                 "closest_flip": self.flip_x.detach().cpu().numpy(),
                 "closest_flip_distance": self.flip_distance.detach().cpu().numpy()}
 

@@ -203,7 +203,8 @@ class MinimalBudget:
     info: dict = field(default_factory=dict)
 
     def to_dict(self) -> dict:
-        out = {k: getattr(self, k).detach().cpu().numpy() for k in ("eps", "lower", "x_adv", "adv_probs", "success", "label")}
+        out = {k: getattr(self, k).detach().cpu().numpy()
+               for k in ("eps", "lower", "x_adv", "adv_probs", "success", "label")}
         out.update(norm=self.norm, info=dict(self.info))
         return out
 

@@ -35,7 +35,8 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                              epilog=attack_help(), formatter_class=argparse.RawDescriptionHelpFormatter)
     run.add_argument("config", help="TOML file with a [sweep] table")
     run.add_argument("--store", required=True, help="SQLite file for the results (created if missing)")
-    run.add_argument("--scheduler", metavar="ADDR", help="Dask scheduler address, e.g. tcp://host:8786 (default: run here)")
+    run.add_argument("--scheduler", metavar="ADDR",
+                     help="Dask scheduler address, e.g. tcp://host:8786 (default: run here)")
     run.add_argument("--connect-timeout", type=float, default=10.0, metavar="SECONDS",
                      help="how long to wait for the scheduler (default 10)")
     run.add_argument("--save-ensembles", action="store_true", help="save each fitted posterior beside the store")
@@ -48,8 +49,10 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     show.add_argument("--failed", action="store_true", help="list failed runs with their errors instead")
     show.set_defaults(handler=_sweep_show, command="sweep show")
 
-    inspect = subparsers.add_parser("inspect", help="print a saved posterior's metadata and diagnostics",
-                                    description="Print the metadata of a .safetensors posterior without loading its tensors.")
+    inspect = subparsers.add_parser(
+        "inspect", help="print a saved posterior's metadata and diagnostics",
+        description="Print the metadata of a .safetensors posterior without loading its tensors.",
+    )
     inspect.add_argument("path", help="a posterior written by ens.save or 'jostle fit'")
     inspect.set_defaults(handler=_inspect)
 

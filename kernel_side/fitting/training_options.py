@@ -98,7 +98,9 @@ OPTION_DOCS = {
     "epochs": "epochs : int\n    Passes over the training points.",
     "batch_size": "batch_size : int\n    Minibatch size.",
     "lr": "lr : float\n    Learning rate (> 0).",
-    "weight_decay": "weight_decay : float\n    L2 penalty coefficient (a Gaussian prior on the weights, in the MAP reading).",
+    "weight_decay": (
+        "weight_decay : float\n    L2 penalty coefficient (a Gaussian prior on the weights, in the MAP reading)."
+    ),
     "optimizer": 'optimizer : {"adam", "sgd"}',
     "momentum": "momentum : float in [0, 1)\n    SGD momentum (ignored by Adam).",
     "validation": (

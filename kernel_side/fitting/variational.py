@@ -163,8 +163,8 @@ def fit_vi(
     Returns
     -------
     Ensemble
-        ``samples`` draws, ``meta["method"]`` from :func:`vi_method_label`; its ``posterior`` attribute is the :class:`VariationalPosterior`
-        (kept by slicing and ``.to``, not by saving).
+        ``samples`` draws, ``meta["method"]`` from :func:`vi_method_label`; its ``posterior`` attribute
+        is the :class:`VariationalPosterior` (kept by slicing and ``.to``, not by saving).
     """
     config = TrainingOptions(
         epochs=epochs, batch_size=batch_size, lr=lr, weight_decay=0.0, optimizer="adam", momentum=0.0,
@@ -207,11 +207,11 @@ def fit_vi(
         variational, member_loss, x_fit, y_fit, generators, config,
         validation_loss=validation_loss if x_val is not None else None, progress=config.progress, desc="vi",
     )
-    hyper = dict(prior_std=prior_std, kl_weight=kl_weight, kl_anneal=kl_anneal, init_std=init_std, train_draws=train_draws,
-                 local_reparameterisation=local, **config.as_meta())
+    hyper = dict(prior_std=prior_std, kl_weight=kl_weight, kl_anneal=kl_anneal, init_std=init_std,
+                 train_draws=train_draws, local_reparameterisation=local, **config.as_meta())
     del hyper["weight_decay"], hyper["optimizer"], hyper["momentum"]
-    meta = fit_meta(vi_method_label(kl_weight), data, module, seed, record.seconds, **hyper, epochs_run=record.epochs_run,
-                    final_loss=record.final_loss, best_epoch=record.best_epoch)
+    meta = fit_meta(vi_method_label(kl_weight), data, module, seed, record.seconds, **hyper,
+                    epochs_run=record.epochs_run, final_loss=record.final_loss, best_epoch=record.best_epoch)
     posterior = VariationalPosterior(template, _means(variational), _rhos(variational), prior_std, meta)
     posterior.meta["kl"] = posterior.kl()
     return posterior.draw(samples, seed=stream_seed(seed, 2) % 2**31)

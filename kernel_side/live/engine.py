@@ -288,7 +288,9 @@ def _bounds(ens: Ensemble, state: ExplorerState, bounds: Any) -> tuple[tuple[flo
         return tuple((point - 1.0).tolist()), tuple((point + 1.0).tolist())
     lo, hi = (torch.as_tensor(b, dtype=torch.float64).flatten().tolist() for b in bounds)
     if len(lo) != len(state.point) or len(hi) != len(state.point) or any(a >= b for a, b in zip(lo, hi)):
-        raise ValueError(f"bounds must be two arrays of {len(state.point)} values with lo < hi; got {show_value(bounds)}")
+        raise ValueError(
+            f"bounds must be two arrays of {len(state.point)} values with lo < hi; got {show_value(bounds)}"
+        )
     return tuple(lo), tuple(hi)
 
 

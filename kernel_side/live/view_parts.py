@@ -103,7 +103,10 @@ class SpreadView:
 
 def spread_part(before: PointView, after: PointView | None, label: int, bins: int = 20) -> SpreadView:
     edges = np.linspace(0.0, 1.0, bins + 1)
-    count = lambda view: np.histogram(np.clip(view.member_probs[:, label], 0.0, 1.0), bins=edges)[0]
+
+    def count(view: PointView) -> np.ndarray:
+        return np.histogram(np.clip(view.member_probs[:, label], 0.0, 1.0), bins=edges)[0]
+
     return SpreadView(edges=edges, before=count(before), after=None if after is None else count(after))
 
 

@@ -97,7 +97,9 @@ class Ensemble:
         for name, value in params.items():
             if value.device.type != "meta" and value.is_floating_point() and not bool(torch.isfinite(value).all()):
                 bad = (~torch.isfinite(value.flatten(1))).any(1).nonzero().flatten().tolist()
-                raise ValueError(f"params[{name!r}] must contain only finite values; got NaN or inf in members {bad[:5]}")
+                raise ValueError(
+                    f"params[{name!r}] must contain only finite values; got NaN or inf in members {bad[:5]}"
+                )
         self.template = template.eval()
         for p in self.template.parameters():
             p.requires_grad_(False)
@@ -230,7 +232,8 @@ class Ensemble:
     @property
     def num_parameters(self) -> int:
         """Parameters per member."""
-        return sum(int(v[0].numel()) for name, v in self.params.items() if name in dict(self.template.named_parameters()))
+        parameter_names = dict(self.template.named_parameters())
+        return sum(int(v[0].numel()) for name, v in self.params.items() if name in parameter_names)
 
     def __repr__(self) -> str:
         method = self.meta.get("method", "unspecified")
@@ -373,7 +376,9 @@ class Ensemble:
         if isinstance(samples, Tensor):
             if samples.dtype == torch.bool:
                 if samples.shape != (size,):
-                    raise ValueError(f"{name} as a boolean mask must have shape ({size},); got shape {tuple(samples.shape)}")
+                    raise ValueError(
+                        f"{name} as a boolean mask must have shape ({size},); got shape {tuple(samples.shape)}"
+                    )
                 samples = samples.nonzero().flatten()
             if samples.is_floating_point() or samples.is_complex():
                 raise ValueError(f"{name} must hold integer member indices; got dtype {samples.dtype}")
@@ -388,7 +393,9 @@ class Ensemble:
             except (TypeError, ValueError, RuntimeError) as err:
                 if str(err).startswith(f"{name} must index"):
                     raise
-                raise ValueError(f"{name} must be None, an int or a sequence of member indices; got {show_value(samples)}") from None
+                raise ValueError(
+                    f"{name} must be None, an int or a sequence of member indices; got {show_value(samples)}"
+                ) from None
         if index.numel() and (int(index.min()) < -size or int(index.max()) >= size):
             raise ValueError(f"{name} must index members in [0, {size}); got {show_value(index)}")
         return index.to(self.device)

@@ -278,5 +278,7 @@ class GeneralPlan(ForwardPlan):
                 f"({err}); wrap a module without data-dependent control flow or in-place buffer updates"
             ) from err
         if out.ndim != 3:
-            raise ValueError(f"the module must return logits of shape (n_points, n_classes); got {tuple(out.shape[1:])}")
+            raise ValueError(
+                f"the module must return logits of shape (n_points, n_classes); got {tuple(out.shape[1:])}"
+            )
         return out

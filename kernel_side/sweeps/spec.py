@@ -209,7 +209,9 @@ def _check_architecture(spec: Any, where: str) -> dict:
     _known_keys(spec, ("depth", "width", "activation"), where)
     activation = spec.get("activation", "tanh")
     if activation not in ACTIVATIONS:
-        raise SweepConfigError(f"{where}.activation: unknown activation {activation!r} (known: {_listing(ACTIVATIONS)})")
+        raise SweepConfigError(
+            f"{where}.activation: unknown activation {activation!r} (known: {_listing(ACTIVATIONS)})"
+        )
     return {
         "depth": _int(spec.get("depth", 2), f"{where}.depth", low=0),
         "width": _int(spec.get("width", 32), f"{where}.width", low=1),
@@ -233,7 +235,8 @@ def _check_method(spec: Any, where: str) -> list[dict]:
         _check_hyperparameter_name(name, key, where)
         if key in spec:
             _check_plain(value, f"{where}.{key}")
-    axes = [[(key, _check_plain(v, f"{where}.grid.{key}[{i}]")) for i, v in enumerate(_list(values, f"{where}.grid.{key}"))]
+    axes = [[(key, _check_plain(v, f"{where}.grid.{key}[{i}]"))
+             for i, v in enumerate(_list(values, f"{where}.grid.{key}"))]
             for key, values in sorted(grid.items())]
     return [{"name": name, **spec, **dict(choice)} for choice in itertools.product(*axes)]
 

@@ -83,7 +83,8 @@ def wait_for_explorer(page, scope: str | None = None, timeout: float = WIDGET_TI
     wait_for(page, "explorer-map", timeout=timeout)
     page.evaluate(SNAPSHOT_JS)
     return wait_until(page, """(scope) => { const s = window.__jostleSnapshot(scope);
-        return s.viewRevision >= 1 && s.status === 'idle' && s.predictive && s.spread && s.path && s.fade ? s : false; }""",
+        return s.viewRevision >= 1 && s.status === 'idle'
+          && s.predictive && s.spread && s.path && s.fade ? s : false; }""",
                       arg=scope, timeout=timeout, what="the explorer's first view (status idle, every chart drawn)")
 
 

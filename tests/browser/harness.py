@@ -313,7 +313,9 @@ def wait_for(scope, testid: str, timeout: float = WIDGET_TIMEOUT_S, state: str =
     try:
         locator.wait_for(state=state, timeout=timeout * 1000)
     except PlaywrightTimeout:
-        raise AssertionError(f"timed out after {timeout:.0f} s waiting for data-testid={testid!r} to be {state}") from None
+        raise AssertionError(
+            f"timed out after {timeout:.0f} s waiting for data-testid={testid!r} to be {state}"
+        ) from None
     return locator
 
 
@@ -367,7 +369,9 @@ _NOTEBOOK_DONE = f"""(name) => {{
   const errors = [];
   for (const cell of cells) {{
     for (const out of cell.model.outputs.toJSON()) {{
-      if (out.output_type === 'error') errors.push(out.ename + ': ' + out.evalue + '\\n' + (out.traceback || []).join('\\n'));
+      if (out.output_type === 'error') {{
+        errors.push(out.ename + ': ' + out.evalue + '\\n' + (out.traceback || []).join('\\n'));
+      }}
     }}
   }}
   if (errors.length) return {{errors}};
@@ -489,9 +493,11 @@ class JostleCommand:
         self.process.send_signal(sig)
         try:
             return self.process.wait(STOP_TIMEOUT_S)
-        except subprocess.TimeoutExpired:
+        except subprocess.TimeoutExpired as err:
             stop_process_group(self.process)
-            raise AssertionError(f"still running {STOP_TIMEOUT_S:.0f} s after signal {sig}:\n{self.log()[-3000:]}")
+            raise AssertionError(
+                f"still running {STOP_TIMEOUT_S:.0f} s after signal {sig}:\n{self.log()[-3000:]}"
+            ) from err
 
     def kernel_processes(self) -> list[list[str]]:
         """Command lines of live kernels whose connection file lies in this run's runtime folder."""

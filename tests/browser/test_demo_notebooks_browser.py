@@ -1,8 +1,9 @@
 """The shipped demo notebooks run in a real JupyterLab page and draw their widgets.
 
 The first three tours cover the Comparison, the Explorer and the ImageExplorer; the tall
-viewport keeps each widget whole in its screenshot. Each notebook is copied unchanged into the lab's root, run with "run all cells", and its
-widgets are waited for until their status lines are idle. The page must report no errors.
+viewport keeps each widget whole in its screenshot. Each notebook is copied unchanged into
+the lab's root, run with "run all cells", and its widgets are waited for until their status
+lines are idle. The page must report no errors.
 Screenshots go to test-artifacts/demo-*.png (the README's pictures are chosen from them).
 """
 from __future__ import annotations

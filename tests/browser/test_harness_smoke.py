@@ -23,7 +23,10 @@ class Tally(anywidget.AnyWidget):
       render({ model, el }) {
         const button = document.createElement("button");
         button.dataset.testid = "smoke-tally";
-        const show = () => { button.textContent = "clicks " + model.get("count"); button.dataset.count = model.get("count"); };
+        const show = () => {
+          button.textContent = "clicks " + model.get("count");
+          button.dataset.count = model.get("count");
+        };
         button.addEventListener("click", () => model.send({ kind: "bump" }));
         model.on("change:count", show);
         show();

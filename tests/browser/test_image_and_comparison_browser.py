@@ -44,7 +44,9 @@ _PANELS_JS = """(scope) => {
     selected: strip ? strip.dataset.selected : null, count: strip ? Number(strip.dataset.count) : 0,
     status: status ? status.dataset.state : '', budget: (get('budget-slider') || {dataset: {}}).dataset.value,
     original: original ? original.toDataURL() : '',
-    predictive: chart ? Array.from(chart.querySelectorAll('.curve path.line')).map(p => p.getAttribute('d')).join('|') : '',
+    predictive: chart
+      ? Array.from(chart.querySelectorAll('.curve path.line')).map(p => p.getAttribute('d')).join('|')
+      : '',
   };
 }"""
 
@@ -91,7 +93,8 @@ def test_image_explorer_choosing_an_image_updates_the_panels(lab_widgets):
     item = page.locator(f'{IMAGES} [data-testid=image-strip-item][data-index="5"]')
     item.focus()
     page.keyboard.press("Enter")
-    _wait_panels(page, "s.selected === '5' && s.revision > arg.revision", after, "the panels for test image 5 (keyboard)")
+    _wait_panels(page, "s.selected === '5' && s.revision > arg.revision", after,
+                 "the panels for test image 5 (keyboard)")
     errors.check()
 
 
@@ -106,7 +109,8 @@ def test_comparison_columns_share_the_budget_and_show_labels_as_text(lab_widgets
     assert page.locator(f"{COMPARISON} b").count() == 0  # the markup stayed text
 
     sliders = page.locator(f"{COMPARISON} [data-testid=budget-slider]")
-    wait_until(page, "(scope) => document.querySelectorAll(scope + ' [data-testid=explorer-map-root][data-view-revision]')"
+    wait_until(page, "(scope) => document.querySelectorAll("
+                     "scope + ' [data-testid=explorer-map-root][data-view-revision]')"
                      ".length === 2 && Array.from(document.querySelectorAll(scope + ' [data-testid=status-line]'))"
                      ".every(s => s.dataset.state === 'idle')", arg=COMPARISON, what="both explorers' first views")
     radii = page.locator(f"{COMPARISON} [data-testid=explorer-map-root]").evaluate_all(
@@ -137,7 +141,9 @@ def test_original_panel_draws_the_chosen_image(lab_widgets):
     luminance = page.locator(f"{IMAGES} [data-testid=image-original]").evaluate("""canvas => {
         const data = canvas.getContext('2d').getImageData(0, 0, canvas.width, canvas.height).data;
         const out = [];
-        for (let k = 0; k < data.length; k += 4) out.push(0.2126 * data[k] + 0.7152 * data[k + 1] + 0.0722 * data[k + 2]);
+        for (let k = 0; k < data.length; k += 4) {
+            out.push(0.2126 * data[k] + 0.7152 * data[k + 1] + 0.0722 * data[k + 2]);
+        }
         return out;
     }""")
     assert len(luminance) == image.size

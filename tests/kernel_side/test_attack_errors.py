@@ -112,7 +112,8 @@ def test_robustness_functions_refuse_bad_arguments(ens, x):
 def test_masking_check_refuses_bad_arguments(ens, x):
     with pytest.raises(ValueError, match=r"eps must be a finite float > 0; got 0"):
         jostle.masking_check(ens, x, eps=0.0)
-    with pytest.raises(ValueError, match=r"gradient_free must be one of 'spsa', 'square' \(the registered gradient-free attacks\); got 'pgd'"):
+    with pytest.raises(ValueError, match=r"gradient_free must be one of 'spsa', 'square' "
+                                         r"\(the registered gradient-free attacks\); got 'pgd'"):
         jostle.masking_check(ens, x, gradient_free="pgd")
     with pytest.raises(ValueError, match=r"budget_scales must hold at least two distinct scales; got \[1.0\]"):
         jostle.masking_check(ens, x, budget_scales=[1.0])

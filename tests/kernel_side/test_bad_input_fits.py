@@ -25,7 +25,8 @@ def _net():
 @FEW
 @given(bad=NOT_FINITE, which=st.sampled_from(["x_train", "x_test"]))
 def test_from_arrays_refuses_non_finite_features(bad, which):
-    arrays = {"x_train": [[0.0, 0.0], [0.0, 1.0]], "y_train": [0, 1], "x_test": [[0.0, 0.0], [0.0, 1.0]], "y_test": [0, 1]}
+    arrays = {"x_train": [[0.0, 0.0], [0.0, 1.0]], "y_train": [0, 1],
+              "x_test": [[0.0, 0.0], [0.0, 1.0]], "y_test": [0, 1]}
     arrays[which][1][0] = bad
     with pytest.raises(ValueError, match=rf"{which} must contain only finite values; got NaN or inf"):
         jostle.datasets.from_arrays(**arrays)
@@ -80,7 +81,8 @@ def test_deep_ensemble_refuses_bad_member_counts(members):
 
 
 @FEW
-@given(p=st.one_of(NOT_FINITE, st.floats(max_value=-1e-9, allow_infinity=False), st.floats(min_value=1.0, max_value=1e9)))
+@given(p=st.one_of(NOT_FINITE, st.floats(max_value=-1e-9, allow_infinity=False),
+                   st.floats(min_value=1.0, max_value=1e9)))
 def test_dropout_refuses_rates_outside_zero_to_one(p):
     with pytest.raises(ValueError, match=re.escape(f"p must be a finite float >= 0 and < 1; got {p:g}")):
         jostle.fit_dropout(_net(), DATA, p=p)
@@ -118,7 +120,8 @@ def test_sample_hmc_refuses_bad_warmup(warmup):
 @FEW
 @given(shape=st.lists(st.integers(0, 3), min_size=1, max_size=3).filter(lambda s: len(s) != 2 or 0 in s))
 def test_sample_hmc_refuses_initial_of_the_wrong_shape(shape):
-    with pytest.raises(ValueError, match=re.escape(f"initial must have shape (C, P) with C, P >= 1; got shape {tuple(shape)}")):
+    message = f"initial must have shape (C, P) with C, P >= 1; got shape {tuple(shape)}"
+    with pytest.raises(ValueError, match=re.escape(message)):
         jostle.sample_hmc(_log_density, torch.zeros(*shape), num_samples=2, warmup=2)
 
 
@@ -142,7 +145,8 @@ def test_from_modules_refuses_bad_members():
     broken = torch.nn.Linear(2, 2)
     with torch.no_grad():
         broken.weight[0, 0] = math.nan
-    with pytest.raises(ValueError, match=r"params\['weight'\] must contain only finite values; got NaN or inf in members \[1\]"):
+    with pytest.raises(ValueError, match=r"params\['weight'\] must contain only finite values; "
+                                         r"got NaN or inf in members \[1\]"):
         jostle.Ensemble.from_modules([torch.nn.Linear(2, 2), broken])
     with pytest.raises(ValueError, match=r"memory_budget must be an integer >= 1; got 0"):
         jostle.Ensemble.from_modules([torch.nn.Linear(2, 2)], memory_budget=0)
@@ -157,7 +161,8 @@ def test_load_refuses_bad_paths(tmp_path):
         jostle.load(3)
     garbage = tmp_path / "garbage.safetensors"
     garbage.write_bytes(b"garbage")
-    with pytest.raises(jostle.FormatError, match=r"is truncated or corrupted: 7 bytes is shorter than a safetensors header"):
+    with pytest.raises(jostle.FormatError,
+                       match=r"is truncated or corrupted: 7 bytes is shorter than a safetensors header"):
         jostle.load(garbage)
 
 

@@ -148,7 +148,8 @@ def test_bad_arguments_fail_in_one_line(tmp_path, capsys, monkeypatch):
     assert bad.returncode == 1
     assert one_line_error(bad).startswith("jostle sweep run: sweep.methods[0]: unknown method 'mcmc'")
     no_action = cli("sweep")
-    assert no_action.returncode == 1 and no_action.stderr.strip().endswith("jostle sweep: choose an action: run or show")
+    assert no_action.returncode == 1
+    assert no_action.stderr.strip().endswith("jostle sweep: choose an action: run or show")
     wrong_kind = cli("sweep", "run", "fit.toml", "--store", "s.sqlite")
     assert one_line_error(wrong_kind).startswith("jostle sweep run: unknown key 'seed' at the top")
     no_out = cli("fit", "fit.toml")

@@ -42,7 +42,8 @@ def test_check_points_casts_to_the_ensemble_and_keeps_or_cuts_the_graph():
     leaf = torch.zeros(2, 2, dtype=ens.dtype, requires_grad=True)
     assert check_points("x", leaf, ens).requires_grad
     assert not check_points("x", leaf, ens, detach=True).requires_grad
-    with pytest.raises(ValueError, match=r"^x_adv must have shape \(n_points, 2\) for this network; got shape \(1, 3\)"):
+    with pytest.raises(ValueError,
+                       match=r"^x_adv must have shape \(n_points, 2\) for this network; got shape \(1, 3\)"):
         check_points("x_adv", torch.zeros(1, 3), ens)
 
 

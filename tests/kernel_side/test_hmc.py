@@ -59,7 +59,10 @@ def euler_energy_error(eps: float, steps: int) -> float:
 
 def test_leapfrog_energy_error_is_second_order_and_euler_first():
     # Neal 2011 sec. 5.2.3.3: leapfrog local error O(eps^3), global O(eps^2). Trajectory length 1.
-    standard_normal = lambda q: -0.5 * (q ** 2).sum(-1)
+
+    def standard_normal(q):
+        return -0.5 * (q ** 2).sum(-1)
+
     errors = {}
     for eps, steps in ((0.1, 10), (0.05, 20)):
         _, _, h0, h1 = run_leapfrog(standard_normal, [0.0], [1.0], eps, steps)
@@ -91,7 +94,10 @@ def test_leapfrog_chains_on_their_own_step_counts_match_single_chain_runs():
 def test_one_backward_gives_each_chains_gradient():
     # Reference: torch.autograd on each chain separately.
     weights = torch.tensor([1.0, -2.0, 0.5], dtype=F64)
-    density = lambda q: torch.sin(q @ weights) - (q ** 4).sum(-1)
+
+    def density(q):
+        return torch.sin(q @ weights) - (q ** 4).sum(-1)
+
     q = torch.randn(5, 3, generator=torch.Generator().manual_seed(0), dtype=F64)
     state = evaluate(density, q)
     for c in range(5):
@@ -319,7 +325,8 @@ def standard(q):
     (dict(divergence_threshold=0), "divergence_threshold must be a finite float > 0; got 0"),
     (dict(seed=True), "seed must be an integer; got True"),
     (dict(log_density="not callable"), "log_density must be a callable mapping"),
-    (dict(log_density=lambda q: q.sum()), r"log_density must return a tensor of shape \(2,\) for input \(2, P\); got \(\)"),
+    (dict(log_density=lambda q: q.sum()),
+     r"log_density must return a tensor of shape \(2,\) for input \(2, P\); got \(\)"),
     (dict(log_density=lambda q: torch.zeros(2)), "log_density must be differentiable in its input with torch.autograd"),
     (dict(log_density=lambda q: standard(q) + torch.log(q[:, 0])),
      r"initial must give a finite log density and gradient for every chain; chains \[0, 1\] do not"),

@@ -390,7 +390,10 @@ def test_any_head_matches_autograd(case, objective):
     kernel = _planned(ens, labels)
     assert kernel.takes_any_head
     for sign in (1.0, -1.0):
-        got = kernel.head_value_and_grad(x, lambda logits, where: sign * _objective(logits, labels[where], objective))
+        def head(logits, where, sign=sign):
+            return sign * _objective(logits, labels[where], objective)
+
+        got = kernel.head_value_and_grad(x, head)
         _assert_match(got, _reference_head(ens, x, labels, objective, sign), torch.float64)
 
 

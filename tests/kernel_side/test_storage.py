@@ -53,7 +53,8 @@ def test_mismatched_architecture_is_refused(tmp_path):
     ens, _ = random_mlp_ensemble(members=2, hidden=(8, 8))
     path = tmp_path / "post.safetensors"
     ens.save(path)
-    with pytest.raises(FormatError, match=r"architecture mismatch: .* has '0.weight' of shape \(8, 2\) per member, the module has \(16, 2\)"):
+    with pytest.raises(FormatError, match=r"architecture mismatch: .* has '0.weight' of shape \(8, 2\) per member, "
+                                          r"the module has \(16, 2\)"):
         jostle.load(path, module=jostle.mlp(2, 3, hidden=(16, 8)))
     with pytest.raises(FormatError, match="architecture mismatch"):
         jostle.load(path, module=Custom())

@@ -84,7 +84,8 @@ def test_toml_gives_the_same_runs_as_python(tmp_path):
 
 
 def test_hyperparameter_grid_expands():
-    sweep = jostle.Sweep(**dict(SMALL, methods=[{"name": "deep_ensemble", "grid": {"members": [2, 3], "epochs": [1, 2]}}]))
+    grid = {"members": [2, 3], "epochs": [1, 2]}
+    sweep = jostle.Sweep(**dict(SMALL, methods=[{"name": "deep_ensemble", "grid": grid}]))
     settings = {(r["method"]["members"], r["method"]["epochs"]) for r in sweep.runs()}
     assert settings == {(2, 1), (2, 2), (3, 1), (3, 2)}
 
@@ -99,18 +100,23 @@ def test_default_attacks_are_fgsm_and_pgd():
     ({"methods": ["map", "vi", "mcmc"]}, r"^sweep\.methods\[2\]: unknown method 'mcmc'"),
     ({"seeds": [0, -1]}, r"^sweep\.seeds\[1\]: must be an integer >= 0; got -1"),
     ({"train_sizes": [1]}, r"^sweep\.train_sizes\[0\]: must be an integer >= 2; got 1"),
-    ({"datasets": [{"name": "moons", "noise": -1.0}]}, r"^sweep\.datasets\[0\]: noise must be a finite float >= 0; got -1"),
+    ({"datasets": [{"name": "moons", "noise": -1.0}]},
+     r"^sweep\.datasets\[0\]: noise must be a finite float >= 0; got -1"),
     ({"datasets": [{"name": "moon"}]}, r"^sweep\.datasets\[0\]\.name: unknown data set 'moon'"),
     ({"datasets": [{"name": "moons", "colour": 1}]}, r"^sweep\.datasets\[0\]: unknown key 'colour'"),
     ({"datasets": [{"name": "moons", "n_train": 5}]}, r"^sweep\.datasets\[0\]\.n_train: set training sizes"),
     ({"architectures": [{"depth": 1, "widht": 3}]}, r"^sweep\.architectures\[0\]: unknown key 'widht'"),
-    ({"architectures": [{"activation": "swish"}]}, r"^sweep\.architectures\[0\]\.activation: unknown activation 'swish'"),
+    ({"architectures": [{"activation": "swish"}]},
+     r"^sweep\.architectures\[0\]\.activation: unknown activation 'swish'"),
     ({"methods": [{"name": "map", "epoch": 3}]}, r"^sweep\.methods\[0\]\.epoch: unknown hyper-parameter of fit_map"),
     ({"methods": [{"name": "map", "seed": 3}]}, r"^sweep\.methods\[0\]\.seed: set by the sweep itself"),
     ({"methods": [{"name": "map", "lr": {"a": 1}}]}, r"^sweep\.methods\[0\]\.lr: must be a number, string"),
-    ({"evaluation": {"budgets": [0.1, -0.2]}}, r"^sweep\.evaluation\.budgets\[1\]: must be a finite number >= 0; got -0.2"),
-    ({"evaluation": {"attacks": [{"method": "fgsm", "norm": "1"}]}}, r"^sweep\.evaluation\.attacks\[0\]\.norm: norm must be one of \['inf', '2'\] for method 'fgsm'; got '1'"),
-    ({"evaluation": {"attacks": ["pgd", "deepfool"]}}, r"^sweep\.evaluation\.attacks\[1\]\.method: unknown attack 'deepfool'"),
+    ({"evaluation": {"budgets": [0.1, -0.2]}},
+     r"^sweep\.evaluation\.budgets\[1\]: must be a finite number >= 0; got -0.2"),
+    ({"evaluation": {"attacks": [{"method": "fgsm", "norm": "1"}]}},
+     r"^sweep\.evaluation\.attacks\[0\]\.norm: norm must be one of \['inf', '2'\] for method 'fgsm'; got '1'"),
+    ({"evaluation": {"attacks": ["pgd", "deepfool"]}},
+     r"^sweep\.evaluation\.attacks\[1\]\.method: unknown attack 'deepfool'"),
     ({"evaluation": {"attacks": ["pgd", "pgd"]}}, r"^sweep\.evaluation\.attacks\[1\]: label 'pgd-inf' repeats"),
     ({"evaluation": {"point": 3}}, r"^sweep\.evaluation: unknown key 'point'"),
     ({"evaluation": {"target": "label"}}, r"^sweep\.evaluation\.target: must be one of 'predicted', 'true'"),

@@ -70,7 +70,8 @@ def test_cluster_gives_the_same_rows(in_process, client, tmp_path):
     assert (summary.finished, summary.failed) == (4, 0)
     local = _sorted(sweep.results())
     remote = _sorted(jostle.Sweep(**TINY).results(store=tmp_path / "runs.sqlite"))
-    assert local[["key", "attack", "budget", "seed", "method"]].equals(remote[["key", "attack", "budget", "seed", "method"]])
+    columns = ["key", "attack", "budget", "seed", "method"]
+    assert local[columns].equals(remote[columns])
     np.testing.assert_allclose(remote[METRICS].to_numpy(float), local[METRICS].to_numpy(float), atol=1e-6, rtol=0)
     with RunStore(tmp_path / "runs.sqlite", readonly=True) as db:
         workers = {r["worker"] for r in db.runs()}

@@ -24,7 +24,8 @@ def _record(config, status="ok", accuracy=0.9, ensemble=None):
              "samples": a["samples"], "budget": b, "success_rate": b, "robustness": 1 - b}
             for a in config["evaluation"]["attacks"] for b in config["evaluation"]["budgets"]]}
     return {"key": run_key(config), "config": config, "status": status, "metrics": metrics,
-            "error": None if status == "ok" else "ValueError: bad", "traceback": None if status == "ok" else "Traceback...",
+            "error": None if status == "ok" else "ValueError: bad",
+            "traceback": None if status == "ok" else "Traceback...",
             "fit_seconds": 0.1, "eval_seconds": 0.2, "started": 1.0, "finished": 2.0, "worker": "here:1",
             "versions": {"jostle": jostle.__version__}, "ensemble_bytes": ensemble}
 

@@ -26,9 +26,11 @@ BAD = {
     "samples": (st.one_of(st.integers(max_value=0), st.integers(min_value=4, max_value=10**30), st.floats(0.5, 2.5),
                           st.text(max_size=3), st.none()),
                 r"samples must be (an integer in \[1, 3\]|an int)"),
-    "steps": (st.one_of(st.integers(max_value=0), st.integers(min_value=10_001), st.floats(0.5, 9.5), st.text(max_size=3)),
+    "steps": (st.one_of(st.integers(max_value=0), st.integers(min_value=10_001), st.floats(0.5, 9.5),
+                        st.text(max_size=3)),
               r"steps must be an integer in \[1, 10000\]"),
-    "method": (st.one_of(st.text(max_size=6).filter(lambda s: s not in jostle.attacks.run.attack_names()), st.integers(), st.none()),
+    "method": (st.one_of(st.text(max_size=6).filter(lambda s: s not in jostle.attacks.run.attack_names()),
+                         st.integers(), st.none()),
                r"method must be one of 'fgsm', 'pgd', 'cw', 'spsa', 'square'"),
     "norm": (st.one_of(st.sampled_from(["1", "l2", "INF", ""]), st.integers()), r"norm must be one of 'inf', '2'"),
     "objective": (st.one_of(st.sampled_from(["hinge", "loss", ""]), st.integers()), r"objective must be one of"),
@@ -36,7 +38,8 @@ BAD = {
     "point": (st.one_of(st.lists(st.floats(-1, 1), min_size=0, max_size=4).filter(lambda p: len(p) != 2),
                         st.tuples(NOT_FINITE, st.floats(-1, 1)).map(list), st.just([1e300, 0.0]),
                         st.integers(), st.text(min_size=1, max_size=3)),
-              r"point must (have 2 coordinates|hold only finite floats|be a sequence of finite floats|fit the ensemble)"),
+              r"point must (have 2 coordinates|hold only finite floats"
+              r"|be a sequence of finite floats|fit the ensemble)"),
 }
 GOOD = {"budget": [0.15, 0.25], "samples": [2, 3], "steps": [3, 4], "method": ["fgsm", "pgd"], "norm": ["2", "inf"],
         "objective": ["predictive", "expected_loss"], "layer": ["epistemic", "predictive"],

@@ -76,9 +76,13 @@ def test_correlations_match_scipy(store):
         if len(x) > 8:  # scipy's t approximation
             np.testing.assert_allclose([got.pearson_p, got.spearman_p], [ref_p.pvalue, ref_s.pvalue], rtol=1e-12)
         else:  # 5 deterministic runs: exact permutation p (scipy.stats.permutation_test enumerates all 5!)
-            exact = [stats.permutation_test((y,), lambda yy: corr(x, yy).statistic, permutation_type="pairings",
-                                            n_resamples=120, vectorized=False).pvalue
-                     for corr in (stats.pearsonr, stats.spearmanr)]
+            exact = [
+                stats.permutation_test(
+                    (y,), lambda yy, corr=corr, x=x: corr(x, yy).statistic,
+                    permutation_type="pairings", n_resamples=120, vectorized=False,
+                ).pvalue
+                for corr in (stats.pearsonr, stats.spearmanr)
+            ]
             np.testing.assert_allclose([got.pearson_p, got.spearman_p], exact, atol=1e-12)  # counts / 120
     assert w.chart.correlations[0][:2] == ["deterministic", "5"] and w.chart.correlations[0][6] == "exact permutation"
     assert w.chart.correlations[1][:2] == ["Bayesian", "10"] and w.chart.correlations[1][6] == "t approximation"
@@ -242,7 +246,8 @@ def test_chart_module_is_self_contained_and_sets_text_only():
         assert sink not in source
     assert len(source.splitlines()) <= 250
     ids = set(re.findall(r'"(sweep-[a-z-]+)"', source))
-    ids |= set(re.findall(r'jostle-tid-(sweep-[a-z-]+)"', (Path(__file__).parents[2] / "widgets" / "sweep_explorer.py").read_text()))
+    widget_source = (Path(__file__).parents[2] / "widgets" / "sweep_explorer.py").read_text()
+    ids |= set(re.findall(r'jostle-tid-(sweep-[a-z-]+)"', widget_source))
     assert {"sweep-chart", "sweep-point", "sweep-tooltip", "sweep-method-filter", "sweep-explorer"} <= ids
     listed = set(re.findall(r"`([a-z][a-z0-9-]+)`", (Path(__file__).parents[2] / "widgets" / "TESTIDS.md").read_text()))
     assert ids <= listed, sorted(ids - listed)

@@ -148,7 +148,9 @@ class _Run:
             accept = move.accept_prob.double().cpu()
             # Pooling the chains' acceptance cuts the noise that otherwise biases the
             # averaged step (the realised acceptance then overshoots the target).
-            averaging = adapt.dual_averaging_update(averaging, accept.mean(0, keepdim=True), self.settings.target_accept)
+            averaging = adapt.dual_averaging_update(
+                averaging, accept.mean(0, keepdim=True), self.settings.target_accept
+            )
             self.warmup_divergences += move.divergent.cpu().long()
             if i >= first and windows:
                 variance = adapt.running_variance_update(variance, self.state.position)
@@ -181,7 +183,10 @@ class _Run:
         samples = self.samples[:, :kept]
         stats = {name: value[:, :kept] for name, value in self.stats.items()}
         rhat, ess, ess_tail = summarise_draws(samples, diagnostics)
-        accept_rate = stats["accept_prob"].mean(1) if kept else torch.full((self.chains,), float("nan"), dtype=torch.float64)
+        if kept:
+            accept_rate = stats["accept_prob"].mean(1)
+        else:
+            accept_rate = torch.full((self.chains,), float("nan"), dtype=torch.float64)
         return HMCDraws(
             samples=samples,
             log_density=stats["log_density"],

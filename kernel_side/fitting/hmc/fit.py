@@ -231,7 +231,9 @@ def _diagnostics(posterior: NetworkPosterior, draws: HMCDraws, data, settings: d
     if divergences:
         problems.append(f"{divergences} of {transitions} transitions diverged after warm-up")
     if draws.interrupted:
-        problems.append(f"sampling was interrupted after {draws.num_draws} of {settings['draws_per_chain']} draws per chain")
+        problems.append(
+            f"sampling was interrupted after {draws.num_draws} of {settings['draws_per_chain']} draws per chain"
+        )
     return {
         "accept_rate": [float(a) for a in draws.accept_rate],
         "target_accept": settings["target_accept"],

@@ -58,7 +58,8 @@ def laplace_approximation(
     max_iterations = check_int("max_iterations", max_iterations, low=1)
     tolerance = check_float("tolerance", tolerance, low=0.0, low_open=True)
     iterations = 0
-    for iterations in range(1, max_iterations + 1):
+    while iterations < max_iterations:
+        iterations += 1
         point = theta.clone().requires_grad_(True)
         gradient = torch.autograd.grad(log_density(point), point)[0]
         precision = -torch.autograd.functional.hessian(log_density, theta)
