@@ -9,9 +9,11 @@ from __future__ import annotations
 import inspect
 from typing import Any
 
-import jostle.attacks.gradient_free  # noqa: F401
-
 # The method modules register their attacks on import (this order is the order offered).
+import jostle.attacks.gradient_methods  # noqa: F401
+
+# isort: split
+import jostle.attacks.gradient_free  # noqa: F401
 from jostle.attacks.problem import AttackResult, build_problem, compute_threads
 from jostle.attacks.registry import (
     AttackSpec,
