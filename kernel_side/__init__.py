@@ -18,6 +18,7 @@ from jostle.attacks.run import AttackSpec, attack, register_attack, unregister_a
 from jostle.attacks.masking import MaskingReport, masking_check
 from jostle.attacks.readouts import (GradientFade, MinimalBudget, expected_gradient, gradient_fade, minimal_budget,
                          softmax_robustness)
+from jostle.certify.certificate import Certificate, CertifiedRadius, certified_radius, certify
 from jostle.fitting.dropout import fit_dropout
 from jostle.fitting.point_estimates import fit_deep_ensemble, fit_map
 from jostle.fitting.variational import VariationalPosterior, fit_vi
@@ -38,6 +39,10 @@ __all__ = [
     "fit_hmc",
     "sample_hmc",
     "AttackResult",
+    "Certificate",
+    "CertifiedRadius",
+    "certified_radius",
+    "certify",
     "attack",
     "AttackSpec",
     "register_attack",
