@@ -6,17 +6,22 @@ about, and nothing else: read :data:`CAUTION`.
 """
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, field
-from typing import Any, Callable
+from typing import Any
 
-import numpy as np
 import torch
 from torch import Tensor
 
 from jostle.certify.linear_bounds import METHODS
 from jostle.certify.network import read_chain
-from jostle.certify.verdicts import (clopper_pearson_lower, member_margins, pair_bounds, predictive_probability_bounds,
-                                     resolve_bounds)
+from jostle.certify.verdicts import (
+    clopper_pearson_lower,
+    member_margins,
+    pair_bounds,
+    predictive_probability_bounds,
+    resolve_bounds,
+)
 from jostle.common.checks import as_float_tensor, check_choice, check_float, check_int, check_points
 from jostle.common.threads import threads_for, torch_threads
 

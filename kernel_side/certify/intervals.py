@@ -43,7 +43,7 @@ class PerturbationSet:
     upper: Tensor
 
     @classmethod
-    def around(cls, x: Tensor, eps: Tensor, norm: str, box: tuple[Tensor, Tensor] | None) -> "PerturbationSet":
+    def around(cls, x: Tensor, eps: Tensor, norm: str, box: tuple[Tensor, Tensor] | None) -> PerturbationSet:
         """The set around ``x`` [N, *shape] with ``eps`` [S or 1, N] and optional data bounds (each [*shape])."""
         centre = x[None]
         reach = eps.reshape(*eps.shape, *([1] * (x.dim() - 1)))

@@ -84,7 +84,8 @@ def _back_substitute(steps: list[Step], index: int, inputs: list[tuple[Tensor, T
     lower_ref = inputs[index][0]
     eye = torch.eye(size, dtype=lower_ref.dtype, device=lower_ref.device)
     rows = torch.cat([eye, -eye]) if both else eye
-    members = max([int(lower_ref.shape[0])] + [int(s.weight.shape[0]) for s in steps[: index + 1] if s.weight is not None])
+    weights = [int(s.weight.shape[0]) for s in steps[: index + 1] if s.weight is not None]
+    members = max([int(lower_ref.shape[0]), *weights])
     lam = rows.reshape(1, 1, rows.shape[0], *shape).expand(members, region.centre.shape[1], -1, *shape)
     offset = torch.zeros(lam.shape[:3], dtype=lam.dtype, device=lam.device)
     for j in range(index, -1, -1):

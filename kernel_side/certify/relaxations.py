@@ -74,7 +74,7 @@ def through_max_pool(step: Step, lam: Tensor, lower: Tensor, upper: Tensor) -> t
 
 
 def _pool_windows(step: Step, lower: Tensor, upper: Tensor) -> tuple[Tensor, Tensor, Tensor]:
-    """Per window: the input index with the largest lower bound, whether the max is exactly it, the largest upper bound."""
+    """Per window: the input with the largest lower bound, whether the max is exactly it, the largest upper bound."""
     pool = step.module
     channels, height, width = step.in_shape
     members, points = lower.shape[:2]
