@@ -13,6 +13,7 @@ from jostle.attacks.readouts import (
                          softmax_robustness,
 )
 from jostle.attacks.run import AttackSpec, attack, register_attack, unregister_attack
+from jostle.certify.certificate import Certificate, CertifiedRadius, certified_radius, certify
 from jostle.datasets import Dataset
 from jostle.files.posterior_file import FormatError
 from jostle.fitting.dropout import fit_dropout
@@ -44,6 +45,10 @@ __all__ = [
     "fit_hmc",
     "sample_hmc",
     "AttackResult",
+    "Certificate",
+    "CertifiedRadius",
+    "certified_radius",
+    "certify",
     "attack",
     "AttackSpec",
     "register_attack",

@@ -58,6 +58,7 @@ def test_readme_python_examples_run_as_written(tmp_path):
     assert "torch.Size([100, 3, 2]) 10 20" in out
     assert "success rate" in out and "median smallest budget" in out
     assert "Attack results are empirical evidence" in out
+    assert "a certificate holds for the sampled members and the stated ball" in out
     assert "4 True" in out
     assert "SweepSummary(total=2, skipped=0, finished=2, failed=0" in out
 

@@ -1,0 +1,1 @@
+"""Certified bounds on an ensemble's predictions: interval bound propagation and CROWN."""
