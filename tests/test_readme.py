@@ -60,6 +60,7 @@ def test_readme_python_examples_run_as_written(tmp_path):
     assert "Attack results are empirical evidence" in out
     assert "a certificate holds for the sampled members and the stated ball" in out
     assert "4 True" in out
+    assert "(1, 28, 28) torch.Size([1258, 784])" in out and "(1, 28, 28) 151 49 1.0" in out
     assert "SweepSummary(total=2, skipped=0, finished=2, failed=0" in out
 
 

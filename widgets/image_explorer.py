@@ -39,11 +39,15 @@ class ImageExplorer(LiveBox):
     def __init__(self, ens: Any, data: Any, index: int = 0, budget: float = 0.1, samples: int | None = None,
                  method: str = "pgd", norm: str = "inf", steps: int = 40, objective: str = "expected_loss",
                  strip: int = 24, seed: int = 0, **kwargs: Any):
-        if not data.image_shape or len(data.image_shape) != 2:
-            raise ValueError(f"data must have a 2-d image_shape for ImageExplorer; got {data.image_shape!r}")
+        shape = tuple(int(s) for s in data.image_shape or ())
+        if len(shape) == 3 and shape[0] == 1:
+            shape = shape[1:]  # one greyscale channel
+        if len(shape) != 2:
+            raise ValueError(f"data must have a greyscale image_shape, (H, W) or (1, H, W), for ImageExplorer; "
+                             f"got {data.image_shape!r}")
         count = check_int("strip", strip, low=1)
         self._images = data.x_test[: min(count, data.x_test.shape[0])].numpy().astype(np.float64)
-        self._shape = tuple(int(s) for s in data.image_shape)
+        self._shape = shape
         lo, hi = (np.asarray(b, dtype=float) for b in data.bounds)
         self._bounds = (lo.tolist(), hi.tolist())
         self._value_range = [float(lo.min()), float(hi.max())]

@@ -30,7 +30,7 @@ def test_digits_facts():
     # of Handwritten Digits, test part).
     data = datasets.digits(seed=0)
     assert data.x_train.shape[0] + data.x_test.shape[0] == 1797
-    assert data.x_train.shape[1] == 64 and data.image_shape == (8, 8)
+    assert data.x_train.shape[1] == 64 and data.image_shape == (1, 8, 8)
     assert data.classes == [str(d) for d in range(10)]
     allx = torch.cat([data.x_train, data.x_test]).numpy()
     assert allx.min() == 0.0 and allx.max() == 1.0  # integers 0..16 over 16 are exact in binary floats

@@ -53,7 +53,8 @@ def test_image_explorer_bad_index_and_budget_reach_the_status(image_explorer):
 
 
 def test_image_explorer_refuses_data_without_images(moons, ens):
-    with pytest.raises(ValueError, match="data must have a 2-d image_shape for ImageExplorer; got None"):
+    refusal = r"data must have a greyscale image_shape, \(H, W\) or \(1, H, W\), for ImageExplorer; got None"
+    with pytest.raises(ValueError, match=refusal):
         ImageExplorer(ens, moons)
 
 

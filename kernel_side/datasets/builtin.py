@@ -6,120 +6,17 @@ the UCI Optical Recognition of Handwritten Digits data (test part: 1,797 8x8 ima
 """
 from __future__ import annotations
 
-from collections.abc import Sequence
-from dataclasses import dataclass, field
-from typing import Any
-
 import numpy as np
 import torch
 from torch import Tensor
 
-from jostle.common.checks import as_float_tensor, as_label_tensor, check_float, check_int
+from jostle.common.checks import check_float, check_int
+from jostle.datasets.dataset import Dataset, from_arrays
 
-__all__ = ["Dataset", "moons", "circles", "spirals", "digits", "leak_alarm", "from_arrays", "TEST_SEED_OFFSET"]
+__all__ = ["moons", "circles", "spirals", "digits", "leak_alarm", "TEST_SEED_OFFSET"]
 
 #: test sets use ``random_state = seed + TEST_SEED_OFFSET``; train sets use ``seed`` itself
 TEST_SEED_OFFSET = 10_000
-
-
-@dataclass(frozen=True)
-class Dataset:
-    """Train and test arrays with the facts downstream code needs.
-
-    Attributes
-    ----------
-    x_train, x_test : Tensor of shape (n_points, n_features), float32
-    y_train, y_test : Tensor of shape (n_points,), int64
-    classes : list of str
-        Class names, indexed by label.
-    name : str
-    bounds : (Tensor, Tensor) of shape (n_features,) each
-        The input box attacks must stay inside (``lo <= x <= hi``).
-    image_shape : tuple of int or None
-        ``(8, 8)`` for digits; None for feature vectors.
-    feature_names : list of str
-    """
-
-    x_train: Tensor
-    y_train: Tensor
-    x_test: Tensor
-    y_test: Tensor
-    classes: list[str]
-    name: str
-    bounds: tuple[Tensor, Tensor]
-    image_shape: tuple[int, ...] | None = None
-    feature_names: list[str] = field(default_factory=list)
-
-    @property
-    def n_features(self) -> int:
-        return int(self.x_train.shape[1])
-
-    @property
-    def n_classes(self) -> int:
-        return len(self.classes)
-
-    def describe(self) -> dict:
-        """A JSON-friendly record (stored in posterior metadata)."""
-        return {
-            "name": self.name,
-            "classes": list(self.classes),
-            "bounds": [self.bounds[0].tolist(), self.bounds[1].tolist()],
-            "image_shape": list(self.image_shape) if self.image_shape else None,
-            "feature_names": list(self.feature_names),
-            "n_train": int(self.x_train.shape[0]),
-            "n_test": int(self.x_test.shape[0]),
-        }
-
-    def __repr__(self) -> str:
-        return (
-            f"Dataset(name={self.name!r}, n_train={self.x_train.shape[0]}, n_test={self.x_test.shape[0]}, "
-            f"n_features={self.n_features}, classes={self.classes!r})"
-        )
-
-
-def from_arrays(
-    x_train: Any,
-    y_train: Any,
-    x_test: Any,
-    y_test: Any,
-    classes: Sequence[str] | None = None,
-    name: str = "custom",
-    bounds: tuple[Any, Any] | None = None,
-    image_shape: tuple[int, ...] | None = None,
-    feature_names: Sequence[str] | None = None,
-) -> Dataset:
-    """Wrap your own arrays as a :class:`Dataset`, checking shapes, values and labels.
-
-    ``bounds`` defaults to the data's range widened by half its span on each side.
-    """
-    xtr = as_float_tensor("x_train", x_train, ndim=2)
-    xte = as_float_tensor("x_test", x_test, ndim=2)
-    if xte.shape[1] != xtr.shape[1]:
-        raise ValueError(f"x_test must have {xtr.shape[1]} features like x_train; got {xte.shape[1]}")
-    if xtr.shape[0] == 0:
-        raise ValueError("x_train must hold at least one point; got 0")
-    ytr_raw = as_label_tensor("y_train", y_train, n_points=xtr.shape[0])
-    n_classes = len(classes) if classes is not None else int(ytr_raw.max()) + 1
-    ytr = as_label_tensor("y_train", ytr_raw, n_points=xtr.shape[0], classes=n_classes)
-    yte = as_label_tensor("y_test", y_test, n_points=xte.shape[0], classes=n_classes)
-    if classes is None:
-        classes = [str(c) for c in range(n_classes)]
-    classes = [str(c) for c in classes]
-    if n_classes < 2:
-        raise ValueError(f"classes must name at least 2 classes; got {classes!r}")
-    lo, hi = _bounds(bounds, torch.cat([xtr, xte]))
-    if bool((xtr < lo).any() or (xtr > hi).any() or (xte < lo).any() or (xte > hi).any()):
-        raise ValueError("bounds must contain every point of x_train and x_test; some lie outside")
-    if image_shape is not None:
-        image_shape = tuple(int(s) for s in image_shape)
-        if int(np.prod(image_shape)) != xtr.shape[1]:
-            raise ValueError(f"image_shape {image_shape} must multiply to n_features = {xtr.shape[1]}")
-    if feature_names is None:
-        feature_names = [f"x{i + 1}" for i in range(xtr.shape[1])]
-    feature_names = [str(f) for f in feature_names]
-    if len(feature_names) != xtr.shape[1]:
-        raise ValueError(f"feature_names must name {xtr.shape[1]} features; got {len(feature_names)}")
-    return Dataset(xtr, ytr, xte, yte, classes, str(name), (lo, hi), image_shape, feature_names)
 
 
 def moons(n_train: int = 300, n_test: int = 300, noise: float = 0.2, seed: int = 0) -> Dataset:
@@ -161,6 +58,7 @@ def digits(test_fraction: float = 0.3, seed: int = 0) -> Dataset:
 
     Source: UCI Optical Recognition of Handwritten Digits (test part), 1,797 images,
     10 classes. Split into train and test, stratified by class, with ``seed``.
+    ``image_shape`` is ``(1, 8, 8)``; features are named ``pixel r,c``.
     """
     from sklearn.datasets import load_digits
     from sklearn.model_selection import train_test_split
@@ -172,10 +70,9 @@ def digits(test_fraction: float = 0.3, seed: int = 0) -> Dataset:
     xtr, xte, ytr, yte = train_test_split(
         x, bunch.target, test_size=test_fraction, random_state=seed, stratify=bunch.target
     )
-    names = [f"pixel {r},{c}" for r in range(8) for c in range(8)]
     return from_arrays(
         xtr, ytr, xte, yte, classes=[str(d) for d in range(10)], name="digits",
-        bounds=(0.0, 1.0), image_shape=(8, 8), feature_names=names,
+        bounds=(0.0, 1.0), image_shape=(1, 8, 8),
     )
 
 
@@ -227,21 +124,6 @@ def _toy_box(*arrays: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     stacked = np.concatenate(arrays)
     lo = np.floor((stacked.min(0) - 1.0) * 2) / 2
     hi = np.ceil((stacked.max(0) + 1.0) * 2) / 2
-    return lo, hi
-
-
-def _bounds(bounds, x: Tensor) -> tuple[Tensor, Tensor]:
-    d = x.shape[1]
-    if bounds is None:
-        span = (x.max(0).values - x.min(0).values).clamp_min(1e-6)
-        return x.min(0).values - span / 2, x.max(0).values + span / 2
-    if not isinstance(bounds, (tuple, list)) or len(bounds) != 2:
-        raise ValueError(f"bounds must be a pair (lo, hi); got {bounds!r}")
-    lo = as_float_tensor("bounds[0]", bounds[0], ndim=(0, 1))
-    hi = as_float_tensor("bounds[1]", bounds[1], ndim=(0, 1))
-    lo, hi = lo.expand(d).clone(), hi.expand(d).clone()
-    if bool((lo >= hi).any()):
-        raise ValueError(f"bounds must have lo < hi in every feature; got lo={lo.tolist()}, hi={hi.tolist()}")
     return lo, hi
 
 
