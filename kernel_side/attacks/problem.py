@@ -40,6 +40,7 @@ from jostle.common.checks import (
     check_points,
     check_representable,
     check_seed,
+    resolve_bounds,
     show_value,
 )
 from jostle.common.threads import threads_for, torch_threads
@@ -51,8 +52,6 @@ NORMS = ("inf", "2")
 JUDGES = ("ensemble", "attacker")
 
 
-# Points may sit this far outside the bounds (float rounding of stored bounds).
-_BOUNDS_SLACK = 1e-6
 
 
 @dataclass
@@ -323,7 +322,7 @@ def build_problem(ens, x: Any, y: Any, *, eps: Any, norm: str, objective: str, s
     n = int(x.shape[0])
     eps_t = _as_eps(eps, n, x, per_point_eps)
     samples = _check_samples(ens, samples, resample)
-    box = _resolve_bounds(ens, bounds, x) if use_bounds else None
+    box = resolve_bounds(ens, bounds, x) if use_bounds else None
     if box is not None:
         # Points within rounding slack of the box are moved onto it, so that clipping an
         # iterate never moves it farther from x than the budget allows.
@@ -396,46 +395,3 @@ def _check_samples(ens, samples: Any, resample: bool) -> Any:
     if index.numel() == 0:
         raise ValueError("samples must select at least one member; got an empty selection")
     return index
-
-
-def _resolve_bounds(ens, bounds: Any, x: Tensor) -> tuple[Tensor, Tensor] | None:
-    source = "bounds"
-    if bounds is None:
-        bounds = ens.meta.get("bounds")
-        source = 'ens.meta["bounds"]'
-        if bounds is None:
-            return None
-    if not isinstance(bounds, (tuple, list)) or len(bounds) != 2:
-        raise ValueError(f"{source} must be a pair (lo, hi); got {show_value(bounds)}")
-    shape = tuple(x.shape[1:])
-    features = int(np.prod(shape))
-    pair = []
-    for side, value in zip(("lo", "hi"), bounds):
-        array = value.detach().cpu() if isinstance(value, Tensor) else value
-        try:
-            tensor = torch.as_tensor(np.asarray(array, dtype=np.float64), dtype=x.dtype)
-        except (TypeError, ValueError):
-            raise ValueError(f"{source} {side} must be numeric; got {show_value(value)}") from None
-        if tensor.numel() not in (1, features):
-            raise ValueError(f"{source} {side} must be a scalar or hold {features} values; got {tensor.numel()}")
-        pair.append(tensor.expand(features).reshape(shape).to(x.device))
-    lo, hi = pair
-    if bool((lo > hi).any()):
-        raise ValueError(f"{source} must have lo <= hi in every feature; got lo={show_value(lo)}, hi={show_value(hi)}")
-    _check_inside(x, lo, hi, source)
-    return lo, hi
-
-
-def _check_inside(x: Tensor, lo: Tensor, hi: Tensor, source: str) -> None:
-    slack = _BOUNDS_SLACK * (1.0 + torch.maximum(lo.abs(), hi.abs()))
-    below = x < lo - slack
-    above = x > hi + slack
-    bad = below | above
-    if bool(bad.any()):
-        flat = bad.flatten(1)
-        point = int(flat.any(1).nonzero()[0])
-        feature = int(flat[point].nonzero()[0])
-        value = float(x.flatten(1)[point, feature])
-        side = f"< lo = {float(lo.flatten()[feature]):g}" if below.flatten(1)[point, feature] else \
-            f"> hi = {float(hi.flatten()[feature]):g}"
-        raise ValueError(f"x must lie inside {source}; point {point}, feature {feature} is {value:g} {side}")

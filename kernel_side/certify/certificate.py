@@ -20,9 +20,8 @@ from jostle.certify.verdicts import (
     member_margins,
     pair_bounds,
     predictive_probability_bounds,
-    resolve_bounds,
 )
-from jostle.common.checks import as_float_tensor, check_choice, check_float, check_int, check_points
+from jostle.common.checks import as_float_tensor, check_choice, check_float, check_int, check_points, resolve_bounds
 from jostle.common.threads import threads_for, torch_threads
 
 __all__ = ["CAUTION", "Certificate", "CertifiedRadius", "certify", "certified_radius"]
@@ -272,7 +271,7 @@ def _checked(ens, x: Any, eps: Any, norm: str, method: str, bounds: Any):
     x = check_points("x", x, ens, min_points=1, detach=True)
     read_chain(ens.template, {name: value[:1] for name, value in ens.params.items()}, tuple(x.shape[1:]))
     eps = _checked_eps(eps, x)
-    return x, eps, norm, method, resolve_bounds(ens, bounds, x)
+    return x, eps, norm, method, resolve_bounds(ens, bounds, x, finite=True)
 
 
 def _checked_eps(eps: Any, x: Tensor) -> Tensor:

@@ -7,8 +7,6 @@ memory budget.
 """
 from __future__ import annotations
 
-from typing import Any
-
 import numpy as np
 import scipy.stats
 import torch
@@ -18,13 +16,10 @@ from torch import Tensor
 from jostle.certify.intervals import PerturbationSet
 from jostle.certify.linear_bounds import pair_lower_bounds
 from jostle.certify.network import read_chain
-from jostle.common.checks import show_value
 
-__all__ = ["pair_bounds", "member_margins", "predictive_probability_bounds", "clopper_pearson_lower",
-           "resolve_bounds"]
+__all__ = ["pair_bounds", "member_margins", "predictive_probability_bounds", "clopper_pearson_lower"]
 
 # Points may sit this far outside the bounds (float rounding of stored bounds), as in the attacks.
-_BOUNDS_SLACK = 1e-6
 # Temporaries alive per bound row and input feature during a back-substitution (lam, its two signs, a product).
 _TEMPORARIES = 4
 
@@ -80,38 +75,6 @@ def clopper_pearson_lower(certified: np.ndarray, members: int, confidence: float
     k = np.asarray(certified, dtype=np.float64)
     low = scipy.stats.beta.ppf(1.0 - confidence, np.maximum(k, 1.0), members - k + 1.0)
     return np.where(k > 0, low, 0.0)
-
-
-def resolve_bounds(ens, bounds: Any, x: Tensor) -> tuple[Tensor, Tensor] | None:
-    """The data bounds (each [*input_shape]) from ``bounds`` or ``ens.meta["bounds"]``, or None; x must lie inside."""
-    source = "bounds"
-    if bounds is None:
-        bounds, source = ens.meta.get("bounds"), 'ens.meta["bounds"]'
-        if bounds is None:
-            return None
-    if not isinstance(bounds, (tuple, list)) or len(bounds) != 2:
-        raise ValueError(f"{source} must be a pair (lo, hi); got {show_value(bounds)}")
-    shape = tuple(x.shape[1:])
-    features = int(np.prod(shape))
-    pair = []
-    for side, value in zip(("lo", "hi"), bounds):
-        array = value.detach().cpu() if isinstance(value, Tensor) else value
-        try:
-            tensor = torch.as_tensor(np.asarray(array, dtype=np.float64), dtype=x.dtype)
-        except (TypeError, ValueError):
-            raise ValueError(f"{source} {side} must be numeric; got {show_value(value)}") from None
-        if tensor.numel() not in (1, features) or not bool(torch.isfinite(tensor).all()):
-            raise ValueError(f"{source} {side} must be finite and a scalar or hold {features} values; "
-                             f"got {show_value(value)}")
-        pair.append(tensor.expand(features).reshape(shape).to(x.device))
-    lo, hi = pair
-    if bool((lo > hi).any()):
-        raise ValueError(f"{source} must have lo <= hi in every feature; got lo={show_value(lo)}, hi={show_value(hi)}")
-    slack = _BOUNDS_SLACK * (1.0 + torch.maximum(lo.abs(), hi.abs()))
-    outside = ((x < lo - slack) | (x > hi + slack)).flatten(1).any(1)
-    if bool(outside.any()):
-        raise ValueError(f"x must lie inside {source}; point {int(outside.nonzero()[0])} does not")
-    return lo, hi
 
 
 def _chunk_sizes(ens, x: Tensor, method: str) -> tuple[int, int]:

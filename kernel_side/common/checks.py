@@ -277,3 +277,59 @@ def _as_tensor(name: str, value: Any) -> Tensor:
         return torch.as_tensor(np.asarray(value))
     except (TypeError, ValueError, RuntimeError):
         raise ValueError(f"{name} must be a numeric array of shape (n_points, ...); got {show_value(value)}") from None
+
+
+#: relative slack for points on the edge of the input box (float rounding of a projection)
+BOUNDS_SLACK = 1e-6
+
+
+def resolve_bounds(ens: Any, bounds: Any, x: torch.Tensor, finite: bool = False):
+    """The input box as a pair of tensors shaped like one point, from ``bounds`` or ``ens.meta["bounds"]``.
+
+    None when neither is set. Each side is a scalar or one value per feature, ``lo <= hi``
+    everywhere (and finite when ``finite``), and every point of ``x`` lies inside (to 1e-6
+    relative slack); each failure names the source, the rule and the value.
+    """
+    source = "bounds"
+    if bounds is None:
+        bounds = ens.meta.get("bounds")
+        source = 'ens.meta["bounds"]'
+        if bounds is None:
+            return None
+    if not isinstance(bounds, (tuple, list)) or len(bounds) != 2:
+        raise ValueError(f"{source} must be a pair (lo, hi); got {show_value(bounds)}")
+    shape = tuple(x.shape[1:])
+    features = int(np.prod(shape))
+    pair = []
+    for side, value in zip(("lo", "hi"), bounds):
+        array = value.detach().cpu() if isinstance(value, torch.Tensor) else value
+        try:
+            tensor = torch.as_tensor(np.asarray(array, dtype=np.float64), dtype=x.dtype)
+        except (TypeError, ValueError):
+            raise ValueError(f"{source} {side} must be numeric; got {show_value(value)}") from None
+        if finite and not bool(torch.isfinite(tensor).all()):
+            raise ValueError(f"{source} {side} must be finite; got {show_value(value)}")
+        if tensor.numel() not in (1, features):
+            raise ValueError(f"{source} {side} must be a scalar or hold {features} values; got {tensor.numel()}")
+        pair.append(tensor.expand(features).reshape(shape).to(x.device))
+    lo, hi = pair
+    if bool((lo > hi).any()):
+        raise ValueError(f"{source} must have lo <= hi in every feature; got lo={show_value(lo)}, hi={show_value(hi)}")
+    check_inside(x, lo, hi, source)
+    return lo, hi
+
+
+def check_inside(x: torch.Tensor, lo: torch.Tensor, hi: torch.Tensor, source: str) -> None:
+    """Refuse points of ``x`` outside [lo, hi] (1e-6 relative slack), naming the first one."""
+    slack = BOUNDS_SLACK * (1.0 + torch.maximum(lo.abs(), hi.abs()))
+    below = x < lo - slack
+    above = x > hi + slack
+    bad = below | above
+    if bool(bad.any()):
+        flat = bad.flatten(1)
+        point = int(flat.any(1).nonzero()[0])
+        feature = int(flat[point].nonzero()[0])
+        value = float(x.flatten(1)[point, feature])
+        side = f"< lo = {float(lo.flatten()[feature]):g}" if below.flatten(1)[point, feature] else \
+            f"> hi = {float(hi.flatten()[feature]):g}"
+        raise ValueError(f"x must lie inside {source}; point {point}, feature {feature} is {value:g} {side}")

@@ -178,7 +178,7 @@ def test_refuses_unsupported_templates_naming_the_layer():
     (dict(norm="1"), "norm must be one of 'inf', '2'; got '1'"),
     (dict(method="lp"), "method must be one of 'ibp', 'crown'; got 'lp'"),
     (dict(confidence=1.0), "confidence must be a finite float > 0 and < 1; got 1"),
-    (dict(bounds=(0.5, 1.0)), "x must lie inside bounds; point 0 does not"),
+    (dict(bounds=(0.5, 1.0)), "x must lie inside bounds; point 0, feature 0 is"),
     (dict(bounds=(1.0, 0.0)), "bounds must have lo <= hi in every feature"),
 ])
 def test_certify_refuses_bad_input(kwargs, message):
