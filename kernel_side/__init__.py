@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 from jostle import datasets, metrics
+from jostle.attacks.gradient_pictures import GradientPictures, gradient_pictures, test_set_gradients
 from jostle.attacks.masking import MaskingReport, masking_check
 from jostle.attacks.problem import AttackResult
 from jostle.attacks.readouts import (
@@ -84,4 +85,7 @@ __all__ = [
     "Sweep",
     "SweepConfigError",
     "SweepSummary",
+    "GradientPictures",
+    "gradient_pictures",
+    "test_set_gradients",
 ]
