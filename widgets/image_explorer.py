@@ -11,13 +11,14 @@ import jostle.live.engine as live
 from jostle.common.checks import check_int
 
 from . import _charts
+from ._gradient_strip_part import GradientStripPart
 from ._live_box import LiveBox
 from ._wire import empty_wire, to_wire
 from .image_panels import ImagePanels
 from .image_strip import ImageStrip
 
 
-class ImageExplorer(LiveBox):
+class ImageExplorer(GradientStripPart, LiveBox):
     """Linked live views of a posterior ensemble on image data (e.g. the 8x8 digits).
 
     Parameters
@@ -65,8 +66,9 @@ class ImageExplorer(LiveBox):
         predictive, self._draw_predictive = _charts.predictive_chart()
         fade, self._draw_fade = _charts.fade_chart()
         attack = [self._controls, fade, _charts.caption(_charts.FADE_CAPTION)]
-        super().__init__(children=_layout(data, ens, self._strip, self._panels, predictive, attack, self._status),
-                         **kwargs)
+        gradients = self._setup_gradient_strip(data.image_shape)
+        children = _layout(data, ens, self._strip, self._panels, predictive, attack, self._status)
+        super().__init__(children=children[:-1] + [gradients, children[-1]], **kwargs)
         self.add_class("jostle-root")
         for name in ("jostle-image-explorer", "jostle-tag-scope", "jostle-tid-image-explorer"):
             self.add_class(name)

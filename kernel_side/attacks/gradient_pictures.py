@@ -105,6 +105,15 @@ class GradientPictures:
         scales = np.abs(images).reshape(k, n, -1).max(axis=2)
         return PictureStrip(images=images, scales=np.where(scales > 0, scales, 1.0), signed=signed, kind=kind)
 
+    def component_summary(self, image_shape: Any) -> np.ndarray:
+        """Mean over the points of each pixel's absolute gradient, as images: shape (K, H, W).
+
+        One channel: :attr:`component_abs_mean` reshaped. Several: the mean over the points
+        of the magnitude over the channels, as in :meth:`pictures`.
+        """
+        strip = self.pictures(image_shape)
+        return np.abs(strip.images).mean(axis=1)
+
 
 def gradient_pictures(ens, x: Any, y: Any = None, samples: Any = PICTURE_SAMPLES, seed: int = 0,
                       backward: str = "auto") -> GradientPictures:

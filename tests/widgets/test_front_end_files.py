@@ -10,8 +10,9 @@ from jostle.widgets import _charts, _palette
 from jostle.widgets._assets import asset_path
 
 ROOT = Path(__file__).resolve().parents[2]
-OWN_PY = ["explorer.py", "image_explorer.py", "comparison.py", "_charts.py"]
-MODULES = ["explorer_map.js", "attack_controls.js", "status_line.js", "image_strip.js", "image_panels.js"]
+OWN_PY = ["explorer.py", "image_explorer.py", "comparison.py", "_charts.py", "_gradient_strip_part.py"]
+MODULES = ["explorer_map.js", "attack_controls.js", "status_line.js", "image_strip.js", "image_panels.js",
+           "gradient_strip.js", "gradient_components.js"]
 
 
 @pytest.mark.parametrize("name", MODULES)
@@ -49,8 +50,9 @@ def test_python_palette_mirrors_theme_css():
     assert re.search(rf"--jostle-input:\s*{_palette.INPUT_COLOUR}\b", css, re.I)
 
 
-def test_css_is_scoped_and_themed():
-    css = asset_path("theme.css").read_text()
+@pytest.mark.parametrize("name", ["theme.css", "gradient_pictures.css"])
+def test_css_is_scoped_and_themed(name):
+    css = asset_path(name).read_text()
     rules = re.sub(r"/\*.*?\*/", "", css, flags=re.S)
     for selector in re.findall(r"(^|\})\s*([^{}]+)\{", rules):
         for part in selector[1].split(","):
