@@ -62,6 +62,10 @@ class GradientComponents(anywidget.AnyWidget):
         """The :class:`jostle.GradientPictures` shown (``indices``: the test inputs used)."""
         return self._out
 
+    def __repr__(self) -> str:
+        points = int(self._out.labels.shape[0])
+        return f"GradientComponents(points={points}, sample_counts={self.sample_counts})"
+
     def _show(self, ens: Ensemble, data: Any) -> None:
         out = self._out
         components = out.components

@@ -118,3 +118,8 @@ def test_components_view_refuses_bad_arguments(digits, digits_ensemble):
         GradientComponents(digits_ensemble, digits, seed=-2)
     with pytest.raises(ValueError, match=r"samples entries must be integers >= 1 or None"):
         GradientComponents(digits_ensemble, digits, samples=(0,))
+
+
+def test_components_view_names_itself(digits, digits_ensemble):
+    view = GradientComponents(digits_ensemble, digits, points=3, samples=(1, None))
+    assert repr(view) == "GradientComponents(points=3, sample_counts=[1, 20])"
