@@ -2,7 +2,7 @@
 from __future__ import annotations
 
 from jostle import datasets, metrics
-from jostle.attacks.gradient_pictures import GradientPictures, gradient_pictures, test_set_gradients
+from jostle.attacks.gradient_pictures import GradientPictures, dataset_gradients, gradient_pictures
 from jostle.attacks.masking import MaskingReport, masking_check
 from jostle.attacks.problem import AttackResult
 from jostle.attacks.readouts import (
@@ -87,5 +87,5 @@ __all__ = [
     "SweepSummary",
     "GradientPictures",
     "gradient_pictures",
-    "test_set_gradients",
+    "dataset_gradients",
 ]

@@ -8,7 +8,7 @@ import numpy as np
 import traitlets as t
 
 from jostle import Ensemble
-from jostle.attacks.gradient_pictures import PICTURE_SAMPLES, test_set_gradients
+from jostle.attacks.gradient_pictures import PICTURE_SAMPLES, dataset_gradients
 from jostle.common.checks import check_int, check_seed
 
 from ._assets import canvas_module, read_asset
@@ -28,7 +28,7 @@ class GradientComponents(anywidget.AnyWidget):
     data : jostle.Dataset
         Its test inputs are used, at their true labels.
     points : int
-        How many test inputs, a seeded subset (:func:`jostle.test_set_gradients`).
+        How many test inputs, a seeded subset (:func:`jostle.dataset_gradients`).
     samples : sequence of int or None
         Sample counts S (None: every member), clipped to the ensemble's size.
     seed : int
@@ -54,7 +54,7 @@ class GradientComponents(anywidget.AnyWidget):
         check_int("points", points, low=1)
         check_seed(seed)
         super().__init__(**kwargs)
-        self._out = test_set_gradients(ens, data, points=points, samples=samples, seed=seed)
+        self._out = dataset_gradients(ens, data, points=points, samples=samples, seed=seed)
         self._show(ens, data)
 
     @property

@@ -4,7 +4,7 @@ An attacker who averages S posterior samples follows the gradient of the mean of
 cross-entropies (Athalye et al. 2018). :func:`gradient_pictures` computes that gradient
 for S = 1, 4, 16, 64 and every member in one pass over the members: the members are put
 in one seeded order and the S-sample gradient averages the first S of them, so each
-larger count adds only the members the smaller one lacks. :func:`test_set_gradients`
+larger count adds only the members the smaller one lacks. :func:`dataset_gradients`
 does the same for a seeded subset of a data set's test inputs.
 """
 from __future__ import annotations
@@ -19,7 +19,7 @@ import torch
 from jostle.attacks.problem import compute_threads
 from jostle.common.checks import as_label_tensor, check_int, check_points, check_seed, show_value
 
-__all__ = ["gradient_pictures", "test_set_gradients", "GradientPictures", "PictureStrip",
+__all__ = ["gradient_pictures", "dataset_gradients", "GradientPictures", "PictureStrip",
            "PICTURE_SAMPLES"]
 
 PICTURE_SAMPLES = (1, 4, 16, 64, None)
@@ -69,7 +69,7 @@ class GradientPictures:
     requested : tuple
         The ``samples`` asked for (None meaning every member).
     indices : ndarray of int or None
-        Positions of the points in the test set (:func:`test_set_gradients`), else None.
+        Positions of the points in the test set (:func:`dataset_gradients`), else None.
     """
 
     sample_counts: np.ndarray
@@ -165,7 +165,7 @@ def gradient_pictures(ens, x: Any, y: Any = None, samples: Any = PICTURE_SAMPLES
         order=order.numpy().astype(np.int64), requested=requested)
 
 
-def test_set_gradients(ens, data: Any, points: int = 32, samples: Any = PICTURE_SAMPLES, seed: int = 0,
+def dataset_gradients(ens, data: Any, points: int = 32, samples: Any = PICTURE_SAMPLES, seed: int = 0,
                        backward: str = "auto") -> GradientPictures:
     """:func:`gradient_pictures` on a seeded subset of ``data``'s test inputs, at their true labels.
 

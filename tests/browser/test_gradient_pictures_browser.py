@@ -111,8 +111,10 @@ def test_components_view_draws_a_row_per_count(lab_page):
     page, errors = lab_page
     view = wait_for(page, "gradient-components")
     rows = wait_until(page, """() => { const r = document.querySelector('[data-testid=gradient-components]');
-        return r && Number(r.dataset.rows) === 4 ? Array.from(r.querySelectorAll('[data-testid=gradient-components-heat]'))
-          .map(c => [c.width, c.height, Number(c.dataset.samples)]) : false; }""", what="the components view")
+        const maps = r ? Array.from(r.querySelectorAll('[data-testid=gradient-components-heat]')) : [];
+        const rows = r ? Number(r.dataset.rows) : 0;
+        return rows === 4 ? maps.map(c => [c.width, c.height, Number(c.dataset.samples)]) : false;
+    }""", what="the components view")
     assert rows == [[784, 16, 1], [784, 16, 4], [784, 16, 16], [784, 16, 20]]
     view.scroll_into_view_if_needed()
     screenshot(view, "gradient-components-lab")

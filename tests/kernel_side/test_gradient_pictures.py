@@ -1,4 +1,4 @@
-"""jostle.gradient_pictures and jostle.test_set_gradients against expected_gradient and autograd.
+"""jostle.gradient_pictures and jostle.dataset_gradients against expected_gradient and autograd.
 
 References: the S-sample expected gradient is the gradient of the mean of S members'
 cross-entropies, equal to the mean of their gradients (Athalye et al. 2018); torch.autograd
@@ -91,17 +91,17 @@ def test_pictures_of_one_channel_are_signed_and_of_three_are_magnitudes():
         out.pictures((5, 5))
 
 
-def test_test_set_gradients_on_digits():
+def test_dataset_gradients_on_digits():
     data = jostle.datasets.digits(seed=0)
     ens, _ = random_mlp_ensemble(members=6, in_features=64, classes=10, hidden=(8,), seed=1)
-    out = jostle.test_set_gradients(ens, data, points=10, samples=(1, 4, None), seed=2)
+    out = jostle.dataset_gradients(ens, data, points=10, samples=(1, 4, None), seed=2)
     assert out.indices.shape == (10,) and np.all(np.diff(out.indices) > 0)
     assert out.labels.tolist() == data.y_test[out.indices].tolist()
     direct = jostle.gradient_pictures(ens, data.x_test[out.indices], data.y_test[out.indices], samples=(1, 4, None),
                                       seed=2)
     np.testing.assert_array_equal(out.gradients, direct.gradients)  # same kernel, same input, one process
     assert out.pictures(data.image_shape).images.shape == (3, 10, 8, 8)
-    everything = jostle.test_set_gradients(ens, data, points=10_000, samples=(1,))
+    everything = jostle.dataset_gradients(ens, data, points=10_000, samples=(1,))
     assert everything.gradients.shape[1] == data.x_test.shape[0]
 
 
@@ -129,6 +129,6 @@ def test_bad_arguments(ensemble, points):
         jostle.gradient_pictures(ensemble, points, [0, 1, 2, 3, 0, 0])
     data = jostle.datasets.digits(seed=0)
     with pytest.raises(ValueError, match=r"points must be an integer >= 1; got 0"):
-        jostle.test_set_gradients(ensemble, data, points=0)
+        jostle.dataset_gradients(ensemble, data, points=0)
     with pytest.raises(ValueError, match=r"data must be a jostle.Dataset; got list"):
-        jostle.test_set_gradients(ensemble, [1, 2], points=3)
+        jostle.dataset_gradients(ensemble, [1, 2], points=3)

@@ -1,6 +1,6 @@
 """The expected-gradient strip of ImageExplorer and the GradientComponents view, driven through traits.
 
-References: jostle.gradient_pictures / jostle.test_set_gradients, themselves checked against
+References: jostle.gradient_pictures / jostle.dataset_gradients, themselves checked against
 expected_gradient, torch.autograd and Gauss-Hermite quadrature in tests/kernel_side.
 """
 from __future__ import annotations
@@ -85,7 +85,7 @@ def test_strip_on_meter_cards_at_scanner_resolution():
 
 def test_components_view_draws_every_component_at_each_count(digits, digits_ensemble):
     view = GradientComponents(digits_ensemble, digits, points=12, samples=(1, 4, None), seed=1)
-    reference = jostle.test_set_gradients(digits_ensemble, digits, points=12, samples=(1, 4, None), seed=1)
+    reference = jostle.dataset_gradients(digits_ensemble, digits, points=12, samples=(1, 4, None), seed=1)
     np.testing.assert_array_equal(view.gradients.indices, reference.indices)
     heat = from_wire(view.heat)
     assert heat.shape == (3, 12, 64) and view.sample_counts == [1, 4, 20]
