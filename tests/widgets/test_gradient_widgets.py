@@ -9,7 +9,10 @@ import numpy as np
 import pytest
 
 import jostle
+import jostle.live.engine as live
 from jostle.widgets import GradientComponents, ImageExplorer
+from jostle.widgets._gradient_strip_part import GradientStripPart
+from jostle.widgets._live_box import LiveBox
 from jostle.widgets._wire import from_wire
 
 from .conftest import tiny_ensemble
@@ -123,3 +126,38 @@ def test_components_view_refuses_bad_arguments(digits, digits_ensemble):
 def test_components_view_names_itself(digits, digits_ensemble):
     view = GradientComponents(digits_ensemble, digits, points=3, samples=(1, None))
     assert repr(view) == "GradientComponents(points=3, sample_counts=[1, 20])"
+
+
+class _ColourHost(GradientStripPart, LiveBox):
+    """The smallest live box carrying the strip, for colour inputs (ImageExplorer takes greyscale only)."""
+
+    def __init__(self, ens, data):
+        self._point, self._bounds = tuple(data.x_test[0].tolist()), None
+        self._setup_live(ens, {"samples": None}, budget_max=0.5)
+        section = self._setup_gradient_strip(data.image_shape)
+        super().__init__(children=[section, self._status])
+        with self.hold_trait_notifications():
+            self.samples, self.steps = len(ens), 2
+        self._start_live()
+
+    def _state(self):
+        return live.ExplorerState(point=self._point, samples=self.samples, steps=self.steps, grid=0, boundaries=0)
+
+    def _apply(self, view):
+        pass
+
+
+def test_strip_of_colour_cards_shows_the_magnitude_over_channels():
+    cards = jostle.datasets.meter_cards(resolution=8, colour=True, seed=0)
+    ens = tiny_ensemble(members=3, in_features=192, classes=10, hidden=(4,))
+    host = _ColourHost(ens, cards)
+    try:
+        assert host.wait(60) and host.status[0] == "idle", host.status
+        strip = host._gradient_strip
+        reference = jostle.gradient_pictures(ens, cards.x_test[:1], samples=(1, 4, 16, 64, None, 3))
+        channels = reference.gradients[:, 0].reshape(2, 3, 8, 8)
+        assert not strip.signed and "magnitude over 3 channels" in strip.note
+        np.testing.assert_allclose(from_wire(strip.images), np.sqrt((channels ** 2).sum(axis=1)), rtol=FLOAT32, atol=0)
+        np.testing.assert_array_equal(strip.norms, reference.linf[:, 0])  # L-inf over every component
+    finally:
+        host.close()
