@@ -140,7 +140,8 @@ function drawCurves(model, svg, tip, stops) {
     const xs = c.samples.filter((_, i) => keep[i]), ys = c.values.filter((_, i) => keep[i]);
     if (!xs.length) continue;
     const path = node("path", { d: line(xs, ys), class: "jostle-limit-curve", "data-testid": "limit-curve",
-      stroke: colourAt(stops, logPosition(scale, ys[ys.length - 1])) }, svg, SVG);
+      // the ramp's pale end would vanish on the surface as a thin line, so lines start at 30% of it
+      stroke: colourAt(stops, 0.3 + 0.7 * logPosition(scale, ys[ys.length - 1])) }, svg, SVG);
     const note = notes[c.row * widths.length + c.column];
     path.addEventListener("mouseenter", () => showTip(tip, note, px(xs[0]), py(ys[0])));
     path.addEventListener("mouseleave", () => { tip.hidden = true; });

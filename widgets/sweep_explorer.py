@@ -87,7 +87,8 @@ class SweepExplorer(ipw.HBox):
         frame = self._frame
         self._method_options = sorted(frame["method"].unique().tolist()) if len(frame) else []
         self._attack_options = list(dict.fromkeys(frame["attack"].tolist())) if len(frame) else []
-        charts = ipw.VBox(children=(self.chart, self.limit_chart), layout=ipw.Layout(flex="1 1 auto"))
+        charts = ipw.VBox(children=(self.chart, self.limit_chart),
+                          layout=ipw.Layout(flex="0 1 auto", min_width="380px"))
         super().__init__(children=(charts, self.detail), **kwargs)
         self.add_class("jostle-sweep-explorer")
         self.add_class("jostle-tid-sweep-explorer")
