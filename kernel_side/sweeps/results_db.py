@@ -195,7 +195,9 @@ class RunStore:
         ``family`` (``deterministic`` or ``Bayesian``), ``seed``), its headline metrics
         (``accuracy``, ``nll``, ``ece``) and ``attack``, ``budget``, ``success_rate``,
         ``robustness``. Wide form: one row per run, with columns
-        ``success_rate[<attack>@<budget>]`` and ``robustness[<attack>@<budget>]``.
+        ``success_rate[<attack>@<budget>]`` and ``robustness[<attack>@<budget>]``, and the
+        gradient read-out (:meth:`gradients`) as ``grad_<statistic>[<which>@<S>]``, e.g.
+        ``grad_l2_median[expected@16]``, its S = members row also as ``[expected@all]``.
         Failed runs appear (with NaN metrics and their ``error``) only when asked for.
         """
         import pandas as pd

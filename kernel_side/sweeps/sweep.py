@@ -179,7 +179,7 @@ class Sweep:
 
         Long form by default: one row per run x attack x budget; ``wide=True`` gives one
         row per run with a ``success_rate[...]`` and ``robustness[...]`` column per
-        attack and budget.
+        attack and budget and a ``grad_<statistic>[<which>@<S>]`` column per read-out value.
         """
         with RunStore(self._store_path(store), readonly=True) as db:
             return db.results(self.keys(), wide=wide, include_failed=include_failed)
