@@ -90,9 +90,10 @@ def _reflected_pairs(members: int, anchor: torch.Tensor, seed: int):
     return jostle.Ensemble(ens.template, params, dict(ens.meta))
 
 
-@pytest.mark.parametrize("seed", [0, 1, 2])
-def test_symmetric_posterior_reads_zero(seed):
-    anchor = torch.randn(3, generator=torch.Generator().manual_seed(100 + seed))
+@pytest.mark.parametrize(("seed", "centred"), [(0, True), (1, False), (2, False)])
+def test_symmetric_posterior_reads_zero(seed, centred):
+    # centred: the anchor is the origin, so the pair differs only in the sign of W1 (b1 unchanged)
+    anchor = torch.zeros(3) if centred else torch.randn(3, generator=torch.Generator().manual_seed(100 + seed))
     ens = _reflected_pairs(members=8, anchor=anchor, seed=seed)
     rows = gradient_readout(ens, anchor[None], torch.tensor([seed % 3]), [1, 16], seed=seed)
     got = {(r["samples"], r["which"]): r for r in rows}
