@@ -185,8 +185,8 @@ def test_readout_in_the_store_matches_a_refit(small_store):
     from jostle.sweeps.one_run import evaluate, fit_run
 
     config = next(c for c in SMALL.runs() if c["method"]["name"] == "deep_ensemble")
-    ens, data = fit_run(config)
-    with jostle.common.threads.torch_threads(1):  # as each sweep run does
+    with jostle.common.threads.torch_threads(1):  # as each sweep run does: fit and score on one thread
+        ens, data = fit_run(config)
         again = evaluate(ens, data, config["evaluation"], seed=config["seed"])["gradients"]
     frame = SMALL.gradients(small_store)
     stored = frame[frame["key"] == jostle.sweeps.spec.run_key(config)]
