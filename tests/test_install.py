@@ -50,10 +50,12 @@ def test_wheel_installs_and_finds_its_files(tmp_path):
     assert "Warning" not in built.stderr, built.stderr
     (wheel,) = wheel_dir.glob("jostle-*.whl")
     names = set(zipfile.ZipFile(wheel).namelist())
-    demo = ("01_first_tour", "02_fading_gradient", "03_meter_cards", "04_robustness_vs_accuracy", "05_bring_your_own")
+    demo = ("01_first_tour", "02_fading_gradient", "03_meter_cards", "04_robustness_vs_accuracy", "05_bring_your_own",
+            "06_limit_study")
     for expected in ("jostle/__init__.py", "jostle/posterior/ensemble.py", "jostle/attacks/problem.py",
                      "jostle/widgets/__init__.py", "jostle/js/theme.css", "jostle/data/leak_alarm_hmc.safetensors",
-                     "jostle/data/leak_alarm_map.safetensors", *(f"jostle/demo_notebooks/{n}.ipynb" for n in demo)):
+                     "jostle/data/leak_alarm_map.safetensors", "jostle/demo_notebooks/data/leak_alarm_limit.sqlite",
+                     "jostle/js/limit_chart.js", *(f"jostle/demo_notebooks/{n}.ipynb" for n in demo)):
         assert expected in names, f"{expected} missing from the wheel"
     target = tmp_path / "site"
     installed = subprocess.run(

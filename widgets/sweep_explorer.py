@@ -10,7 +10,13 @@ import traitlets as t
 
 from jostle.common.ticks import share_axis
 from jostle.posterior.loading import load
-from jostle.sweeps.chart_data import ROBUSTNESS_MEASURES, sweep_view
+from jostle.sweeps.chart_data import (
+    GRADIENT_MEASURES,
+    ROBUSTNESS_MEASURES,
+    limit_grid,
+    limit_sample_options,
+    sweep_view,
+)
 from jostle.sweeps.one_run import load_run_data
 from jostle.sweeps.results_db import RunStore
 from jostle.sweeps.sweep import Sweep
@@ -18,9 +24,14 @@ from jostle.sweeps.sweep import Sweep
 from ._wire import to_wire
 from .explorer import Explorer
 from .image_explorer import ImageExplorer
+from .limit_chart import LimitChart
 from .sweep_chart import SweepChart
 
 _SYNCED = ("methods", "budget", "attack", "measure", "selected_key")
+# the limit chart's choices, as (its trait, the explorer's trait)
+_LIMIT_SYNCED = (("method", "limit_method"), ("samples", "limit_samples"), ("measure", "limit_measure"),
+                 ("view", "limit_view"), ("selected_key", "selected_key"))
+_LIMIT_VIEWS = ("grid", "curves")
 
 
 class SweepExplorer(ipw.HBox):
@@ -33,6 +44,12 @@ class SweepExplorer(ipw.HBox):
     Hovering a mark shows the run's configuration; clicking a run whose ensemble was
     saved (``save_ensembles=True``) opens it in an Explorer, or an ImageExplorer for
     image data, beside the chart.
+
+    Beside it, the limit chart (``limit_chart``) shows the expected-gradient read-out for
+    one method and one sample count: a cell per network width (across) and training size
+    (up), coloured on a log scale by the chosen statistic, empty where no run was made; or
+    that statistic against S per cell with the 1/sqrt(S) reference. Clicking a cell opens
+    its run like a mark.
 
     Parameters
     ----------
@@ -51,10 +68,17 @@ class SweepExplorer(ipw.HBox):
         "robustness", help="y axis: 'robustness' (softmax robustness) or 'unflipped' (1 - success rate)"
     )
     selected_key = t.Unicode("", help="key of the run opened beside the chart ('' for none)")
+    limit_method = t.Unicode("", help="posterior method shown in the limit chart")
+    limit_samples = t.Unicode("all", help="sample count S of the limit chart: a stored count as text, or 'all'")
+    limit_measure = t.Unicode("l2_median", help="read-out statistic colouring the limit chart's cells")
+    limit_view = t.Unicode("grid", help="limit chart view: 'grid' (width by training size) or 'curves' (against S)")
 
     def __init__(self, source: Any, **kwargs: Any):
-        self._store_path, self._configs, self._frame = _read_source(source)
+        self._store_path, self._configs, self._frame, self._gradients = _read_source(source)
         self.chart = SweepChart(layout=ipw.Layout(flex="1 1 auto"))
+        self.limit_chart = LimitChart(layout=ipw.Layout(flex="1 1 auto"))
+        self._limit_methods = sorted(self._gradients["method"].unique().tolist()) if len(self._gradients) else []
+        self._sample_options = limit_sample_options(list(self._configs.values()))
         self.detail = ipw.VBox(layout=ipw.Layout(flex="1 1 auto", min_width="0"))
         self.detail.add_class("jostle-tid-sweep-detail")
         self.detail_title = ipw.Label("Click a run to open it here.")
@@ -63,7 +87,9 @@ class SweepExplorer(ipw.HBox):
         frame = self._frame
         self._method_options = sorted(frame["method"].unique().tolist()) if len(frame) else []
         self._attack_options = list(dict.fromkeys(frame["attack"].tolist())) if len(frame) else []
-        super().__init__(children=(self.chart, self.detail), **kwargs)
+        charts = ipw.VBox(children=(self.chart, self.limit_chart),
+                          layout=ipw.Layout(flex="0 1 auto", min_width="380px"))
+        super().__init__(children=(charts, self.detail), **kwargs)
         self.add_class("jostle-sweep-explorer")
         self.add_class("jostle-tid-sweep-explorer")
         with self.hold_trait_notifications():
@@ -71,8 +97,12 @@ class SweepExplorer(ipw.HBox):
             self.attack = self._attack_options[0] if self._attack_options else ""
             options = self._budget_options()
             self.budget = options[0] if options else 0.0
+            preferred = [m for m in ("hmc", *self._limit_methods) if m in self._limit_methods]
+            self.limit_method = preferred[0] if preferred else ""
         self.chart.observe(self._from_view, names=list(_SYNCED))
+        self.limit_chart.observe(self._from_limit_view, names=[name for name, _ in _LIMIT_SYNCED])
         self._refresh()
+        self._refresh_limit()
 
     # ------------------------------------------------------------------ validation
     @t.validate("methods")
@@ -111,7 +141,49 @@ class SweepExplorer(ipw.HBox):
             raise t.TraitError(f"selected_key must be '' or the key of a stored run; got {key!r}")
         return key
 
+    @t.validate("limit_method")
+    def _check_limit_method(self, proposal):
+        value = proposal["value"]
+        if self._limit_methods and value not in self._limit_methods:
+            raise t.TraitError(f"limit_method must be one of {self._limit_methods} (methods with a gradient "
+                               f"read-out); got {value!r}")
+        return value
+
+    @t.validate("limit_samples")
+    def _check_limit_samples(self, proposal):
+        value = str(proposal["value"])
+        if self._sample_options and value not in self._sample_options:
+            raise t.TraitError(f"limit_samples must be one of {self._sample_options}; got {value!r}")
+        return value
+
+    @t.validate("limit_measure")
+    def _check_limit_measure(self, proposal):
+        if proposal["value"] not in GRADIENT_MEASURES:
+            raise t.TraitError(f"limit_measure must be one of {list(GRADIENT_MEASURES)}; got {proposal['value']!r}")
+        return proposal["value"]
+
+    @t.validate("limit_view")
+    def _check_limit_view(self, proposal):
+        if proposal["value"] not in _LIMIT_VIEWS:
+            raise t.TraitError(f"limit_view must be one of {list(_LIMIT_VIEWS)}; got {proposal['value']!r}")
+        return proposal["value"]
+
     # ------------------------------------------------------------------ reactions
+    @t.observe("limit_method", "limit_samples", "limit_measure", "limit_view")
+    def _on_limit_filter(self, change) -> None:
+        self._refresh_limit()
+
+    def _from_limit_view(self, change) -> None:
+        own = dict(_LIMIT_SYNCED)[change["name"]]
+        if change["new"] == getattr(self, own):
+            return
+        try:
+            setattr(self, own, change["new"])
+        except t.TraitError as err:
+            with self.limit_chart.hold_sync():
+                setattr(self.limit_chart, change["name"], getattr(self, own))
+                self.limit_chart.note = str(err)
+
     @t.observe("methods", "budget", "attack", "measure")
     def _on_filter(self, change) -> None:
         if change["name"] == "attack":
@@ -123,6 +195,7 @@ class SweepExplorer(ipw.HBox):
     @t.observe("selected_key")
     def _on_select(self, change) -> None:
         self.chart.selected_key = change["new"]
+        self.limit_chart.selected_key = change["new"]
         self._open(change["new"])
 
     def _from_view(self, change) -> None:
@@ -161,6 +234,35 @@ class SweepExplorer(ipw.HBox):
             self.chart.correlations = [_correlation_row(c) for c in self.correlations]
             self.chart.note = _summary(points)
             self.chart.revision += 1
+
+    def _refresh_limit(self) -> None:
+        chart = self.limit_chart
+        grid = None
+        if self.limit_method:
+            frame = self._frame
+            saved = set(frame.loc[frame["ensemble_path"].notna(), "key"]) if len(frame) else set()
+            grid = limit_grid(self._gradients, self.limit_method, self.limit_samples, self.limit_measure, saved)
+        self.limit = grid
+        with chart.hold_sync():
+            for name, own in _LIMIT_SYNCED:
+                setattr(chart, name, getattr(self, own))
+            chart.method_options = self._limit_methods
+            chart.sample_options = self._sample_options
+            chart.measure_options = list(GRADIENT_MEASURES)
+            chart.measure_titles = list(GRADIENT_MEASURES.values())
+            chart.widths = grid.widths if grid else []
+            chart.train_sizes = grid.train_sizes if grid else []
+            chart.values = to_wire(grid.values if grid else [], "float64")
+            chart.saved = to_wire(grid.saved if grid else [], "uint8")
+            chart.cell_keys = [k for row in grid.keys for k in row] if grid else []
+            chart.cell_notes = [n for row in grid.notes for n in row] if grid else []
+            chart.curves = [{"row": int(i), "column": int(j), "samples": counts.tolist(), "values": values.tolist()}
+                            for i, j, counts, values in grid.curves] if grid else []
+            chart.reference = ({"samples": grid.reference_counts.tolist(), "values": grid.reference.tolist()}
+                               if grid else {"samples": [], "values": []})
+            chart.colour_scale = _colour_scale(grid)
+            chart.note = _limit_summary(grid, self.limit_method, self.limit_samples)
+            chart.revision += 1
 
     def _budget_options(self) -> list[float]:
         frame = self._frame
@@ -221,7 +323,8 @@ def _read_source(source: Any):
     with RunStore(source, readonly=True) as db:
         configs = {r["key"]: r["config"] for r in db.runs(keys)}
         frame = db.results(keys)
-    return Path(source), configs, frame
+        gradients = db.gradients(keys)
+    return Path(source), configs, frame, gradients
 
 
 def _explorer_for(path: Path, config: dict, settings: dict):
@@ -244,6 +347,23 @@ def _explorer_for(path: Path, config: dict, settings: dict):
 def _axis(values) -> dict:
     axis = share_axis(values)
     return {"low": axis.low, "high": axis.high, "ticks": axis.ticks.tolist(), "labels": axis.labels}
+
+
+def _colour_scale(grid) -> dict:
+    if grid is None:
+        return {"low": 1.0, "high": 10.0, "ticks": [], "labels": []}
+    ticks = [float(v) for v in grid.legend]
+    return {"low": grid.colour_low, "high": grid.colour_high, "ticks": ticks, "labels": [f"{v:.3g}" for v in ticks]}
+
+
+def _limit_summary(grid, method: str, samples: str) -> str:
+    if grid is None:
+        return "No run in this store has a gradient read-out (stores written before it have none)."
+    filled = int((grid.runs > 0).sum())
+    cells = grid.values.size
+    saved = int(grid.saved.sum())
+    return (f"{method}, S = {samples}: {filled} of {cells} cells have a run; {saved} with a saved ensemble "
+            "(click to open). Dashed line in the S view: 1/sqrt(S).")
 
 
 def _correlation_row(c) -> list[str]:

@@ -112,7 +112,9 @@ def _sweep_run(args: argparse.Namespace) -> int:
 
 
 def _sweep_show(args: argparse.Namespace) -> int:
-    frame = _read_results(args.store)
+    frame, gradients, notes = _read_results(args.store)
+    for note in notes:
+        print(f"note: {note}")
     if args.failed:
         failed = frame[frame["status"] == "failed"].drop_duplicates("key")
         for _, row in failed.iterrows():
@@ -123,6 +125,9 @@ def _sweep_show(args: argparse.Namespace) -> int:
     failed = int(frame.loc[frame["status"] == "failed", "key"].nunique())
     if len(runs):
         print(_readable_table(runs))
+        if len(gradients):
+            print()
+            print(_gradient_table(gradients))
     else:
         print("(no finished runs)")
     print(f"{runs['key'].nunique()} finished run(s), {failed} failed" + (" (see --failed)" if failed else ""))
@@ -150,6 +155,26 @@ def _readable_table(runs) -> str:
                            "display.max_colwidth", 40):
         text = table.to_string(index=False, float_format=lambda v: f"{v:.3f}")
     return (f"all runs: {header}\n" if header else "") + "cells: attack success rate / softmax robustness\n" + text
+
+
+def _gradient_table(gradients) -> str:
+    """One line per run; a cell per sample count S holds 'expected / single member' median L2 norms."""
+    import pandas as pd
+
+    medians = gradients.pivot_table(index=["key", "samples"], columns="which", values="l2_median",
+                                    aggfunc="first", sort=False).reset_index()
+    medians["cell"] = [f"{e:.3g} / {m:.3g}" for e, m in zip(medians["expected"], medians["member"])]
+    runs = gradients.drop_duplicates("key").set_index("key")
+    table = medians.pivot_table(index="key", columns="samples", values="cell", aggfunc="first", sort=False)
+    table.columns = [f"S={s}" for s in table.columns]
+    table = table.reindex(sorted(table.columns, key=lambda c: int(c[2:])), axis=1)
+    info = runs.loc[table.index, ["method", "width", "n_train", "seed", "members"]]
+    table = pd.concat([info, table.fillna("-")], axis=1).reset_index()
+    table["key"] = table["key"].str[:12]
+    with pd.option_context("display.width", 250, "display.max_columns", None, "display.max_rows", None):
+        text = table.to_string(index=False)
+    return ("expected loss gradient at the evaluation points, median L2 norm over points: "
+            "expected over S members / single member (S = members is all of them)\n" + text)
 
 
 _SHOW_SHARED = ["dataset", "n_train", "depth", "width", "activation"]
@@ -187,13 +212,23 @@ def _inspect(args: argparse.Namespace) -> int:
 
 
 def _read_results(path: str):
-    from jostle.sweeps.results_db import RunStore, StoreError
+    """Long results, the gradient read-out and the store's notices (an old schema) as text."""
+    import warnings
+
+    from jostle.sweeps.results_db import OldStoreWarning, RunStore, StoreError
 
     try:
-        with RunStore(path, readonly=True) as db:
-            return db.results(include_failed=True)
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", OldStoreWarning)
+            with RunStore(path, readonly=True) as db:
+                frame, gradients = db.results(include_failed=True), db.gradients()
     except (FileNotFoundError, StoreError) as err:
         raise CommandError(str(err)) from None
+    notes = [str(w.message) for w in caught if issubclass(w.category, OldStoreWarning)]
+    for w in caught:
+        if not issubclass(w.category, OldStoreWarning):
+            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+    return frame, gradients, notes
 
 
 def _connect(address: str, timeout: float):

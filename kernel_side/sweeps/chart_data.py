@@ -14,10 +14,13 @@ from typing import Any
 import numpy as np
 
 from jostle.common.checks import check_choice
+from jostle.common.ticks import log_ticks
 from jostle.fitting.variational import DEFAULT_KL_WEIGHT, vi_method_label
+from jostle.sweeps.spec import DEFAULT_GRADIENT_SAMPLES
 
 __all__ = ["SweepPoints", "Correlation", "ROBUSTNESS_MEASURES", "sweep_view", "sweep_points",
-           "family_correlations", "exact_permutation_p", "FAMILIES"]
+           "family_correlations", "exact_permutation_p", "FAMILIES", "LimitGrid", "limit_grid",
+           "limit_sample_options", "GRADIENT_MEASURES"]
 
 #: y-axis choices: column or derived quantity -> axis title (higher is more robust for both)
 ROBUSTNESS_MEASURES = {
@@ -162,6 +165,127 @@ def exact_permutation_p(x: Any, y: Any) -> float:
     less = float(np.mean(null <= observed + tie))
     greater = float(np.mean(null >= observed - tie))
     return min(1.0, 2.0 * min(less, greater))
+
+
+#: limit-chart colour choices: read-out statistic -> its readable name
+GRADIENT_MEASURES = {
+    "l2_median": "median L2 norm of the expected gradient",
+    "linf_median": "median L-inf norm of the expected gradient",
+    "abs_mean": "mean absolute component of the expected gradient",
+}
+
+
+@dataclass(frozen=True)
+class LimitGrid:
+    """The limit chart for one method and sample count: widths across, training sizes up.
+
+    ``values``, ``keys``, ``saved`` and ``runs`` have shape (n_sizes, n_widths), row 0 the
+    smallest training size; a cell without a run holds NaN, ``""``, False and 0. A cell's
+    value is the median over its runs (seeds, other settings); its key is one of those runs,
+    a saved one where there is one. ``curves`` holds per filled cell ``(size index, width
+    index, sample counts, values)``: the statistic against S for the norm-against-S view,
+    with ``reference`` the Monte Carlo rate c / sqrt(S) at those counts, c the median of the
+    cells' values at S = 1 (standard Monte Carlo theory). ``colour_low``/``colour_high`` bound
+    the log colour scale; ``legend`` holds its ticks.
+    """
+
+    widths: list[int]
+    train_sizes: list[int]
+    values: np.ndarray
+    keys: list[list[str]]
+    saved: np.ndarray
+    runs: np.ndarray
+    notes: list[list[str]]
+    curves: list[tuple]
+    reference_counts: np.ndarray
+    reference: np.ndarray
+    colour_low: float
+    colour_high: float
+    legend: np.ndarray
+
+
+def limit_sample_options(configs: Any) -> list[str]:
+    """The sample counts the chart offers for these run configurations: the counts their
+    evaluations ask for (``gradient_samples``, ascending, as text), then ``"all"``."""
+    counts = {s for config in configs
+              for s in config.get("evaluation", {}).get("gradient_samples", DEFAULT_GRADIENT_SAMPLES) if s != "all"}
+    return [str(s) for s in sorted(counts)] + ["all"] if configs else []
+
+
+def limit_grid(gradients: Any, method: str, samples: str | int, statistic: str = "l2_median",
+               saved_keys: Any = ()) -> LimitGrid:
+    """The cells of the limit chart from the long read-out of :meth:`RunStore.gradients`.
+
+    Parameters
+    ----------
+    gradients : pandas.DataFrame
+        The read-out (``which == "expected"`` rows are used).
+    method : str
+        Posterior method whose runs fill the grid.
+    samples : int, str or "all"
+        Sample count S; each run shows its read-out at min(S, its size) (the read-out is
+        clipped the same way), "all" at its size.
+    statistic : {"l2_median", "linf_median", "abs_mean"}
+    saved_keys : collection of str
+        Runs whose ensemble was saved (their cells open an explorer when clicked).
+    """
+    check_choice("statistic", statistic, tuple(GRADIENT_MEASURES))
+    rows = gradients[(gradients["which"] == "expected") & (gradients["method"] == method)]
+    widths = sorted({int(w) for w in rows["width"]})
+    sizes = sorted({int(n) for n in rows["n_train"]})
+    shape = (len(sizes), len(widths))
+    values, runs = np.full(shape, np.nan), np.zeros(shape, dtype=np.int64)
+    keys = [["" for _ in widths] for _ in sizes]
+    notes = [["" for _ in widths] for _ in sizes]
+    saved, saved_keys = np.zeros(shape, dtype=bool), set(saved_keys)
+    curves = []
+    for (size, width), cell in rows.groupby(["n_train", "width"], sort=True):
+        i, j = sizes.index(int(size)), widths.index(int(width))
+        chosen = cell[cell["samples"] == _clipped(cell["members"], samples)]
+        if chosen.empty:
+            continue
+        values[i, j], runs[i, j] = float(np.median(chosen[statistic])), chosen["key"].nunique()
+        ordered = sorted(chosen["key"].unique(), key=lambda k: (k not in saved_keys, k))
+        keys[i][j], saved[i, j] = ordered[0], ordered[0] in saved_keys
+        by_count = cell.groupby("samples")[statistic].median()
+        curves.append((i, j, by_count.index.to_numpy(dtype=np.int64), by_count.to_numpy(dtype=float)))
+        notes[i][j] = _cell_note(method, int(size), int(width), chosen, statistic, values[i, j], saved[i, j])
+    return LimitGrid(widths, sizes, values, keys, saved, runs, notes, curves, *_reference(curves),
+                     *_log_scale(values))
+
+
+def _clipped(members: Any, samples: str | int):
+    members = members.to_numpy(dtype=np.int64)
+    return members if str(samples) == "all" else np.minimum(int(samples), members)
+
+
+def _reference(curves: list) -> tuple[np.ndarray, np.ndarray]:
+    if not curves:
+        return np.zeros(0), np.zeros(0)
+    counts = np.unique(np.concatenate([c[2] for c in curves])).astype(np.int64)
+    at_one = [c[3][0] for c in curves if c[2][0] == 1 and c[3][0] > 0]
+    scale = float(np.median(at_one)) if at_one else float("nan")
+    return counts, scale / np.sqrt(counts)
+
+
+def _log_scale(values: np.ndarray) -> tuple[float, float, np.ndarray]:
+    finite = values[np.isfinite(values) & (values > 0)]
+    if not finite.size:
+        return 1.0, 10.0, log_ticks(1.0, 10.0)
+    low, high = float(finite.min()), float(finite.max())
+    if high <= low * (1 + 1e-9):  # one value: a decade around it
+        low, high = low / np.sqrt(10.0), high * np.sqrt(10.0)
+    return low, high, log_ticks(low, high)
+
+
+def _cell_note(method: str, size: int, width: int, chosen: Any, statistic: str, value: float, saved: bool) -> str:
+    count = chosen["samples"].iloc[0]
+    members = chosen["members"].iloc[0]
+    parts = [f"{method}, width {width}, n_train {size}",
+             f"{GRADIENT_MEASURES[statistic]}: {value:.3g}",
+             f"S = {count} of {members} members" + (f", median of {len(chosen)} runs" if len(chosen) > 1 else ""),
+             "click to open it" if saved else "ensemble not saved"]
+    return "\n".join(parts)
 
 
 def _describe(row: Any) -> str:

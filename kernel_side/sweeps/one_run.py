@@ -32,9 +32,13 @@ from jostle.attacks.run import attack as run_attack
 from jostle.common.threads import torch_threads
 from jostle.files.posterior_file import jsonable
 from jostle.posterior.architectures import mlp
-from jostle.sweeps.spec import fit_function, run_key
+from jostle.sweeps.spec import fit_function, gradient_sample_counts, run_key
 
-__all__ = ["execute_run", "fit_run", "evaluate", "load_run_data", "build_network", "software_versions"]
+__all__ = ["execute_run", "fit_run", "evaluate", "gradient_readout", "load_run_data", "build_network",
+           "software_versions", "GRADIENT_STATISTICS"]
+
+#: the read-out's statistics per sample count, in the store's column order
+GRADIENT_STATISTICS = ("l2_mean", "l2_median", "l2_p90", "linf_mean", "linf_median", "linf_p90", "abs_mean")
 
 
 def execute_run(config: dict, save_ensemble: bool = False) -> dict:
@@ -130,7 +134,55 @@ def evaluate(ens, data, evaluation: dict, seed: int = 0) -> dict:
                 "robustness": float(softmax_robustness(ens, x, adv.x_adv)),
             })
     scores["attacks"] = rows
+    tick = time.perf_counter()
+    scores["gradients"] = gradient_readout(ens, x, y, gradient_sample_counts(evaluation, len(ens)), seed=seed)
+    scores["gradient_seconds"] = time.perf_counter() - tick
     return scores
+
+
+def gradient_readout(ens, x, y, sample_counts, seed: int = 0) -> list[dict]:
+    """Size of the expected loss gradient in the input at several sample counts, and of single members'.
+
+    The members are taken in one seeded random order (``torch.randperm`` with a generator
+    seeded by ``seed``, the order of :meth:`jostle.Ensemble.subset`); the S-sample expected
+    gradient averages the first S of them. Every member's gradient comes from one pass of the
+    gradient engine (:meth:`jostle.Ensemble.member_input_grads`) and each S is a prefix mean,
+    since the gradient of the mean loss is the mean of the members' gradients.
+
+    Parameters
+    ----------
+    ens : Ensemble
+    x : Tensor of shape (n_points, *input_shape)
+    y : Tensor of shape (n_points,), optional
+        Labels; None takes the whole ensemble's predicted labels (the same for every S).
+    sample_counts : sequence of int
+        Each between 1 and ``len(ens)``.
+    seed : int
+
+    Returns
+    -------
+    list of dict
+        Per sample count two rows, ``which = "expected"`` (statistics over points of the
+        S-sample expected gradient) and ``which = "member"`` (over the S members and the
+        points, each member's own gradient), with ``samples`` and :data:`GRADIENT_STATISTICS`:
+        L2 and L-inf norms' mean, median and 90th percentile, and the mean absolute component.
+    """
+    counts = sorted({int(s) for s in sample_counts})
+    if not counts or counts[0] < 1 or counts[-1] > len(ens):
+        raise ValueError(f"sample_counts must lie in [1, {len(ens)}]; got {list(sample_counts)}")
+    order = torch.randperm(len(ens), generator=torch.Generator().manual_seed(int(seed)))[:counts[-1]]
+    grads = ens.member_input_grads(x, y, members=order).flatten(2).double()  # [S_max, N, D]
+    prefix = grads.cumsum(0)
+    member_l2, member_linf = grads.norm(dim=-1), grads.abs().amax(dim=-1)  # [S_max, N]
+    member_abs = grads.abs().mean(dim=(1, 2))  # [S_max]
+    rows = []
+    for count in counts:
+        mean = prefix[count - 1] / count
+        rows.append(_gradient_row(count, "expected", mean.norm(dim=-1), mean.abs().amax(dim=-1),
+                                  float(mean.abs().mean())))
+        rows.append(_gradient_row(count, "member", member_l2[:count], member_linf[:count],
+                                  float(member_abs[:count].mean())))
+    return rows
 
 
 def load_run_data(spec: dict):
@@ -156,6 +208,17 @@ def build_network(spec: dict, data) -> torch.nn.Module:
 def software_versions() -> dict:
     return {"jostle": importlib.metadata.version("jostle"), "torch": torch.__version__, "numpy": np.__version__,
             "python": platform.python_version()}
+
+
+def _gradient_row(count: int, which: str, l2, linf, abs_mean: float) -> dict:
+    l2, linf = l2.flatten().numpy(), linf.flatten().numpy()
+    row: dict = {"samples": count, "which": which}
+    for name, values in (("l2", l2), ("linf", linf)):
+        row[f"{name}_mean"] = float(values.mean())
+        row[f"{name}_median"] = float(np.median(values))
+        row[f"{name}_p90"] = float(np.percentile(values, 90))  # linear interpolation, numpy's default
+    row["abs_mean"] = abs_mean
+    return row
 
 
 def _ensemble_bytes(ens, config: dict) -> bytes:

@@ -3,7 +3,10 @@
 Table ``runs`` holds one row per run key (UNIQUE): its full configuration as canonical
 JSON, status (``ok`` / ``failed``), headline metrics, timings, software versions, the
 error and traceback of a failed run, and the path of its saved ensemble if any. Table
-``attack_results`` holds one row per run x attack x budget. A failed run that is retried
+``attack_results`` holds one row per run x attack x budget, and ``gradient_results`` one row
+per run x sample count x ``which`` (``expected`` or ``member``) of the expected-gradient
+read-out (schema version 2; a version-1 store opens with a warning that its runs carry no
+gradient read-out, and one from a newer jostle is refused). A failed run that is retried
 replaces its row, so a key never appears twice. Only the process that runs the sweep
 writes; readers may look at the file at any time (WAL lets them).
 """
@@ -12,16 +15,20 @@ from __future__ import annotations
 import json
 import sqlite3
 import time
+import warnings
 from collections.abc import Iterable
 from pathlib import Path
 from typing import Any
 
 from jostle.files.posterior_file import atomic_write
+from jostle.sweeps.one_run import GRADIENT_STATISTICS
 from jostle.sweeps.spec import DETERMINISTIC_METHODS, canonical_json
 
-__all__ = ["RunStore", "StoreError", "SCHEMA_VERSION"]
+__all__ = ["RunStore", "StoreError", "SCHEMA_VERSION", "OldStoreWarning"]
 
-SCHEMA_VERSION = 1
+#: 2 added ``gradient_results`` (the expected-gradient read-out); 1 stores open without it
+SCHEMA_VERSION = 2
+_READABLE_VERSIONS = (1, 2)
 
 _SCHEMA = """
 CREATE TABLE IF NOT EXISTS store_info (name TEXT PRIMARY KEY, value TEXT NOT NULL);
@@ -45,6 +52,13 @@ CREATE TABLE IF NOT EXISTS attack_results (
     success_rate REAL, robustness REAL,
     PRIMARY KEY (key, attack, budget)
 );
+CREATE TABLE IF NOT EXISTS gradient_results (
+    key TEXT NOT NULL REFERENCES runs (key) ON DELETE CASCADE,
+    samples INTEGER NOT NULL, which TEXT NOT NULL CHECK (which IN ('expected', 'member')),
+    l2_mean REAL, l2_median REAL, l2_p90 REAL, linf_mean REAL, linf_median REAL, linf_p90 REAL,
+    abs_mean REAL,
+    PRIMARY KEY (key, samples, which)
+);
 """
 _CONFIG_COLUMNS = ["dataset", "n_train", "depth", "width", "activation", "method", "method_settings",
                    "family", "seed"]
@@ -54,6 +68,10 @@ _RUN_COLUMNS = ["key", "sweep", "status", "accuracy", "nll", "ece", "members", "
 
 class StoreError(RuntimeError):
     """A file that is not a jostle run store, or one written by a newer schema."""
+
+
+class OldStoreWarning(UserWarning):
+    """A store written before the gradient read-out (schema 1): its runs carry none."""
 
 
 class RunStore:
@@ -83,19 +101,22 @@ class RunStore:
         try:
             self._db = sqlite3.connect(target, uri=readonly, isolation_level=None, timeout=30)
             self._db.execute("PRAGMA foreign_keys = ON")
+            self.schema_version = self._read_version(str(path))
             if not readonly:
                 self._db.execute("PRAGMA journal_mode = WAL")
                 self._db.execute("PRAGMA synchronous = FULL")
                 with _Transaction(self._db):  # readers see all of the schema or none of it
                     for statement in filter(str.strip, _SCHEMA.split(";")):
                         self._db.execute(statement)
-                    self._db.execute("INSERT OR IGNORE INTO store_info VALUES ('schema_version', ?)",
+                    # a version-1 store gains the new (empty) tables and becomes version 2
+                    self._db.execute("INSERT OR REPLACE INTO store_info VALUES ('schema_version', ?)",
                                      (str(SCHEMA_VERSION),))
-            version = self._db.execute("SELECT value FROM store_info WHERE name = 'schema_version'").fetchone()
         except sqlite3.DatabaseError as err:
             raise StoreError(f"{path} is not a jostle run store: {err}") from None
-        if version is None or int(version[0]) != SCHEMA_VERSION:
-            raise StoreError(f"{path} has store schema {version and version[0]!r}; this jostle reads {SCHEMA_VERSION}")
+        if self.schema_version == 1:
+            warnings.warn(f"{path} is a version-1 jostle run store, written before the gradient read-out: "
+                          "its runs carry no gradient read-out (gradients() has no rows for them); "
+                          "run the sweep into a new store to record it", OldStoreWarning, stacklevel=2)
 
     # ------------------------------------------------------------------ writing
     def record(self, result: dict, sweep: str | None = None) -> None:
@@ -126,6 +147,7 @@ class RunStore:
         updates = ", ".join(f"{c} = excluded.{c}" for c in row if c != "key")
         with self._transaction():
             self._db.execute("DELETE FROM attack_results WHERE key = ?", (result["key"],))
+            self._db.execute("DELETE FROM gradient_results WHERE key = ?", (result["key"],))
             self._db.execute(
                 f"INSERT INTO runs ({columns}) VALUES ({marks}) ON CONFLICT (key) DO UPDATE SET "
                 f"{updates}, attempts = runs.attempts + 1", row,
@@ -135,6 +157,11 @@ class RunStore:
                     "INSERT INTO attack_results VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
                     (result["key"], a["attack"], a["budget"], a["method"], a["norm"], a["steps"],
                      a["samples"], a["success_rate"], a["robustness"]),
+                )
+            for g in (metrics or {}).get("gradients", []):
+                self._db.execute(
+                    f"INSERT INTO gradient_results VALUES (?, ?, ?{', ?' * len(GRADIENT_STATISTICS)})",
+                    (result["key"], g["samples"], g["which"], *(g[c] for c in GRADIENT_STATISTICS)),
                 )
 
     # ------------------------------------------------------------------ reading
@@ -168,7 +195,9 @@ class RunStore:
         ``family`` (``deterministic`` or ``Bayesian``), ``seed``), its headline metrics
         (``accuracy``, ``nll``, ``ece``) and ``attack``, ``budget``, ``success_rate``,
         ``robustness``. Wide form: one row per run, with columns
-        ``success_rate[<attack>@<budget>]`` and ``robustness[<attack>@<budget>]``.
+        ``success_rate[<attack>@<budget>]`` and ``robustness[<attack>@<budget>]``, and the
+        gradient read-out (:meth:`gradients`) as ``grad_<statistic>[<which>@<S>]``, e.g.
+        ``grad_l2_median[expected@16]``, its S = members row also as ``[expected@all]``.
         Failed runs appear (with NaN metrics and their ``error``) only when asked for.
         """
         import pandas as pd
@@ -185,7 +214,34 @@ class RunStore:
         frame = pd.DataFrame(long_rows, columns=columns)
         if not wide:
             return frame
-        return _widen(frame, base)
+        return _widen_gradients(_widen(frame, base), self.gradients(keys))
+
+    def gradients(self, keys: Iterable[str] | None = None):
+        """The expected-gradient read-out as a long pandas DataFrame.
+
+        One row per run x sample count x ``which``: the run's configuration columns (as in
+        :meth:`results`), ``key``, ``members`` (the posterior's size), ``samples`` (S; the
+        row with ``samples == members`` is "all"), ``which`` (``"expected"``: the S-sample
+        expected loss gradient, statistics over points; ``"member"``: single members'
+        gradients, over the S members and the points) and ``l2_mean``, ``l2_median``,
+        ``l2_p90``, ``linf_mean``, ``linf_median``, ``linf_p90``, ``abs_mean``. Only
+        successful runs; a version-1 store gives no rows.
+        """
+        import pandas as pd
+
+        columns = _CONFIG_COLUMNS + ["key", "members", "samples", "which", *GRADIENT_STATISTICS]
+        if not self._has_table("gradient_results"):
+            return pd.DataFrame([], columns=columns)
+        runs = {r["key"]: r for r in self.runs(keys) if r["status"] == "ok"}
+        cursor = self._db.execute("SELECT * FROM gradient_results ORDER BY which, samples")
+        names = [d[0] for d in cursor.description]
+        stored: dict[str, list[dict]] = {}
+        for values in cursor.fetchall():
+            row = dict(zip(names, values))
+            stored.setdefault(row["key"], []).append(row)
+        rows = [{**_config_columns(run["config"]), **row, "members": run["members"]}
+                for key, run in runs.items() for row in stored.get(key, [])]  # runs in recorded order
+        return pd.DataFrame(rows, columns=columns)
 
     def ensemble_file(self, key: str) -> Path | None:
         """Absolute path of the run's saved ensemble, or None when it was not saved."""
@@ -208,6 +264,29 @@ class RunStore:
         self.close()
 
     # ------------------------------------------------------------------ helpers
+    def _read_version(self, path: str) -> int | None:
+        """The file's schema version (None for a new, empty file); refuses unknown versions."""
+        tables = {r[0] for r in self._db.execute("SELECT name FROM sqlite_master WHERE type = 'table'")}
+        if not tables:
+            return None
+        version = None
+        if "store_info" in tables:
+            version = self._db.execute("SELECT value FROM store_info WHERE name = 'schema_version'").fetchone()
+        if version is None or not str(version[0]).isdigit():
+            raise StoreError(f"{path} is not a jostle run store: it has no schema version")
+        version = int(version[0])
+        if version > SCHEMA_VERSION:
+            raise StoreError(f"{path} has store schema {version}, written by a newer jostle; this jostle "
+                             f"reads schemas {_READABLE_VERSIONS[0]} to {SCHEMA_VERSION}: upgrade jostle to read it")
+        if version not in _READABLE_VERSIONS:
+            raise StoreError(f"{path} has store schema {version}; this jostle reads schemas "
+                             f"{_READABLE_VERSIONS[0]} to {SCHEMA_VERSION}")
+        return version
+
+    def _has_table(self, name: str) -> bool:
+        return self._db.execute("SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = ?",
+                                (name,)).fetchone() is not None
+
     def _transaction(self):
         return _Transaction(self._db)
 
@@ -246,6 +325,21 @@ def _config_columns(config: dict) -> dict:
         "family": "deterministic" if method in DETERMINISTIC_METHODS else "Bayesian",
         "seed": config["seed"],
     }
+
+
+def _widen_gradients(runs, gradients):
+    """Columns ``grad_<statistic>[<which>@<S>]`` per run; the row with S = members also as ``@all``."""
+    if gradients.empty:
+        return runs
+    import pandas as pd
+
+    last = gradients[gradients["samples"] == gradients["members"]].assign(label="all")
+    both = pd.concat([gradients.assign(label=gradients["samples"].map(str)), last], ignore_index=True)
+    both = both.assign(label=both["which"] + "@" + both["label"])
+    pivot = both.pivot_table(index="key", columns="label", values=list(GRADIENT_STATISTICS),
+                             aggfunc="first", sort=False)
+    pivot.columns = [f"grad_{stat}[{label}]" for stat, label in pivot.columns]
+    return runs.merge(pivot, left_on="key", right_index=True, how="left")
 
 
 def _widen(frame, base: list[dict]):

@@ -33,6 +33,7 @@ from jostle.posterior.architectures import ACTIVATIONS
 __all__ = [
     "SweepConfigError", "FITS", "METHODS", "DETERMINISTIC_METHODS", "DATASETS",
     "run_key", "canonical_json", "read_toml", "check_sweep", "expand", "check_run", "fit_function",
+    "DEFAULT_GRADIENT_SAMPLES", "gradient_sample_counts",
 ]
 
 #: posterior method -> the jostle function that fits it
@@ -57,6 +58,9 @@ _ATTACK_STEPS = 20
 _RESERVED_FIT_ARGS = ("net", "model", "module", "data", "dataset", "seed", "device", "progress")
 _SWEEP_KEYS = ("name", "datasets", "architectures", "methods", "train_sizes", "seeds", "evaluation")
 _EVALUATION_DEFAULTS = {"budgets": [0.1], "points": 100, "ece_bins": 15, "target": "predicted"}
+#: sample counts of the expected-gradient read-out when the sweep does not say; "all" is every member.
+#: Left out of a run's configuration while it is the default, so run keys from before the read-out hold.
+DEFAULT_GRADIENT_SAMPLES = (1, 4, 16, 64, "all")
 
 
 class SweepConfigError(ValueError):
@@ -154,7 +158,7 @@ def check_run(spec: dict, where: str = "run", need_evaluation: bool = True) -> d
 def check_evaluation(spec: Any, where: str) -> dict:
     """Budgets, attacks and scoring options shared by every run of a sweep."""
     spec = _table(spec, where)
-    _known_keys(spec, ("budgets", "attacks", "points", "ece_bins", "target"), where)
+    _known_keys(spec, ("budgets", "attacks", "points", "ece_bins", "target", "gradient_samples"), where)
     budgets = _list(spec.get("budgets", _EVALUATION_DEFAULTS["budgets"]), f"{where}.budgets")
     budgets = [_float(b, f"{where}.budgets[{i}]", low=0.0) for i, b in enumerate(budgets)]
     attacks = _list(spec.get("attacks", [{"method": "fgsm"}, {"method": "pgd"}]), f"{where}.attacks")
@@ -166,13 +170,30 @@ def check_evaluation(spec: Any, where: str) -> dict:
     target = spec.get("target", _EVALUATION_DEFAULTS["target"])
     if target not in _TARGETS:
         raise SweepConfigError(f"{where}.target: must be one of {_listing(_TARGETS)}; got {target!r}")
-    return {
+    checked = {
         "budgets": budgets,
         "attacks": attacks,
         "points": _int(spec.get("points", _EVALUATION_DEFAULTS["points"]), f"{where}.points", low=1),
         "ece_bins": _int(spec.get("ece_bins", _EVALUATION_DEFAULTS["ece_bins"]), f"{where}.ece_bins", low=1),
         "target": target,
     }
+    if "gradient_samples" in spec:
+        samples = _check_gradient_samples(spec["gradient_samples"], f"{where}.gradient_samples")
+        if samples != list(DEFAULT_GRADIENT_SAMPLES):
+            checked["gradient_samples"] = samples
+    return checked
+
+
+def gradient_sample_counts(evaluation: dict, members: int) -> list[int]:
+    """The read-out's sample counts for a posterior of ``members`` members: each of the
+    evaluation's ``gradient_samples`` ("all" is ``members``) clipped to ``members``, without
+    repeats, ascending.
+
+    >>> gradient_sample_counts({}, 10)
+    [1, 4, 10]
+    """
+    wanted = evaluation.get("gradient_samples", DEFAULT_GRADIENT_SAMPLES)
+    return sorted({members if s == "all" else min(int(s), members) for s in wanted})
 
 
 def fit_function(method: str):
@@ -282,6 +303,18 @@ def _check_attack(spec: Any, where: str) -> dict:
         raise SweepConfigError(f"{where}.label: must be a string; got {label!r}")
     return {"method": method, "norm": norm, "steps": steps, "samples": samples,
             "objective": objective, "label": label}
+
+
+def _check_gradient_samples(value: Any, where: str) -> list:
+    """Positive integers or "all", without repeats, kept in the order given."""
+    out: list = []
+    for i, s in enumerate(_list(value, where)):
+        if s != "all" and (isinstance(s, bool) or not isinstance(s, int) or s < 1):
+            raise SweepConfigError(f"{where}[{i}]: must be an integer >= 1 or 'all'; got {_brief(s)}")
+        if s in out:
+            raise SweepConfigError(f"{where}[{i}]: {s!r} repeats an earlier entry")
+        out.append(s)
+    return out
 
 
 def _default_steps(method: str) -> int:

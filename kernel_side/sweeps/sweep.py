@@ -64,7 +64,9 @@ class Sweep:
         "samples", "objective", "label"}``; default FGSM and PGD, L-inf), ``points``
         (test points attacked, default 100), ``ece_bins`` (15), ``target``
         (``"predicted"``: success means the prediction flipped; ``"true"``: the attacked
-        point is misclassified).
+        point is misclassified), ``gradient_samples`` (the sample counts S of the
+        expected-gradient read-out on the same points, integers or ``"all"``, default
+        ``[1, 4, 16, 64, "all"]``, each clipped to the posterior's size).
     name : str
         Recorded with every run in the store.
     store : str or Path, optional
@@ -177,10 +179,16 @@ class Sweep:
 
         Long form by default: one row per run x attack x budget; ``wide=True`` gives one
         row per run with a ``success_rate[...]`` and ``robustness[...]`` column per
-        attack and budget.
+        attack and budget and a ``grad_<statistic>[<which>@<S>]`` column per read-out value.
         """
         with RunStore(self._store_path(store), readonly=True) as db:
             return db.results(self.keys(), wide=wide, include_failed=include_failed)
+
+    def gradients(self, store: str | Path | None = None):
+        """This sweep's expected-gradient read-out as a long DataFrame (see :meth:`RunStore.gradients`):
+        one row per run x sample count x ``which`` (``"expected"`` or ``"member"``)."""
+        with RunStore(self._store_path(store), readonly=True) as db:
+            return db.gradients(self.keys())
 
     def __len__(self) -> int:
         return len(self.runs())

@@ -43,6 +43,8 @@ EXPECTED = {
                                                            "Pearson r"]),
     "05_bring_your_own.ipynb": (["Explorer"], ["from_modules and from_state_dicts agree: True",
                                               "identical predictions after loading: True"]),
+    "06_limit_study.ipynb": (["SweepExplorer"], ["finished=8, failed=0", "hmc: median L2 norm, all members",
+                                                "12 of 12 cells have a run", "Explorer opened"]),
 }
 
 CAUTION = re.compile(r"empirical evidence, not a\s+(?:>\s*)?certificate")
