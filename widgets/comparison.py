@@ -148,5 +148,5 @@ class Comparison(w.VBox):
             _report.check_same_posterior(ens, entry, path, name=f"ensembles[{k}]")
         settings = _report.explorer_settings(entries[0])
         settings["samples"] = max(e["state"]["samples"] for e in entries)
-        labels = kwargs.pop("labels", [e["heading"] for e in entries])
+        labels = kwargs.pop("labels", [e["column"] for e in entries])
         return cls(ensembles, data, labels=labels, **{**settings, **kwargs})

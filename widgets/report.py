@@ -43,10 +43,18 @@ def _extra(explorer: Any) -> dict:
     return {"bounds": [list(b) for b in explorer._bounds]}
 
 
+def _title(explorer: Any) -> str:
+    """The explorer's own title line (data set, method, S), as the live view shows it."""
+    first = explorer.children[0] if explorer.children else None
+    return str(first.value) if isinstance(getattr(first, "value", None), str) else ""
+
+
 def section(explorer: Any, heading: str, timeout: float = 60.0) -> tuple[str, dict]:
     """The HTML and state entry of one live explorer's current view."""
-    return explorer_section(_view(explorer, timeout), explorer._ens, _kind(explorer), heading,
-                            extra=_extra(explorer), **_context(explorer))
+    title = _title(explorer)
+    return explorer_section(_view(explorer, timeout), explorer._ens, _kind(explorer),
+                            f"{heading} - {title}" if title else heading,
+                            extra={**_extra(explorer), "column": heading}, **_context(explorer))
 
 
 def explorers_report(explorers: list, headings: list[str], path: Any, title: str, kind: str,
