@@ -56,14 +56,24 @@ def view_numbers(view: ViewData) -> dict:
 
 
 def certified_radius_of(view: Any) -> float | None:
-    """A certified radius carried by the view (``view.certified``, a number or an object with
-    ``radius``), or None where none was computed."""
-    found = getattr(view, "certified", None)
-    found = getattr(found, "radius", found)
-    try:
-        return None if found is None else float(found)
-    except (TypeError, ValueError):
-        return None
+    """The certified radius at the picked input carried by a view, or None where none was computed.
+
+    Read from ``view.certified_radius``, ``view.certified`` or ``view.certificate``: a number, a
+    one-element tensor or array, or an object with ``radius`` or ``eps`` holding one.
+    """
+    for name in ("certified_radius", "certified", "certificate"):
+        found = getattr(view, name, None)
+        for inner in ("radius", "eps"):
+            found = getattr(found, inner, found)
+        if found is None:
+            continue
+        try:
+            value = float(np.asarray(found, dtype=np.float64).reshape(-1)[0])
+        except (TypeError, ValueError, IndexError):
+            continue
+        if np.isfinite(value):
+            return value
+    return None
 
 
 def explorer_figures(view: ViewData, bounds: Any = None, train: tuple | None = None,

@@ -319,3 +319,34 @@ def test_explorer_report_state_json_is_strict(report):
                     report.read_text(encoding="utf-8"), re.S).group(1)
     assert "<" not in raw and ">" not in raw  # written as \u003c / \u003e
     json.loads(raw, parse_constant=lambda name: pytest.fail(f"non-strict JSON constant {name}"))
+
+
+def test_a_certified_radius_carried_by_the_view_is_drawn_in_green(explorer):
+    from types import SimpleNamespace
+
+    from jostle.report.charts import map_drawing
+    from jostle.report.explorer_report import certified_radius_of
+
+    view = explorer.result
+    assert certified_radius_of(view) is None  # this view carries no certificate
+    assert certified_radius_of(SimpleNamespace(certified_radius=0.25)) == 0.25
+    assert certified_radius_of(SimpleNamespace(certified=SimpleNamespace(eps=np.array([0.125])))) == 0.125
+    bounds = explorer._bounds
+    plain = map_drawing(view, bounds).svg()
+    certified = map_drawing(view, bounds, certified_radius=0.1).svg()
+    assert report_palette.CERTIFIED_COLOUR not in plain
+    assert certified.count(f'stroke="{report_palette.CERTIFIED_COLOUR}"') == 1
+
+
+def test_settings_the_attack_refuses_still_give_a_report(evil_moons, tmp_path):
+    ens = tiny_ensemble(class_names=evil_moons.classes)
+    ex = Explorer(ens, evil_moons, method="cw", norm="inf", steps=3, grid=16)
+    try:
+        assert ex.wait(60) and ex.result.attack is None
+        path = ex.report(tmp_path / "refused.html")
+        summary = dict(_tables(path).tables["report-summary"])
+        assert "norm must be one of ['2'] for method 'cw'; got 'inf'" in summary["note: 1"]
+        assert "no attack for these settings" in path.read_text(encoding="utf-8")
+        assert read_report_state(path)["entries"][0]["view"]["errors"] == ex.result.errors
+    finally:
+        ex.close()
