@@ -44,6 +44,9 @@ table {{ border-collapse: collapse; margin: 4px 0 8px; font-variant-numeric: tab
 th, td {{ border: 1px solid {pal.BORDER}; padding: 2px 8px; text-align: left; vertical-align: top; }}
 th {{ background: {pal.RAISED}; font-weight: 600; }}
 pre {{ background: {pal.RAISED}; padding: 8px; white-space: pre-wrap; }}
+.jostle-legend {{ display: flex; flex-wrap: wrap; gap: 10px; margin: 2px 0 4px; color: {pal.MUTED}; }}
+.jostle-legend > span {{ display: inline-flex; align-items: center; gap: 4px; }}
+.jostle-swatch {{ width: 10px; height: 10px; border-radius: 50%; display: inline-block; border: 1px solid {pal.INK}; }}
 .jostle-cautions {{ border-left: 4px solid {pal.ATTACK_COLOUR}; background: {pal.RAISED}; padding: 6px 12px; }}
 """
 

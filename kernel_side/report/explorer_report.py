@@ -15,6 +15,7 @@ from jostle.live.engine import ViewData
 from jostle.report import charts
 from jostle.report.document import esc, table
 from jostle.report.drawing import Drawing
+from jostle.report.palette import CLASS_COLOURS
 from jostle.report.provenance import finite_json, provenance
 
 __all__ = ["view_numbers", "explorer_figures", "explorer_section", "SETTING_NAMES", "FIGURE_NAMES"]
@@ -162,7 +163,8 @@ def explorer_section(view: ViewData, ens: Any, kind: str, heading: str, extra: d
     record = provenance(ens)
     figures = explorer_figures(view, **figure_context)
     graphics = "".join(f"<figure data-view=\"{esc(name)}\">{drawing.svg()}"
-                       f"<figcaption>{esc(_FIGURE_CAPTIONS.get(name, drawing.label))}</figcaption></figure>"
+                       f"<figcaption>{_legend(view.classes) if name == 'map' else ''}"
+                       f"{esc(_FIGURE_CAPTIONS.get(name, ''))}</figcaption></figure>"
                        for name, drawing in figures.items())
     per_class, summary = number_rows(view)
     body = (f"<section class=\"jostle-report-explorer\" data-kind=\"{esc(kind)}\"><h2>{esc(heading)}</h2>"
@@ -177,6 +179,13 @@ def explorer_section(view: ViewData, ens: Any, kind: str, heading: str, extra: d
              "posterior_sha256": record["posterior_sha256"], "provenance": record, "view": view_numbers(view),
              **(extra or {})}
     return body, entry
+
+
+def _legend(classes: list[str]) -> str:
+    """Class colours with their (escaped) names, as the live map's legend."""
+    items = "".join(f'<span><span class="jostle-swatch" style="background:{CLASS_COLOURS[k % len(CLASS_COLOURS)]}">'
+                    f"</span>{esc(name)}</span>" for k, name in enumerate(classes))
+    return f'<span class="jostle-legend" data-testid="report-legend">{items}</span>'
 
 
 def _compact(value: Any) -> str:

@@ -59,6 +59,7 @@ def test_explorer_report_opens_offline_with_the_live_numbers(chromium_browser, t
         assert page.locator("svg[role=img]").count() == 5  # map, predictive, spread, path, fade
         rows = _cells(page, "report-predictive")[1:]
         assert [r[0] for r in rows] == view.classes  # the class name shown as text, not run
+        assert page.inner_text('[data-testid="report-legend"]').split() == [EVIL_CLASS, "wine"]
         for c, row in enumerate(rows):
             # shown to 4 decimals: within half a unit of the last place (plus float32 rounding)
             assert abs(float(row[1]) - float(view.before.probs[c])) <= 5e-5 + 1e-7
