@@ -149,7 +149,7 @@ def number_rows(view: ViewData) -> tuple[list[list[str]], list[tuple[str, str]]]
 def provenance_html(record: dict) -> str:
     rows = [("method", record["method"]), ("posterior samples S", record["members"]),
             ("parameters per member", record["parameters_per_member"])]
-    for key in ("seed", "hyperparameters", "diagnostics", "architecture", "data"):
+    for key in ("drawn_from", "seed", "hyperparameters", "diagnostics", "architecture", "data"):
         if record.get(key) is not None:
             rows.append((key, _compact(record[key])))
     rows += [("posterior sha256", record["posterior_sha256"]), ("hash of", record["hash_of"]),

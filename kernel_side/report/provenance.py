@@ -72,6 +72,8 @@ def provenance(ens: Ensemble) -> dict[str, Any]:
         "diagnostics": meta.get("diagnostics"),
         "seed": meta.get("seed"),
         "data": meta.get("data"),
+        "drawn_from": (type(ens.posterior).__name__ if ens.posterior is not None
+                       else "stored draws (no distribution object attached)"),
         "description": describe(ens),
         "posterior_sha256": posterior_sha256(ens),
         "hash_of": "parameters (sorted names; dtype, shape, little-endian C-order bytes)",
