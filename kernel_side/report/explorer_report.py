@@ -151,7 +151,7 @@ def provenance_html(record: dict) -> str:
             ("parameters per member", record["parameters_per_member"])]
     for key in ("drawn_from", "seed", "hyperparameters", "diagnostics", "architecture", "data"):
         if record.get(key) is not None:
-            rows.append((key, _compact(record[key])))
+            rows.append((key.replace("_", " "), _compact(record[key])))
     rows += [("posterior sha256", record["posterior_sha256"]), ("hash of", record["hash_of"]),
              ("jostle version", record["jostle_version"]), ("torch version", record["torch_version"])]
     return table(rows, testid="report-provenance") + f"<pre>{esc(record['description'])}</pre>"
