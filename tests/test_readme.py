@@ -62,6 +62,7 @@ def test_readme_python_examples_run_as_written(tmp_path):
     assert "4 True" in out
     assert "(1, 28, 28) torch.Size([1258, 784])" in out and "(1, 28, 28) 151 49 1.0" in out
     assert "SweepSummary(total=2, skipped=0, finished=2, failed=0" in out
+    assert "restored: True" in out
 
 
 def test_readme_pictures_exist_and_are_small():

@@ -45,6 +45,7 @@ class Comparison(w.VBox):
         if labels is None:
             labels = [str(e.meta.get("method", f"model {k + 1}")) for k, e in enumerate(ensembles)]
         labels = [str(label) for label in labels]
+        self._labels = labels
         if len(labels) != len(ensembles):
             raise ValueError(f"labels must name each of the {len(ensembles)} ensembles; got {len(labels)}")
         largest = max(len(e) for e in ensembles)
@@ -118,3 +119,34 @@ class Comparison(w.VBox):
         for explorer in getattr(self, "explorers", ()):
             explorer.close()
         super().close()
+
+    # ---------------------------------------------------------------- sharing
+    def report(self, path: Any, title: str | None = None, timeout: float = 60.0) -> Any:
+        """Write every column's current view into one self-contained HTML file (see
+        :meth:`Explorer.report`), one section per posterior under its column heading."""
+        from . import report as _report
+
+        return _report.explorers_report(self.explorers, self._labels, path, title or "jostle comparison report",
+                                        "comparison", timeout)
+
+    def figure(self, name: str, path: Any, column: int = 0, timeout: float = 60.0) -> Any:
+        """Write one view of one column as ``.svg`` or ``.png`` (see :meth:`Explorer.figure`)."""
+        column = check_int("column", column, low=0, high=len(self.explorers) - 1)
+        return self.explorers[column].figure(name, path, timeout)
+
+    @classmethod
+    def from_report(cls, path: Any, ensembles: Sequence[Any], data: Any, **kwargs: Any) -> Comparison:
+        """A Comparison restored to a report's shared settings; ``ensembles`` in the report's
+        column order, each checked against its column's sha256."""
+        from . import report as _report
+
+        entries = _report.entries_of(path, ("explorer",), ("comparison",))
+        ensembles = list(ensembles)
+        if len(ensembles) != len(entries):
+            raise ValueError(f"ensembles must hold the report's {len(entries)} posteriors; got {len(ensembles)}")
+        for k, (ens, entry) in enumerate(zip(ensembles, entries)):
+            _report.check_same_posterior(ens, entry, path, name=f"ensembles[{k}]")
+        settings = _report.explorer_settings(entries[0])
+        settings["samples"] = max(e["state"]["samples"] for e in entries)
+        labels = kwargs.pop("labels", [e["column"] for e in entries])
+        return cls(ensembles, data, labels=labels, **{**settings, **kwargs})

@@ -133,6 +133,40 @@ class Explorer(LiveBox):
         self._draw_path(view)
         self._draw_fade(view)
 
+    # ---------------------------------------------------------------- sharing
+    def report(self, path: Any, title: str | None = None, timeout: float = 60.0) -> Any:
+        """Write the current view as one self-contained HTML file (opens offline, no kernel).
+
+        The map, predictive, spread, path and fading charts as inline SVG, the settings,
+        the posterior's provenance (with the sha256 of its parameters) and the cautions;
+        the state is embedded as JSON for :meth:`from_report`. Written atomically.
+        Returns the path.
+        """
+        from . import report as _report
+
+        return _report.explorers_report([self], ["explorer"], path, title or "jostle explorer report", "explorer",
+                                        timeout)
+
+    def figure(self, name: str, path: Any, timeout: float = 60.0) -> Any:
+        """Write one view (``map``, ``predictive``, ``spread``, ``path``, ``fade``) as ``.svg`` or ``.png``."""
+        from . import report as _report
+
+        return _report.figure(self, name, path, timeout)
+
+    @classmethod
+    def from_report(cls, path: Any, ens: Any, data: Any, **kwargs: Any) -> Explorer:
+        """An Explorer restored to the settings a report was made with.
+
+        ``ens`` must be the report's posterior (the sha256 of its parameters is checked);
+        ``data`` supplies the training points the map draws. The report is parsed as JSON,
+        never run.
+        """
+        from . import report as _report
+
+        entry = _report.entries_of(path, ("explorer",), ("explorer", "comparison", "sweep_explorer"))[0]
+        _report.check_same_posterior(ens, entry, path)
+        return cls(ens, data, **{**_report.explorer_settings(entry), **kwargs})
+
 
 def _layout(data: Any, ens: Any, map_view: w.Widget, predictive: list, attack: list, status: w.Widget) -> list:
     method = ens.meta.get("method", "posterior")

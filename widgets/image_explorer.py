@@ -136,6 +136,34 @@ class ImageExplorer(GradientStripPart, LiveBox):
         self._draw_predictive(view)
         self._draw_fade(view)
 
+    # ---------------------------------------------------------------- sharing
+    def report(self, path: Any, title: str | None = None, timeout: float = 60.0) -> Any:
+        """Write the current view as one self-contained HTML file (see :meth:`Explorer.report`):
+        the original, perturbation and attacked images as inline PNG, the predictive and
+        fading charts as SVG, settings, provenance, cautions and the embedded state."""
+        from . import report as _report
+
+        return _report.explorers_report([self], ["image explorer"], path, title or "jostle image explorer report",
+                                        "image_explorer", timeout)
+
+    def figure(self, name: str, path: Any, timeout: float = 60.0) -> Any:
+        """Write one view (``original``, ``perturbation``, ``attacked``, ``predictive``, ``fade``)
+        as ``.svg`` or ``.png``."""
+        from . import report as _report
+
+        return _report.figure(self, name, path, timeout)
+
+    @classmethod
+    def from_report(cls, path: Any, ens: Any, data: Any, **kwargs: Any) -> ImageExplorer:
+        """An ImageExplorer restored to a report's settings; refuses another posterior
+        (sha256 of the parameters) or data whose chosen test image differs."""
+        from . import report as _report
+
+        entry = _report.entries_of(path, ("image",), ("image_explorer", "sweep_explorer"))[0]
+        _report.check_same_posterior(ens, entry, path)
+        _report.check_same_image(data, entry, path)
+        return cls(ens, data, **{**_report.explorer_settings(entry), **kwargs})
+
 
 def _layout(data: Any, ens: Any, strip: w.Widget, panels: w.Widget, predictive: w.Widget, attack: list,
             status: w.Widget) -> list:

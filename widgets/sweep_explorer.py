@@ -308,6 +308,44 @@ class SweepExplorer(ipw.HBox):
         with RunStore(self._store_path, readonly=True) as db:
             return db.ensemble_file(key)
 
+    # ------------------------------------------------------------------ sharing
+    def report(self, path: Any, title: str | None = None, timeout: float = 60.0) -> Any:
+        """Write the chart as filtered now (and the opened run's explorer, if any) as one
+        self-contained HTML file; see :meth:`Explorer.report`."""
+        from . import report as _report
+
+        return _report.sweep_report(self, path, title or "jostle sweep report", timeout)
+
+    def figure(self, name: str, path: Any, timeout: float = 60.0) -> Any:
+        """Write the chart (``"sweep"``) or a view of the opened run's explorer as ``.svg`` or ``.png``."""
+        from jostle.report import save_drawing
+        from jostle.report.charts import sweep_drawing
+
+        if name == "sweep":
+            if self.points is None:
+                raise ValueError("the sweep explorer has no finished runs to draw")
+            return save_drawing(sweep_drawing(self.points, ROBUSTNESS_MEASURES[self.measure]), path)
+        if self.opened is None:
+            raise ValueError(f"name must be 'sweep' while no run is opened; got {name!r}")
+        return self.opened.figure(name, path, timeout)
+
+    @classmethod
+    def from_report(cls, path: Any, source: Any, **kwargs: Any) -> SweepExplorer:
+        """A SweepExplorer over ``source`` with the report's filters and opened run."""
+        from . import report as _report
+
+        entry = _report.entries_of(path, ("sweep_chart",), ("sweep_explorer",))[0]
+        explorer = cls(source, **kwargs)
+        try:
+            with explorer.hold_trait_notifications():
+                explorer.methods, explorer.attack = entry["methods"], entry["attack"]
+                explorer.budget, explorer.measure = entry["budget"], entry["measure"]
+            explorer.selected_key = entry.get("selected_key", "")
+        except t.TraitError as err:
+            explorer.close()
+            raise ValueError(f"source must hold the runs the report {str(path)!r} shows: {err}") from None
+        return explorer
+
 
 def _read_source(source: Any):
     keys = None

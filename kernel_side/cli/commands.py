@@ -8,11 +8,11 @@ from __future__ import annotations
 import argparse
 import sys
 
-from jostle.cli import demo, sweep
+from jostle.cli import demo, report, sweep
 from jostle.cli.errors import CommandError
 
 # Modules that add subcommands; each has register(subparsers).
-COMMAND_MODULES = (sweep, demo)
+COMMAND_MODULES = (sweep, demo, report)
 
 
 def build_parser() -> argparse.ArgumentParser:
