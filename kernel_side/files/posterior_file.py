@@ -106,14 +106,31 @@ def _parse_header(raw: bytes, path: Path) -> tuple[dict, int]:
     return header, length
 
 
+def _file_mode() -> int:
+    """The mode a plain ``open(path, "w")`` would give a new file: 0o666 less the umask."""
+    umask = os.umask(0o022)
+    os.umask(umask)
+    return 0o666 & ~umask
+
+
+_NEW_FILE_MODE = _file_mode()
+
+
 def atomic_write(path: Path, payload: bytes) -> None:
+    """Write ``payload`` to a temporary file beside ``path``, then rename it over ``path``.
+
+    Readers see the old file or the new one, never a part. The file gets the mode an ordinary
+    write would give it (an existing file keeps its own), not the temporary file's 0o600.
+    """
     path.parent.mkdir(parents=True, exist_ok=True)
+    mode = path.stat().st_mode & 0o777 if path.exists() else _NEW_FILE_MODE
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
         with os.fdopen(fd, "wb") as handle:
             handle.write(payload)
             handle.flush()
             os.fsync(handle.fileno())
+        os.chmod(tmp, mode)
         os.replace(tmp, path)
     except BaseException:
         if os.path.exists(tmp):

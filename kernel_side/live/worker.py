@@ -6,14 +6,24 @@ thread survives anything the computation or the delivery raises.
 """
 from __future__ import annotations
 
+import atexit
 import threading
 import time
 import traceback
+import weakref
 from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
 __all__ = ["LiveWorker", "Outcome"]
+
+_OPEN: weakref.WeakSet = weakref.WeakSet()  # workers not yet closed, for the exit hook
+
+
+@atexit.register
+def _close_open_workers() -> None:
+    for worker in list(_OPEN):  # wait for computations in progress, however long
+        worker.close(timeout=None)
 
 
 @dataclass
@@ -61,6 +71,7 @@ class LiveWorker:
         self.delivery_failures: list[str] = []
         self._thread = threading.Thread(target=self._loop, name=name, daemon=True)
         self._thread.start()
+        _OPEN.add(self)
 
     @property
     def generation(self) -> int:
@@ -98,11 +109,18 @@ class LiveWorker:
                 self._cond.wait(left)
             return True
 
-    def close(self) -> None:
+    def close(self, timeout: float | None = 10.0) -> None:
+        """Stop the thread after the computation in progress (if any); wait up to ``timeout`` s.
+
+        Waiting matters at interpreter exit: a daemon thread still inside a torch kernel when
+        Python finalises aborts the process, so an exit hook closes every open worker.
+        """
         with self._cond:
             self._closed = True
             self._pending = None
             self._cond.notify_all()
+        if threading.current_thread() is not self._thread and self._thread.is_alive():
+            self._thread.join(timeout)
 
     def _loop(self) -> None:
         while True:
@@ -110,6 +128,7 @@ class LiveWorker:
                 while not self._closed and self._pending is None and not self._notices:
                     self._cond.wait()
                 if self._closed:
+                    _OPEN.discard(self)
                     return
                 notices, self._notices = self._notices, []
                 job, self._pending = self._pending, None

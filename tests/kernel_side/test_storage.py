@@ -144,6 +144,22 @@ def test_write_is_atomic(tmp_path, monkeypatch):
     assert [p.name for p in tmp_path.iterdir()] == ["post.safetensors"]
 
 
+def test_saved_file_gets_an_ordinary_files_mode(tmp_path):
+    # POSIX: a new file's mode is 0o666 less the umask (common practice); the temporary file
+    # behind the atomic rename is 0o600, which must not leak into the saved file.
+    ens, _ = random_mlp_ensemble(members=2)
+    umask = os.umask(0o022)
+    os.umask(umask)
+    plain = tmp_path / "plain.txt"
+    plain.write_text("x")
+    path = tmp_path / "post.safetensors"
+    ens.save(path)
+    assert path.stat().st_mode & 0o777 == plain.stat().st_mode & 0o777 == 0o666 & ~umask
+    os.chmod(path, 0o640)
+    ens.save(path)  # an existing file keeps its mode
+    assert path.stat().st_mode & 0o777 == 0o640
+
+
 def test_save_path_and_missing_file_errors(tmp_path):
     ens, _ = random_mlp_ensemble(members=2)
     with pytest.raises(ValueError, match=r"path must end in .safetensors; got '.*post.pt'"):

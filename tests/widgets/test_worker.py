@@ -117,3 +117,35 @@ def test_a_notice_carries_the_generation_current_when_it_was_raised():
     assert [o.generation for o in notices] == [1]
     assert [o.generation for o in got.outcomes if o.kind == "result"] == [2]
     worker.close()
+
+
+_EXIT_SCRIPT = """
+import sys, time, torch
+from jostle.live.engine import LiveWorker
+started = []
+def compute(request):
+    started.append(1)
+    a, end = torch.randn(300, 300), time.monotonic() + 1.0
+    while time.monotonic() < end:  # inside torch kernels when the interpreter wants to exit
+        a = torch.tanh(a @ a)
+    return float(a.sum())
+worker = LiveWorker(compute, lambda outcome: None)
+worker.submit(1)
+while not started:
+    time.sleep(0.01)
+if sys.argv[1] == "close":
+    worker.close()
+"""
+
+
+@pytest.mark.parametrize("how", ["close", "exit"])
+def test_python_exits_cleanly_while_a_computation_runs(tmp_path, how):
+    # A daemon thread still inside a torch kernel at finalisation aborts the process
+    # ("terminate called without an active exception", rc 134): close() and the exit hook wait.
+    import subprocess
+    import sys
+
+    script = tmp_path / "exit_while_computing.py"
+    script.write_text(_EXIT_SCRIPT)
+    done = subprocess.run([sys.executable, str(script), how], capture_output=True, text=True, timeout=120)
+    assert done.returncode == 0, done.stderr
