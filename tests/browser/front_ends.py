@@ -109,7 +109,7 @@ CONTRAST_JS = r"""(scopes) => {
     const css = getComputedStyle(el);
     if (css.visibility !== 'visible' || css.display === 'none') return false;
     const box = el.getBoundingClientRect();
-    return box.width > 0 && box.height > 0;
+    return box.width > 1 && box.height > 1;  // a 1 px clipped box is text for screen readers only
   };
   const ownText = (el) => Array.from(el.childNodes).filter(n => n.nodeType === 3).map(n => n.textContent)
     .join('').trim();
