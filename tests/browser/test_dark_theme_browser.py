@@ -131,3 +131,39 @@ def test_views_meet_wcag_contrast_in_the_light_and_the_dark_theme(themed_page):
     assert all(d < 128 < lt for d, lt in zip(dark["luma"], light["luma"])), (light, dark)
     _check(page, "dark")
     errors.check()
+
+
+def _wcag_ratio(fg: tuple[float, ...], bg: tuple[float, ...]) -> float:
+    """WCAG 2.1 contrast ratio written out again in Python (the definitions cited in front_ends)."""
+    def luminance(colour):
+        lin = [c / 12.92 if c <= 0.03928 else ((c + 0.055) / 1.055) ** 2.4 for c in (v / 255 for v in colour)]
+        return 0.2126 * lin[0] + 0.7152 * lin[1] + 0.0722 * lin[2]
+
+    high, low = sorted((luminance(fg), luminance(bg)), reverse=True)
+    return (high + 0.05) / (low + 0.05)
+
+
+def test_contrast_measure_follows_the_wcag_definitions(page):
+    """The page-side measure on a static page of known colours (no server)."""
+    page.set_content("""<body style="background: #ffffff; margin: 0">
+      <div class="jostle-root" style="background: #ffffff">
+        <span id="black" style="color: #000000">black on white</span>
+        <span id="grey" style="color: #777777">grey 77 on white</span>
+        <div style="background: rgba(0, 0, 0, 0)"><span style="color: rgba(0, 0, 0, 0.54)">translucent ink</span></div>
+        <div style="background: #222222"><span style="color: #dddddd; font-size: 24px">large light on dark</span></div>
+        <svg width="200" height="40"><text x="0" y="20" fill="#767676">svg text</text></svg>
+      </div></body>""")
+    found = {f["text"]: f for f in contrast(page, [".jostle-root"])}
+    assert set(found) == {"black on white", "grey 77 on white", "translucent ink", "large light on dark", "svg text"}
+    # The extremes of the scale are 21:1 and 1:1 (WCAG 2.1, definition of contrast ratio).
+    assert found["black on white"]["ratio"] == pytest.approx(21.0, rel=1e-9)
+    # #777777 on white: 4.48:1, just below AA (a standard example of the trade); #767676 just above.
+    assert found["grey 77 on white"]["ratio"] == pytest.approx(_wcag_ratio((119,) * 3, (255,) * 3), rel=1e-9)
+    assert found["grey 77 on white"]["ratio"] < 4.5 < found["svg text"]["ratio"]
+    assert found["svg text"]["ratio"] == pytest.approx(_wcag_ratio((118,) * 3, (255,) * 3), rel=1e-9)
+    # 54% black over white composites to 255 * 0.46 = 117.3 per channel (source-over); the
+    # page rounds nothing before the ratio, so only float64 rounding separates the two.
+    assert found["translucent ink"]["ratio"] == pytest.approx(_wcag_ratio((117.3,) * 3, (255,) * 3), rel=1e-6)
+    # the transparent box is skipped on the way up; the dark one is the text's background
+    assert found["large light on dark"]["bg"] == [34, 34, 34]
+    assert found["large light on dark"]["needed"] == 3 and found["black on white"]["needed"] == 4.5
