@@ -1,7 +1,7 @@
 """Keyboard and screen-reader access to jostle's views in a real JupyterLab page.
 
-A Comparison (two explorers and the shared samples slider) and an ImageExplorer are run in one
-notebook. Checked: Tab alone reaches every control of each widget (the walk starts on the
+A Comparison (two explorers and the shared samples slider), an ImageExplorer and a
+SweepExplorer are run in one notebook. Checked: Tab alone reaches every control of each widget (the walk starts on the
 widget's output area, as a user tabbing from the cell's output would, and records the focused
 element until focus leaves the widget); every control has an accessible name (aria-label,
 aria-labelledby, a <label>, or for ipywidgets controls their description label); the map's
@@ -20,7 +20,7 @@ from .harness import PageErrors, block_outside_traffic, open_and_run, wait_until
 
 pytestmark = [pytest.mark.browser, pytest.mark.slow]
 
-COMPARISON, IMAGES = ".jostle-comparison", ".jostle-image-explorer"
+COMPARISON, IMAGES, SWEEP = ".jostle-comparison", ".jostle-image-explorer", ".jostle-sweep-explorer"
 FIRST = f"{COMPARISON} .jostle-explorer"
 MOONS = dict(n_train=60, n_test=20, seed=0)
 CLASSES = ["steady", "leak"]
@@ -42,6 +42,26 @@ comparison = Comparison([random_ensemble(2, 2, 4, seed=2), random_ensemble(2, 2,
 comparison''',
     '''images = ImageExplorer(random_ensemble(64, 10, 4, seed=1), jostle.datasets.digits(seed=0), strip=4, steps=10)
 images''',
+    # made-up scores in a store written directly: the chart's controls are under test, not a fit
+    '''import numpy as np, tempfile, pathlib
+from jostle.sweeps.results_db import RunStore
+from jostle.sweeps.spec import run_key
+from jostle.widgets import SweepExplorer
+
+sweep = jostle.Sweep(datasets=[{"name": "moons", "n_test": 20}], methods=["map", "deep_ensemble"],
+                     architectures=[{"depth": 1, "width": 4}], train_sizes=[20], seeds=[0, 1],
+                     evaluation={"budgets": [0.1, 0.2], "points": 5, "attacks": ["fgsm"]})
+rng = np.random.default_rng(3)
+store = pathlib.Path(tempfile.mkdtemp()) / "runs.sqlite"
+with RunStore(store) as db:
+    for config in sweep.runs():
+        attacks = [{"attack": a["label"], "method": a["method"], "norm": "inf", "steps": a["steps"], "samples": None,
+                    "budget": b, "success_rate": float(rng.uniform()), "robustness": float(rng.uniform())}
+                   for a in config["evaluation"]["attacks"] for b in config["evaluation"]["budgets"]]
+        db.record({"key": run_key(config), "config": config, "status": "ok", "versions": {},
+                   "metrics": {"accuracy": float(rng.uniform(0.6, 1)), "nll": 0.4, "ece": 0.05, "members": 1,
+                               "attacks": attacks}})
+SweepExplorer(store)''',
 ]
 
 # Every focusable control inside `scope`, marked with data-kb-index, with its accessible name.
@@ -73,7 +93,7 @@ _CONTROLS_JS = r"""(scope) => {
     if (el.disabled || !box.width || !box.height || css.visibility !== 'visible') continue;
     el.dataset.kbIndex = String(out.length);
     out.push({index: out.length, tag: el.tagName.toLowerCase(), testid: el.dataset.testid || '',
-              role: el.getAttribute('role') || '', name: name(el)});
+              role: el.getAttribute('role') || '', name: name(el), editable: el.isContentEditable});
   }
   return out;
 }"""
@@ -109,20 +129,27 @@ def keyboard_page(chromium_browser, lab_server):
     wait_for_explorer(page, FIRST)
     wait_until(page, "(s) => { const p = document.querySelector(s + ' [data-testid=image-panels-root]');"
                      " return p && Number(p.dataset.revision) >= 1; }", arg=IMAGES, what="the image panels")
+    wait_until(page, "(s) => document.querySelectorAll(s + ' [data-testid=sweep-point]').length === 4", arg=SWEEP,
+               what="the sweep chart's 4 runs")
     yield page, errors
     context.close()
     errors.check()
 
 
-@pytest.mark.parametrize("scope, least", [(COMPARISON, 2 * 8 + 1), (IMAGES, 4 + 6)])
+@pytest.mark.parametrize("scope, least", [(COMPARISON, 2 * 8 + 1), (IMAGES, 4 + 6), (SWEEP, 4 + 2 + 3)])
 def test_tab_reaches_every_control_and_each_has_a_name(keyboard_page, scope, least):
     page, errors = keyboard_page
     controls = page.evaluate(_CONTROLS_JS, scope)
     # per explorer: map, layer select, 3 sliders, 3 selects; the Comparison adds its samples
-    # slider; the ImageExplorer has 4 strip items and 6 attack controls
+    # slider; the ImageExplorer has 4 strip items and 6 attack controls; the SweepExplorer a mark
+    # per run (4), a checkbox per method (2) and its 3 selects
     assert len(controls) >= least, controls
     unnamed = [c for c in controls if not c["name"]]
     assert not unnamed, f"controls with no accessible name: {unnamed}"
+    # a focusable element with no native role says what it is (WAI-ARIA 1.2: role on custom controls)
+    native = {"input", "select", "button", "textarea", "a"}
+    roleless = [c for c in controls if c["tag"] not in native and not c["role"] and not c["editable"]]
+    assert not roleless, f"custom controls with no role: {roleless}"
     assert page.evaluate(_FOCUS_OUTPUT_JS, scope)
     seen = []
     for _ in range(2 * len(controls) + 10):
