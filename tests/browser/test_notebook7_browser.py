@@ -60,7 +60,7 @@ class Notebook7Errors(PageErrors):
 
 @pytest.fixture(scope="module")
 def tour_page(chromium_browser, notebook7):
-    context = chromium_browser.new_context(viewport={"width": 1500, "height": 1400})
+    context = chromium_browser.new_context(viewport={"width": 1500, "height": 2800})  # the whole Comparison in view
     page = context.new_page()
     block_outside_traffic(page)
     errors = Notebook7Errors(page)
