@@ -1,5 +1,5 @@
 // jostle canvas helpers, placed ahead of the canvas views' modules when they are served
-// (widgets/_assets.py: canvas_module): binary wire arrays and theme colours.
+// (widgets/_assets.py: canvas_module): binary wire arrays, theme colours and theme changes.
 
 /** @typedef {{shape: number[], dtype: string, buffer: DataView}} WireArray */
 
@@ -26,4 +26,12 @@ function rgb(colour) {
   }
   const parts = value.match(/[\d.]+/g) || [];
   return parts.length >= 3 ? parts.slice(0, 3).map(Number) : [136, 136, 136];
+}
+
+/** Call `repaint` whenever JupyterLab switches its theme: the theme manager marks <body> with the
+ *  theme's name once its CSS is in, and canvas colours are read at paint time. Returns the disconnect. */
+function onThemeChange(repaint) {
+  const observer = new MutationObserver(() => requestAnimationFrame(() => repaint()));
+  observer.observe(document.body, { attributes: true, attributeFilter: ["data-jp-theme-name", "data-jp-theme-light"] });
+  return () => observer.disconnect();
 }

@@ -144,6 +144,18 @@ function buildBar(model, bar, select) {
   select.value = model.get("layer");
 }
 
+const ABOUT_EVENTS = "change:layer_shown change:layer_labels change:ball_centre change:predicted change:success";
+
+/** The map's description: the layer shown, the input the view was computed for, its predicted class. */
+function describe(model) {
+  const shown = model.get("layer_shown"), centre = model.get("ball_centre") || [];
+  const layer = (model.get("layer_labels") || {})[shown] || shown;
+  const point = centre.length === 2 ? `x ${centre[0].toFixed(3)}, y ${centre[1].toFixed(3)}` : "not computed yet";
+  const predicted = model.get("predicted") || "not computed yet";
+  return `Input map, layer: ${layer}. Picked point: ${point}. Predicted class: ${predicted}.` +
+    (model.get("predicted") ? ` Attack ${model.get("success") ? "flips" : "does not flip"} the prediction.` : "");
+}
+
 function render({ model, el }) {
   const root = document.createElement("div");
   root.className = "jostle-root jostle-map"; root.dataset.testid = "explorer-map-root";
@@ -151,11 +163,16 @@ function render({ model, el }) {
   canvas.tabIndex = 0; canvas.dataset.testid = "explorer-map";
   canvas.setAttribute("role", "application");
   canvas.setAttribute("aria-label", "input map: click or drag to pick the input, arrow keys move it");
+  // What the map shows, for screen readers: the layer, the computed input and its predicted class.
+  const about = document.createElement("p");
+  about.className = "jostle-sr-only"; about.dataset.testid = "explorer-map-description";
+  about.id = `jostle-map-about-${Math.random().toString(36).slice(2, 9)}`;
+  canvas.setAttribute("aria-describedby", about.id);
   const bar = document.createElement("div"); bar.className = "jostle-map-bar";
   const select = document.createElement("select"); select.dataset.testid = "layer-select";
   select.setAttribute("aria-label", "background layer");
   const legend = document.createElement("div"); legend.className = "jostle-legend"; legend.dataset.testid = "map-legend";
-  bar.append(select, legend); root.append(canvas, bar); el.append(root);
+  bar.append(select, legend); root.append(canvas, about, bar); el.append(root);
   const state = { revision: 0, layerRevision: 0, layer: null, layerDirty: true, toData: null, localPoint: null, frame: 0, dragging: false };
   const redraw = () => { if (!state.frame) state.frame = requestAnimationFrame(() => { state.frame = 0; draw(model, canvas, root, state); }); };
   const send = (p) => { state.localPoint = p; model.set("point", p); model.save_changes(); redraw(); };
@@ -183,17 +200,21 @@ function render({ model, el }) {
   const onLayer = () => { state.layerDirty = true; redraw(); };
   const onPoint = () => { state.localPoint = null; redraw(); };
   const onBar = () => { buildBar(model, bar, select); };
+  const onAbout = () => { about.textContent = describe(model); };
   model.on("change:background change:layer_values change:layer_shown change:layer_max", onLayer);
   model.on("change:point", onPoint);
   model.on("change:classes change:layer_labels change:layer", onBar);
   for (const k of VIEW_KEYS) model.on(`change:${k}`, redraw);
+  model.on(ABOUT_EVENTS, onAbout);
+  const offTheme = onThemeChange(onLayer);
   const resize = new ResizeObserver(redraw); resize.observe(root);
-  buildBar(model, bar, select); redraw();
+  buildBar(model, bar, select); onAbout(); redraw();
   return () => {
-    resize.disconnect(); cancelAnimationFrame(state.frame);
+    resize.disconnect(); offTheme(); cancelAnimationFrame(state.frame);
     model.off("change:background change:layer_values change:layer_shown change:layer_max", onLayer);
     model.off("change:point", onPoint); model.off("change:classes change:layer_labels change:layer", onBar);
     for (const k of VIEW_KEYS) model.off(`change:${k}`, redraw);
+    model.off(ABOUT_EVENTS, onAbout);
   };
 }
 

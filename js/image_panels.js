@@ -56,8 +56,9 @@ function render({ model, el }) {
   model.on(events, draw);
   const attached = new ResizeObserver(() => draw());
   attached.observe(root);
+  const offTheme = onThemeChange(draw);
   draw();
-  return () => { attached.disconnect(); model.off(events, draw); };
+  return () => { attached.disconnect(); offTheme(); model.off(events, draw); };
 }
 
 export default { render };

@@ -61,10 +61,11 @@ function render({ model, el }) {
   let built = false;
   const attached = new ResizeObserver(() => { if (!built && root.isConnected) { built = true; build(); } });
   attached.observe(root);
+  const offTheme = onThemeChange(build);
   build();
   built = root.isConnected;
   return () => {
-    attached.disconnect();
+    attached.disconnect(); offTheme();
     model.off("change:images change:captions change:value_range", build);
     model.off("change:selected", mark);
   };

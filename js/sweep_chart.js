@@ -112,12 +112,13 @@ function drawChart(model, svg, tooltip) {
     svg, SVG).textContent = model.get("x_title");
   node("text", { x: 12, y: SIZE.height / 2, transform: `rotate(-90 12 ${SIZE.height / 2})`, "text-anchor": "middle",
     class: "jostle-sweep-title" }, svg, SVG).textContent = model.get("y_title");
-  const marks = node("g", {}, svg, SVG);
+  const marks = node("g", { role: "listbox", "aria-label": "runs: Enter or Space opens one" }, svg, SVG);
   for (let i = 0; i < keys.length; i++) {
     const mark = node("path", {
       d: SHAPES[family[i]], transform: `translate(${px(x[i])},${py(y[i])})`, tabindex: 0,
       class: `jostle-sweep-point jostle-family-${family[i]}`, "data-testid": "sweep-point", "data-key": keys[i],
       "data-family": FAMILY_NAMES[family[i]], "aria-selected": keys[i] === selected ? "true" : "false",
+      role: "option", "aria-label": String(notes[i] ?? keys[i]),
     }, marks, SVG);
     const show = () => {
       tooltip.textContent = notes[i];
@@ -152,7 +153,7 @@ function render({ model, el }) {
   const root = node("div", { class: "jostle-root jostle-sweep" }, el);
   const controls = buildControls(model, root);
   const frame = node("div", { class: "jostle-sweep-frame" }, root);
-  const svg = node("svg", { viewBox: `0 0 ${SIZE.width} ${SIZE.height}`, "data-testid": "sweep-chart", role: "img",
+  const svg = node("svg", { viewBox: `0 0 ${SIZE.width} ${SIZE.height}`, "data-testid": "sweep-chart", role: "group",
     "aria-label": "robustness against accuracy, one mark per run" }, frame, SVG);
   const tooltip = node("div", { class: "jostle-sweep-tooltip", "data-testid": "sweep-tooltip", role: "tooltip" }, frame);
   tooltip.hidden = true;

@@ -127,6 +127,7 @@ class Explorer(LiveBox):
             self._map.success = bool(view.attack is not None and view.attack.success)
             self._map.ball_budget, self._map.ball_norm = state.budget, state.norm
             self._map.ball_centre = list(state.point)
+            self._map.predicted = f"{view.classes[view.label]} (p = {float(view.before.probs[view.label]):.2f})"
             self._map.view_revision += 1
         self._draw_predictive(view)
         self._draw_spread(view)

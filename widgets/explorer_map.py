@@ -49,3 +49,6 @@ class ExplorerMap(anywidget.AnyWidget):
     ).tag(sync=True)
     success = t.Bool(False, help="whether the drawn attack flips the whole ensemble's label").tag(sync=True)
     view_revision = t.Int(0, help="number of views the kernel has sent").tag(sync=True)
+    predicted = t.Unicode(
+        "", help="predicted class at ball_centre with its probability, as text (the map's ARIA description)"
+    ).tag(sync=True)
