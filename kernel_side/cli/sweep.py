@@ -123,6 +123,9 @@ def _sweep_show(args: argparse.Namespace) -> int:
     failed = int(frame.loc[frame["status"] == "failed", "key"].nunique())
     if len(runs):
         print(_readable_table(runs))
+        certified = _read_certified(args.store)
+        if len(certified):
+            print(_certified_table(certified))
     else:
         print("(no finished runs)")
     print(f"{runs['key'].nunique()} finished run(s), {failed} failed" + (" (see --failed)" if failed else ""))
@@ -154,6 +157,23 @@ def _readable_table(runs) -> str:
 
 _SHOW_SHARED = ["dataset", "n_train", "depth", "width", "activation"]
 _SHOW_RUN_COLUMNS = ["key"] + _SHOW_SHARED + ["method", "settings", "seed", "accuracy", "nll", "ece", "saved"]
+
+
+def _certified_table(certified) -> str:
+    """One line per run and certificate; a cell per budget holds 'certified accuracy / members certified'."""
+    import pandas as pd
+
+    certified = certified.assign(
+        key=certified["key"].str[:12], certificate=certified["certificate"] + "-" + certified["norm"],
+        settings=certified["method_settings"].map(_settings_text),
+        cell=[f"{a:.2f} / {m:.2f}" for a, m in zip(certified["certified_accuracy"], certified["members_certified"])])
+    table = certified.pivot_table(index=["key", "method", "settings", "seed", "certificate"], columns="budget",
+                                  values="cell", aggfunc="first", sort=False)
+    table.columns = [f"eps={b:g}" for b in table.columns]
+    with pd.option_context("display.width", 250, "display.max_columns", None, "display.max_rows", None):
+        text = table.reset_index().to_string(index=False)
+    return ("certified: certified accuracy (predictive provably unflipped and correct) / mean share of members "
+            "certified; a certificate holds for the sampled members and the stated ball only\n" + text)
 
 
 def _settings_text(settings: str) -> str:
@@ -194,6 +214,13 @@ def _read_results(path: str):
             return db.results(include_failed=True)
     except (FileNotFoundError, StoreError) as err:
         raise CommandError(str(err)) from None
+
+
+def _read_certified(path: str):
+    from jostle.sweeps.results_db import RunStore
+
+    with RunStore(path, readonly=True) as db:
+        return db.certified()
 
 
 def _connect(address: str, timeout: float):

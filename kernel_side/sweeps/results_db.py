@@ -3,7 +3,8 @@
 Table ``runs`` holds one row per run key (UNIQUE): its full configuration as canonical
 JSON, status (``ok`` / ``failed``), headline metrics, timings, software versions, the
 error and traceback of a failed run, and the path of its saved ensemble if any. Table
-``attack_results`` holds one row per run x attack x budget. A failed run that is retried
+``attack_results`` holds one row per run x attack x budget, table ``certified_results`` one
+row per run x budget x certificate (norm and method). A failed run that is retried
 replaces its row, so a key never appears twice. Only the process that runs the sweep
 writes; readers may look at the file at any time (WAL lets them).
 """
@@ -44,6 +45,12 @@ CREATE TABLE IF NOT EXISTS attack_results (
     method TEXT NOT NULL, norm TEXT NOT NULL, steps INTEGER, samples INTEGER,
     success_rate REAL, robustness REAL,
     PRIMARY KEY (key, attack, budget)
+);
+CREATE TABLE IF NOT EXISTS certified_results (
+    key TEXT NOT NULL REFERENCES runs (key) ON DELETE CASCADE,
+    budget REAL NOT NULL, norm TEXT NOT NULL, method TEXT NOT NULL,
+    certified_accuracy REAL, members_certified REAL,
+    PRIMARY KEY (key, budget, norm, method)
 );
 """
 _CONFIG_COLUMNS = ["dataset", "n_train", "depth", "width", "activation", "method", "method_settings",
@@ -126,6 +133,7 @@ class RunStore:
         updates = ", ".join(f"{c} = excluded.{c}" for c in row if c != "key")
         with self._transaction():
             self._db.execute("DELETE FROM attack_results WHERE key = ?", (result["key"],))
+            self._db.execute("DELETE FROM certified_results WHERE key = ?", (result["key"],))
             self._db.execute(
                 f"INSERT INTO runs ({columns}) VALUES ({marks}) ON CONFLICT (key) DO UPDATE SET "
                 f"{updates}, attempts = runs.attempts + 1", row,
@@ -135,6 +143,12 @@ class RunStore:
                     "INSERT INTO attack_results VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
                     (result["key"], a["attack"], a["budget"], a["method"], a["norm"], a["steps"],
                      a["samples"], a["success_rate"], a["robustness"]),
+                )
+            for c in (metrics or {}).get("certified", []):
+                self._db.execute(
+                    "INSERT INTO certified_results VALUES (?, ?, ?, ?, ?, ?)",
+                    (result["key"], c["budget"], c["norm"], c["method"], c["certified_accuracy"],
+                     c["members_certified"]),
                 )
 
     # ------------------------------------------------------------------ reading
@@ -168,8 +182,10 @@ class RunStore:
         ``family`` (``deterministic`` or ``Bayesian``), ``seed``), its headline metrics
         (``accuracy``, ``nll``, ``ece``) and ``attack``, ``budget``, ``success_rate``,
         ``robustness``. Wide form: one row per run, with columns
-        ``success_rate[<attack>@<budget>]`` and ``robustness[<attack>@<budget>]``.
-        Failed runs appear (with NaN metrics and their ``error``) only when asked for.
+        ``success_rate[<attack>@<budget>]`` and ``robustness[<attack>@<budget>]``, and
+        ``certified_accuracy[<method>-<norm>@<budget>]`` where the run certified (see
+        :meth:`certified`). Failed runs appear (with NaN metrics and their ``error``) only
+        when asked for.
         """
         import pandas as pd
 
@@ -185,7 +201,28 @@ class RunStore:
         frame = pd.DataFrame(long_rows, columns=columns)
         if not wide:
             return frame
-        return _widen(frame, base)
+        return _widen_certified(_widen(frame, base), self.certified(keys))
+
+    def certified(self, keys: Iterable[str] | None = None):
+        """Certified accuracy per run and budget as a pandas DataFrame (long form).
+
+        One row per run x budget x certificate from table ``certified_results``, beside the
+        run's configuration columns (``method`` is the posterior method, as in
+        :meth:`results`): ``key``, ``budget``, ``norm``, ``certificate`` (the certifying
+        method, ``crown`` or ``ibp``), ``certified_accuracy`` (the share of the evaluation
+        points whose posterior predictive is certified and correct) and ``members_certified``
+        (the mean share of members certified). A certificate holds for the sampled members
+        and the stated ball only.
+        """
+        import pandas as pd
+
+        configs = {r["key"]: _config_columns(r["config"]) for r in self.runs(keys)}
+        cursor = self._db.execute("SELECT key, budget, norm, method AS certificate, certified_accuracy, "
+                                  "members_certified FROM certified_results ORDER BY key, method, norm, budget")
+        names = [d[0] for d in cursor.description]
+        rows = [{**configs[values[0]], **dict(zip(names, values))} for values in cursor.fetchall()
+                if values[0] in configs]
+        return pd.DataFrame(rows, columns=_CONFIG_COLUMNS + names)
 
     def ensemble_file(self, key: str) -> Path | None:
         """Absolute path of the run's saved ensemble, or None when it was not saved."""
@@ -261,3 +298,14 @@ def _widen(frame, base: list[dict]):
     )
     pivot.columns = [f"{metric}[{label}]" for metric, label in pivot.columns]
     return runs.merge(pivot, left_on="key", right_index=True, how="left")
+
+
+def _widen_certified(wide, certified):
+    """Add one ``certified_accuracy[<method>-<norm>@<budget>]`` column per certificate and budget."""
+    if certified.empty:
+        return wide
+    label = certified["certificate"] + "-" + certified["norm"] + "@" + certified["budget"].map(lambda b: f"{b:g}")
+    pivot = certified.assign(label=label).pivot_table(index="key", columns="label", values="certified_accuracy",
+                                                      aggfunc="first", sort=False)
+    pivot.columns = [f"certified_accuracy[{c}]" for c in pivot.columns]
+    return wide.merge(pivot, left_on="key", right_index=True, how="left")

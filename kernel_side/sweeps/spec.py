@@ -57,6 +57,10 @@ _ATTACK_STEPS = 20
 _RESERVED_FIT_ARGS = ("net", "model", "module", "data", "dataset", "seed", "device", "progress")
 _SWEEP_KEYS = ("name", "datasets", "architectures", "methods", "train_sizes", "seeds", "evaluation")
 _EVALUATION_DEFAULTS = {"budgets": [0.1], "points": 100, "ece_bins": 15, "target": "predicted"}
+# Certified accuracy per budget (jostle.certify) unless the evaluation says ``certify = false``.
+_CERTIFY_DEFAULT = {"method": "crown", "norm": "inf"}
+_CERTIFY_METHODS = ("crown", "ibp")
+_CERTIFY_NORMS = ("inf", "2")
 
 
 class SweepConfigError(ValueError):
@@ -154,7 +158,7 @@ def check_run(spec: dict, where: str = "run", need_evaluation: bool = True) -> d
 def check_evaluation(spec: Any, where: str) -> dict:
     """Budgets, attacks and scoring options shared by every run of a sweep."""
     spec = _table(spec, where)
-    _known_keys(spec, ("budgets", "attacks", "points", "ece_bins", "target"), where)
+    _known_keys(spec, ("budgets", "attacks", "points", "ece_bins", "target", "certify"), where)
     budgets = _list(spec.get("budgets", _EVALUATION_DEFAULTS["budgets"]), f"{where}.budgets")
     budgets = [_float(b, f"{where}.budgets[{i}]", low=0.0) for i, b in enumerate(budgets)]
     attacks = _list(spec.get("attacks", [{"method": "fgsm"}, {"method": "pgd"}]), f"{where}.attacks")
@@ -172,6 +176,7 @@ def check_evaluation(spec: Any, where: str) -> dict:
         "points": _int(spec.get("points", _EVALUATION_DEFAULTS["points"]), f"{where}.points", low=1),
         "ece_bins": _int(spec.get("ece_bins", _EVALUATION_DEFAULTS["ece_bins"]), f"{where}.ece_bins", low=1),
         "target": target,
+        "certify": _check_certify(spec.get("certify", _CERTIFY_DEFAULT), f"{where}.certify"),
     }
 
 
@@ -282,6 +287,22 @@ def _check_attack(spec: Any, where: str) -> dict:
         raise SweepConfigError(f"{where}.label: must be a string; got {label!r}")
     return {"method": method, "norm": norm, "steps": steps, "samples": samples,
             "objective": objective, "label": label}
+
+
+def _check_certify(spec: Any, where: str) -> dict | None:
+    """``{method, norm}`` of the certificate scored per budget, or None (``false`` / ``"off"``)."""
+    if spec is False or spec is None or spec == "off":
+        return None
+    spec = _table(spec, where)
+    _known_keys(spec, ("method", "norm"), where)
+    method = spec.get("method", _CERTIFY_DEFAULT["method"])
+    if method not in _CERTIFY_METHODS:
+        raise SweepConfigError(f"{where}.method: must be one of {_listing(_CERTIFY_METHODS)}; got {_brief(method)}")
+    norm = spec.get("norm", _CERTIFY_DEFAULT["norm"])
+    norm = str(norm) if isinstance(norm, int) and not isinstance(norm, bool) else norm  # TOML: norm = 2
+    if norm not in _CERTIFY_NORMS:
+        raise SweepConfigError(f"{where}.norm: must be one of {_listing(_CERTIFY_NORMS)}; got {_brief(norm)}")
+    return {"method": method, "norm": norm}
 
 
 def _default_steps(method: str) -> int:
