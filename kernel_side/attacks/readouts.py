@@ -1,12 +1,12 @@
 """Robustness read-outs built on the attacks: the expected gradient and how it fades as
-the attacker averages more posterior samples, the smallest flipping budget per point,
-and how far an attack moves the posterior predictive.
+the attacker averages more posterior samples, the smallest flipping budget per point (an
+upper bound, from :mod:`jostle.attacks.flip_budget`, re-exported here), and how far an attack
+moves the posterior predictive.
 
 The gradient check for masked gradients lives in :mod:`jostle.masking`.
 """
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -14,8 +14,8 @@ import numpy as np
 import torch
 from torch import Tensor
 
-from jostle.attacks.gradient_methods import pgd
-from jostle.attacks.problem import build_problem, compute_threads, norm_of
+from jostle.attacks.flip_budget import MinimalBudget, minimal_budget
+from jostle.attacks.problem import build_problem, compute_threads
 from jostle.common.checks import check_choice, check_int, check_points, check_seed, show_value
 
 __all__ = ["expected_gradient", "member_gradients", "gradient_fade", "GradientFade", "minimal_budget",
@@ -175,66 +175,6 @@ def gradient_fade(ens, x: Any, y: Any = None, sample_counts: Any = None, repeats
     return _pack_fade(counts, rows, full, repeats, members)
 
 
-@dataclass
-class MinimalBudget:
-    """Smallest flipping budget per point, found by bisection over PGD budgets.
-
-    Attributes
-    ----------
-    eps : Tensor of shape (n_points,)
-        Upper end of the final bracket: the smallest budget at which PGD flipped the
-        point (``inf`` where even ``high`` did not; 0 where the label was already wrong).
-    lower : Tensor of shape (n_points,)
-        Lower end of the final bracket (PGD failed there).
-    x_adv : Tensor of shape (n_points, *input_shape)
-        The flipping input PGD found at ``eps`` (``x`` where none was found).
-    adv_probs : Tensor of shape (n_points, n_classes)
-    success : Tensor of shape (n_points,), bool
-    label : Tensor of shape (n_points,)
-    """
-
-    eps: Tensor
-    lower: Tensor
-    x_adv: Tensor
-    adv_probs: Tensor
-    success: Tensor
-    label: Tensor
-    norm: str
-    info: dict = field(default_factory=dict)
-
-    def to_dict(self) -> dict:
-        out = {k: getattr(self, k).detach().cpu().numpy()
-               for k in ("eps", "lower", "x_adv", "adv_probs", "success", "label")}
-        out.update(norm=self.norm, info=dict(self.info))
-        return out
-
-
-def minimal_budget(ens, x: Any, y: Any = None, norm: str = "inf", samples: Any = None, steps: int = 40,
-                   iterations: int = 16, high: float | None = None, random_start: bool = False,
-                   bounds: Any = None, target: Any = None, seed: int = 0, threads: Any = "auto") -> MinimalBudget:
-    """Smallest budget that flips each point's predicted label (bisection, vectorised).
-
-    Every point keeps its own bracket ``[lower, upper]``; each of ``iterations`` rounds runs
-    one PGD over all points at their midpoints. The start bracket's upper end is ``high``,
-    else the diameter of the bounds in the chosen norm (every point of the box is within
-    reach), else it doubles from 1 until PGD flips the point (at most 20 times). PGD starts
-    at ``x`` by default, so that each budget's answer is repeatable; the result assumes
-    success grows with the budget, which holds for affine models and is checked, not
-    guaranteed, elsewhere (:func:`jostle.masking_check`).
-
-    Returns
-    -------
-    MinimalBudget
-        ``eps`` of shape (n_points,), the bracket and the inputs found.
-    """
-    iterations = check_int("iterations", iterations, low=1)
-    steps = check_int("steps", steps, low=1)
-    problem = build_problem(ens, x, y, eps=0.0, norm=norm, objective="expected_loss", samples=samples,
-                            resample=False, target=target, bounds=bounds, seed=seed)
-    with compute_threads(threads, ens, problem.points):
-        return _bisect(problem, high, steps, iterations, random_start)
-
-
 def softmax_robustness(ens, x: Any, x_adv: Any, kind: str = "max", samples: Any = None,
                        reduce: bool = True) -> float | Tensor:
     """How little an attack moved the posterior predictive: 1 means not at all.
@@ -295,55 +235,3 @@ def _pack_fade(counts, rows, full: Tensor, repeats: int, members: int) -> Gradie
         error_mean=np.asarray(rows["error"]), full_norm={k: v.numpy() for k, v in _three_norms(full).items()},
         repeats=repeats, members=members,
     )
-
-
-def _bisect(problem, high, steps: int, iterations: int, random_start: bool) -> MinimalBudget:
-    """Per-point bisection of the flipping budget; brackets start at ``[0, upper]``."""
-    upper = _initial_upper(problem, high)
-    lower = torch.zeros_like(upper)
-    state = {"x_adv": problem.x.clone(), "probs": problem.clean_probs.clone()}
-    already, _ = problem.judge(problem.x)
-    upper = torch.where(already, torch.zeros_like(upper), upper)
-    ok = _attack_at(problem, upper, steps, random_start, state, ~already) | already
-    if high is None and problem.bounds is None:
-        for _ in range(20):
-            if bool(ok.all()):
-                break
-            upper = torch.where(ok, upper, upper * 2)
-            ok = ok | _attack_at(problem, upper, steps, random_start, state, ~ok)
-    for _ in range(iterations):
-        middle = (lower + upper) / 2
-        flipped = _attack_at(problem, middle, steps, random_start, state, ok & ~already)
-        upper = torch.where(flipped, middle, upper)
-        lower = torch.where(ok & ~already & ~flipped, middle, lower)
-    eps = torch.where(ok, upper, torch.full_like(upper, math.inf))
-    return MinimalBudget(eps=eps, lower=lower, x_adv=state["x_adv"], adv_probs=state["probs"], success=ok,
-                         label=problem.label, norm=problem.norm, info={"steps": steps, "iterations": iterations})
-
-
-def _initial_upper(problem, high: float | None) -> Tensor:
-    if high is not None:
-        from jostle.common.checks import check_float
-
-        value = check_float("high", high, low=0.0, low_open=True)
-        return torch.full_like(problem.eps, value)
-    if problem.bounds is None:
-        return torch.ones_like(problem.eps)
-    span = (problem.bounds[1] - problem.bounds[0]).unsqueeze(0)
-    return norm_of(span, problem.norm).expand_as(problem.eps).clone()
-
-
-def _attack_at(problem, eps: Tensor, steps: int, random_start: bool, state: dict, active: Tensor) -> Tensor:
-    """PGD at per-point budgets ``eps``; records flipping inputs of ``active`` points."""
-    if not bool(active.any()):
-        return torch.zeros_like(active)
-    where = active.nonzero().flatten()
-    # One random stream across the bisection's rounds: each round's random starts are new.
-    sub = problem.subset(where, eps=eps[where], generator=problem.generator)
-    result = pgd(sub, steps, random_start=random_start, record_path=False)
-    flipped = torch.zeros_like(active)
-    flipped[where] = result.success
-    chosen = where[result.success]
-    state["x_adv"][chosen] = result.x_adv[result.success]
-    state["probs"][chosen] = result.adv_probs[result.success]
-    return flipped

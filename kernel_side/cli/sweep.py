@@ -128,6 +128,10 @@ def _sweep_show(args: argparse.Namespace) -> int:
         if len(gradients):
             print()
             print(_gradient_table(gradients))
+        certified = _read_certified(args.store)
+        if len(certified):
+            print()
+            print(_certified_table(certified))
     else:
         print("(no finished runs)")
     print(f"{runs['key'].nunique()} finished run(s), {failed} failed" + (" (see --failed)" if failed else ""))
@@ -181,6 +185,23 @@ _SHOW_SHARED = ["dataset", "n_train", "depth", "width", "activation"]
 _SHOW_RUN_COLUMNS = ["key"] + _SHOW_SHARED + ["method", "settings", "seed", "accuracy", "nll", "ece", "saved"]
 
 
+def _certified_table(certified) -> str:
+    """One line per run and certificate; a cell per budget holds 'certified accuracy / members certified'."""
+    import pandas as pd
+
+    certified = certified.assign(
+        key=certified["key"].str[:12], certificate=certified["certificate"] + "-" + certified["norm"],
+        settings=certified["method_settings"].map(_settings_text),
+        cell=[f"{a:.2f} / {m:.2f}" for a, m in zip(certified["certified_accuracy"], certified["members_certified"])])
+    table = certified.pivot_table(index=["key", "method", "settings", "seed", "certificate"], columns="budget",
+                                  values="cell", aggfunc="first", sort=False)
+    table.columns = [f"eps={b:g}" for b in table.columns]
+    with pd.option_context("display.width", 250, "display.max_columns", None, "display.max_rows", None):
+        text = table.reset_index().to_string(index=False)
+    return ("certified: certified accuracy (predictive provably unflipped and correct) / mean share of members "
+            "certified; a certificate holds for the sampled members and the stated ball only\n" + text)
+
+
 def _settings_text(settings: str) -> str:
     values = json.loads(settings) if settings else {}
     return " ".join(f"{k}={v}" for k, v in sorted(values.items())) or "-"
@@ -229,6 +250,13 @@ def _read_results(path: str):
         if not issubclass(w.category, OldStoreWarning):
             warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
     return frame, gradients, notes
+
+
+def _read_certified(path: str):
+    from jostle.sweeps.results_db import RunStore
+
+    with RunStore(path, readonly=True) as db:
+        return db.certified()
 
 
 def _connect(address: str, timeout: float):

@@ -29,13 +29,14 @@ from jostle import datasets as _datasets
 from jostle import metrics as _metrics
 from jostle.attacks.readouts import softmax_robustness
 from jostle.attacks.run import attack as run_attack
+from jostle.certify.certificate import certify
 from jostle.common.threads import torch_threads
 from jostle.files.posterior_file import jsonable
 from jostle.posterior.architectures import mlp
-from jostle.sweeps.spec import fit_function, gradient_sample_counts, run_key
+from jostle.sweeps.spec import CERTIFY_DEFAULT, fit_function, gradient_sample_counts, run_key
 
-__all__ = ["execute_run", "fit_run", "evaluate", "gradient_readout", "load_run_data", "build_network",
-           "software_versions", "GRADIENT_STATISTICS"]
+__all__ = ["execute_run", "fit_run", "evaluate", "gradient_readout", "certified_scores", "load_run_data",
+           "build_network", "software_versions", "GRADIENT_STATISTICS"]
 
 #: the read-out's statistics per sample count, in the store's column order
 GRADIENT_STATISTICS = ("l2_mean", "l2_median", "l2_p90", "linf_mean", "linf_median", "linf_p90", "abs_mean")
@@ -99,14 +100,18 @@ def fit_run(config: dict):
 
 def evaluate(ens, data, evaluation: dict, seed: int = 0) -> dict:
     """Test accuracy, NLL and ECE, then for each attack and budget the success rate and
-    softmax robustness on the first ``evaluation["points"]`` test points.
+    softmax robustness on the first ``evaluation["points"]`` test points, and for each budget
+    the certified accuracy of the same points (:func:`certified_scores`).
 
     Returns
     -------
     dict
-        ``accuracy``, ``nll``, ``ece``, ``members`` and ``attacks``: a list of dicts with
+        ``accuracy``, ``nll``, ``ece``, ``members``, ``attacks``: a list of dicts with
         ``attack`` (label), ``method``, ``norm``, ``steps``, ``samples``, ``budget``,
-        ``success_rate`` and ``robustness``.
+        ``success_rate`` and ``robustness``, and ``certified``: a list of dicts with
+        ``budget``, ``norm``, ``method``, ``certified_accuracy`` and ``members_certified``
+        (empty with ``evaluation["certify"]`` None, or for a template certify does not support,
+        which the run records as a warning).
     """
     # float64 and renormalised: float32 rows miss 1 by ~1e-7, which scikit-learn's log loss flags
     probs = ens.predict(data.x_test).probs.double()
@@ -134,6 +139,7 @@ def evaluate(ens, data, evaluation: dict, seed: int = 0) -> dict:
                 "robustness": float(softmax_robustness(ens, x, adv.x_adv)),
             })
     scores["attacks"] = rows
+    scores["certified"] = certified_scores(ens, x, data.y_test[:points], evaluation)
     tick = time.perf_counter()
     scores["gradients"] = gradient_readout(ens, x, y, gradient_sample_counts(evaluation, len(ens)), seed=seed)
     scores["gradient_seconds"] = time.perf_counter() - tick
@@ -182,6 +188,33 @@ def gradient_readout(ens, x, y, sample_counts, seed: int = 0) -> list[dict]:
                                   float(mean.abs().mean())))
         rows.append(_gradient_row(count, "member", member_l2[:count], member_linf[:count],
                                   float(member_abs[:count].mean())))
+    return rows
+
+
+def certified_scores(ens, x, y, evaluation: dict) -> list[dict]:
+    """Per budget: the share of points whose posterior predictive is certified and correct.
+
+    ``certified_accuracy`` is the share of points where :func:`jostle.certify` proves that the
+    predictive keeps its label over the ball (``evaluation["certify"]``'s norm, intersected with
+    the data bounds) and that label is the true one; ``members_certified`` is the mean over
+    points of the share of members certified (each keeps its own label). A certified point is
+    one no attack can flip, so the certified accuracy never exceeds the accuracy under any
+    attack in that norm and budget.
+    """
+    settings = evaluation.get("certify", CERTIFY_DEFAULT)
+    if not settings:  # ``certify = false`` in the sweep file
+        return []
+    rows = []
+    for budget in evaluation["budgets"]:
+        try:
+            cert = certify(ens, x, eps=budget, norm=settings["norm"], method=settings["method"], threads=None)
+        except ValueError as err:  # e.g. a GELU network: recorded with the run, the attacks still count
+            warnings.warn(f"certified accuracy not computed: {err}", UserWarning, stacklevel=2)
+            return []
+        correct = cert.predictive & (cert.label == y.to(cert.label.device))
+        rows.append({"budget": budget, "norm": settings["norm"], "method": settings["method"],
+                     "certified_accuracy": float(correct.double().mean()),
+                     "members_certified": float(cert.share.double().mean())})
     return rows
 
 

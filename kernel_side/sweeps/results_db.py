@@ -6,7 +6,8 @@ error and traceback of a failed run, and the path of its saved ensemble if any. 
 ``attack_results`` holds one row per run x attack x budget, and ``gradient_results`` one row
 per run x sample count x ``which`` (``expected`` or ``member``) of the expected-gradient
 read-out (schema version 2; a version-1 store opens with a warning that its runs carry no
-gradient read-out, and one from a newer jostle is refused). A failed run that is retried
+gradient read-out, and one from a newer jostle is refused); table ``certified_results`` holds one
+row per run x budget x certificate (norm and method). A failed run that is retried
 replaces its row, so a key never appears twice. Only the process that runs the sweep
 writes; readers may look at the file at any time (WAL lets them).
 """
@@ -58,6 +59,12 @@ CREATE TABLE IF NOT EXISTS gradient_results (
     l2_mean REAL, l2_median REAL, l2_p90 REAL, linf_mean REAL, linf_median REAL, linf_p90 REAL,
     abs_mean REAL,
     PRIMARY KEY (key, samples, which)
+);
+CREATE TABLE IF NOT EXISTS certified_results (
+    key TEXT NOT NULL REFERENCES runs (key) ON DELETE CASCADE,
+    budget REAL NOT NULL, norm TEXT NOT NULL, method TEXT NOT NULL,
+    certified_accuracy REAL, members_certified REAL,
+    PRIMARY KEY (key, budget, norm, method)
 );
 """
 _CONFIG_COLUMNS = ["dataset", "n_train", "depth", "width", "activation", "method", "method_settings",
@@ -148,6 +155,7 @@ class RunStore:
         with self._transaction():
             self._db.execute("DELETE FROM attack_results WHERE key = ?", (result["key"],))
             self._db.execute("DELETE FROM gradient_results WHERE key = ?", (result["key"],))
+            self._db.execute("DELETE FROM certified_results WHERE key = ?", (result["key"],))
             self._db.execute(
                 f"INSERT INTO runs ({columns}) VALUES ({marks}) ON CONFLICT (key) DO UPDATE SET "
                 f"{updates}, attempts = runs.attempts + 1", row,
@@ -162,6 +170,12 @@ class RunStore:
                 self._db.execute(
                     f"INSERT INTO gradient_results VALUES (?, ?, ?{', ?' * len(GRADIENT_STATISTICS)})",
                     (result["key"], g["samples"], g["which"], *(g[c] for c in GRADIENT_STATISTICS)),
+                )
+            for c in (metrics or {}).get("certified", []):
+                self._db.execute(
+                    "INSERT INTO certified_results VALUES (?, ?, ?, ?, ?, ?)",
+                    (result["key"], c["budget"], c["norm"], c["method"], c["certified_accuracy"],
+                     c["members_certified"]),
                 )
 
     # ------------------------------------------------------------------ reading
@@ -198,7 +212,9 @@ class RunStore:
         ``success_rate[<attack>@<budget>]`` and ``robustness[<attack>@<budget>]``, and the
         gradient read-out (:meth:`gradients`) as ``grad_<statistic>[<which>@<S>]``, e.g.
         ``grad_l2_median[expected@16]``, its S = members row also as ``[expected@all]``.
-        Failed runs appear (with NaN metrics and their ``error``) only when asked for.
+        ``certified_accuracy[<method>-<norm>@<budget>]`` where the run certified (see
+        :meth:`certified`). Failed runs appear (with NaN metrics and their ``error``) only
+        when asked for.
         """
         import pandas as pd
 
@@ -214,7 +230,7 @@ class RunStore:
         frame = pd.DataFrame(long_rows, columns=columns)
         if not wide:
             return frame
-        return _widen_gradients(_widen(frame, base), self.gradients(keys))
+        return _widen_certified(_widen_gradients(_widen(frame, base), self.gradients(keys)), self.certified(keys))
 
     def gradients(self, keys: Iterable[str] | None = None):
         """The expected-gradient read-out as a long pandas DataFrame.
@@ -242,6 +258,30 @@ class RunStore:
         rows = [{**_config_columns(run["config"]), **row, "members": run["members"]}
                 for key, run in runs.items() for row in stored.get(key, [])]  # runs in recorded order
         return pd.DataFrame(rows, columns=columns)
+
+    def certified(self, keys: Iterable[str] | None = None):
+        """Certified accuracy per run and budget as a pandas DataFrame (long form).
+
+        One row per run x budget x certificate from table ``certified_results``, beside the
+        run's configuration columns (``method`` is the posterior method, as in
+        :meth:`results`): ``key``, ``budget``, ``norm``, ``certificate`` (the certifying
+        method, ``crown`` or ``ibp``), ``certified_accuracy`` (the share of the evaluation
+        points whose posterior predictive is certified and correct) and ``members_certified``
+        (the mean share of members certified). A certificate holds for the sampled members
+        and the stated ball only.
+        """
+        import pandas as pd
+
+        names = ["key", "budget", "norm", "certificate", "certified_accuracy", "members_certified"]
+        if not self._has_table("certified_results"):  # a version-1 store opened read-only
+            return pd.DataFrame([], columns=_CONFIG_COLUMNS + names)
+        configs = {r["key"]: _config_columns(r["config"]) for r in self.runs(keys)}
+        cursor = self._db.execute("SELECT key, budget, norm, method AS certificate, certified_accuracy, "
+                                  "members_certified FROM certified_results ORDER BY key, method, norm, budget")
+        names = [d[0] for d in cursor.description]
+        rows = [{**configs[values[0]], **dict(zip(names, values))} for values in cursor.fetchall()
+                if values[0] in configs]
+        return pd.DataFrame(rows, columns=_CONFIG_COLUMNS + names)
 
     def ensemble_file(self, key: str) -> Path | None:
         """Absolute path of the run's saved ensemble, or None when it was not saved."""
@@ -355,3 +395,14 @@ def _widen(frame, base: list[dict]):
     )
     pivot.columns = [f"{metric}[{label}]" for metric, label in pivot.columns]
     return runs.merge(pivot, left_on="key", right_index=True, how="left")
+
+
+def _widen_certified(wide, certified):
+    """Add one ``certified_accuracy[<method>-<norm>@<budget>]`` column per certificate and budget."""
+    if certified.empty:
+        return wide
+    label = certified["certificate"] + "-" + certified["norm"] + "@" + certified["budget"].map(lambda b: f"{b:g}")
+    pivot = certified.assign(label=label).pivot_table(index="key", columns="label", values="certified_accuracy",
+                                                      aggfunc="first", sort=False)
+    pivot.columns = [f"certified_accuracy[{c}]" for c in pivot.columns]
+    return wide.merge(pivot, left_on="key", right_index=True, how="left")

@@ -61,6 +61,11 @@ _EVALUATION_DEFAULTS = {"budgets": [0.1], "points": 100, "ece_bins": 15, "target
 #: sample counts of the expected-gradient read-out when the sweep does not say; "all" is every member.
 #: Left out of a run's configuration while it is the default, so run keys from before the read-out hold.
 DEFAULT_GRADIENT_SAMPLES = (1, 4, 16, 64, "all")
+#: certified accuracy per budget (jostle.certify) unless the evaluation says ``certify = false``;
+#: like the gradient read-out, left out of a run's configuration while it is the default.
+CERTIFY_DEFAULT = {"method": "crown", "norm": "inf"}
+_CERTIFY_METHODS = ("crown", "ibp")
+_CERTIFY_NORMS = ("inf", "2")
 
 
 class SweepConfigError(ValueError):
@@ -158,7 +163,7 @@ def check_run(spec: dict, where: str = "run", need_evaluation: bool = True) -> d
 def check_evaluation(spec: Any, where: str) -> dict:
     """Budgets, attacks and scoring options shared by every run of a sweep."""
     spec = _table(spec, where)
-    _known_keys(spec, ("budgets", "attacks", "points", "ece_bins", "target", "gradient_samples"), where)
+    _known_keys(spec, ("budgets", "attacks", "points", "ece_bins", "target", "gradient_samples", "certify"), where)
     budgets = _list(spec.get("budgets", _EVALUATION_DEFAULTS["budgets"]), f"{where}.budgets")
     budgets = [_float(b, f"{where}.budgets[{i}]", low=0.0) for i, b in enumerate(budgets)]
     attacks = _list(spec.get("attacks", [{"method": "fgsm"}, {"method": "pgd"}]), f"{where}.attacks")
@@ -177,6 +182,9 @@ def check_evaluation(spec: Any, where: str) -> dict:
         "ece_bins": _int(spec.get("ece_bins", _EVALUATION_DEFAULTS["ece_bins"]), f"{where}.ece_bins", low=1),
         "target": target,
     }
+    certificate = _check_certify(spec.get("certify", CERTIFY_DEFAULT), f"{where}.certify")
+    if certificate != CERTIFY_DEFAULT:
+        checked["certify"] = certificate if certificate is not None else False
     if "gradient_samples" in spec:
         samples = _check_gradient_samples(spec["gradient_samples"], f"{where}.gradient_samples")
         if samples != list(DEFAULT_GRADIENT_SAMPLES):
@@ -315,6 +323,22 @@ def _check_gradient_samples(value: Any, where: str) -> list:
             raise SweepConfigError(f"{where}[{i}]: {s!r} repeats an earlier entry")
         out.append(s)
     return out
+
+
+def _check_certify(spec: Any, where: str) -> dict | None:
+    """``{method, norm}`` of the certificate scored per budget, or None (``false`` / ``"off"``)."""
+    if spec is False or spec is None or spec == "off":
+        return None
+    spec = _table(spec, where)
+    _known_keys(spec, ("method", "norm"), where)
+    method = spec.get("method", CERTIFY_DEFAULT["method"])
+    if method not in _CERTIFY_METHODS:
+        raise SweepConfigError(f"{where}.method: must be one of {_listing(_CERTIFY_METHODS)}; got {_brief(method)}")
+    norm = spec.get("norm", CERTIFY_DEFAULT["norm"])
+    norm = str(norm) if isinstance(norm, int) and not isinstance(norm, bool) else norm  # TOML: norm = 2
+    if norm not in _CERTIFY_NORMS:
+        raise SweepConfigError(f"{where}.norm: must be one of {_listing(_CERTIFY_NORMS)}; got {_brief(norm)}")
+    return {"method": method, "norm": norm}
 
 
 def _default_steps(method: str) -> int:

@@ -190,6 +190,11 @@ class Sweep:
         with RunStore(self._store_path(store), readonly=True) as db:
             return db.gradients(self.keys())
 
+    def certified(self, store: str | Path | None = None):
+        """This sweep's certified accuracy per run and budget (see :meth:`RunStore.certified`)."""
+        with RunStore(self._store_path(store), readonly=True) as db:
+            return db.certified(self.keys())
+
     def __len__(self) -> int:
         return len(self.runs())
 

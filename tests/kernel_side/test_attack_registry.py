@@ -111,3 +111,23 @@ def test_register_attack_refuses_bad_records(kwargs, message):
     with pytest.raises(ValueError, match=message):
         jostle.register_attack(**record)
     assert "fresh" not in attack_names()
+
+
+def test_a_method_with_one_norm_uses_it_when_norm_is_not_given(ens):
+    # The default comes from the method's record, not from a special case for cw: an attack
+    # registered with L2 alone runs in L2 without norm=, and refuses L-inf by name.
+    from tests.conftest import random_sign
+    jostle.register_attack("sphere_only", norms=("2",), objectives=("margin",), gradient_free=True,
+                           description="a random corner projected onto the L2 ball", function=random_sign)
+    try:
+        x = torch.tensor([[0.2, -0.4], [1.0, 0.5]])
+        adv = jostle.attack(ens, x, method="sphere_only", eps=0.3)
+        assert adv.norm == "2"
+        # L2 projection: |delta|_2 <= eps up to the projection's own rounding guard (problem._tighten)
+        assert bool(((adv.x_adv - x).norm(dim=1) <= 0.3).all())
+        with pytest.raises(ValueError, match=r"norm must be one of \['2'\] for method 'sphere_only'; got 'inf'"):
+            jostle.attack(ens, x, method="sphere_only", norm="inf")
+    finally:
+        jostle.unregister_attack("sphere_only")
+    cw = jostle.attack(ens, x, method="cw", eps=0.5, steps=3, search_steps=2)
+    assert cw.norm == "2" and bool((cw.distance <= 0.5).all())

@@ -163,8 +163,11 @@ def test_trained_moons_success_grows_with_the_budget(moons_ensemble):
     rates = [jostle.attack(ens, x, y, eps=eps, random_start=False).success_rate for eps in (0.05, 0.1, 0.2, 0.4, 0.8)]
     assert rates == sorted(rates) and rates[-1] > rates[0]
     found = jostle.minimal_budget(ens, x[:20], y[:20], iterations=10)
-    at_budget = jostle.attack(ens, x[:20], y[:20], eps=found.eps.clamp_max(10.0) * 1.001, random_start=False)
-    assert bool(at_budget.success[found.success].all())
+    # the reported budget is an upper bound because it comes with a witness: x_adv lies within
+    # eps of x (the same float32 norm that produced eps) and the ensemble's label there differs
+    assert bool(found.success.all())
+    assert bool((ens.predict(found.x_adv).label != y[:20]).all())
+    assert bool(((found.x_adv - x[:20]).abs().amax(1) <= found.eps).all())
 
 
 class _Quantised(nn.Module):
