@@ -112,7 +112,7 @@ def _sweep_run(args: argparse.Namespace) -> int:
 
 
 def _sweep_show(args: argparse.Namespace) -> int:
-    frame, gradients, notes = _read_results(args.store)
+    frame, gradients, certified, notes = _read_results(args.store)
     for note in notes:
         print(f"note: {note}")
     if args.failed:
@@ -128,7 +128,6 @@ def _sweep_show(args: argparse.Namespace) -> int:
         if len(gradients):
             print()
             print(_gradient_table(gradients))
-        certified = _read_certified(args.store)
         if len(certified):
             print()
             print(_certified_table(certified))
@@ -233,7 +232,7 @@ def _inspect(args: argparse.Namespace) -> int:
 
 
 def _read_results(path: str):
-    """Long results, the gradient read-out and the store's notices (an old schema) as text."""
+    """Long results, the gradient read-out, certified accuracy and the store's notices (an old schema)."""
     import warnings
 
     from jostle.sweeps.results_db import OldStoreWarning, RunStore, StoreError
@@ -242,21 +241,14 @@ def _read_results(path: str):
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always", OldStoreWarning)
             with RunStore(path, readonly=True) as db:
-                frame, gradients = db.results(include_failed=True), db.gradients()
+                frame, gradients, certified = db.results(include_failed=True), db.gradients(), db.certified()
     except (FileNotFoundError, StoreError) as err:
         raise CommandError(str(err)) from None
     notes = [str(w.message) for w in caught if issubclass(w.category, OldStoreWarning)]
     for w in caught:
         if not issubclass(w.category, OldStoreWarning):
             warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
-    return frame, gradients, notes
-
-
-def _read_certified(path: str):
-    from jostle.sweeps.results_db import RunStore
-
-    with RunStore(path, readonly=True) as db:
-        return db.certified()
+    return frame, gradients, certified, notes
 
 
 def _connect(address: str, timeout: float):
