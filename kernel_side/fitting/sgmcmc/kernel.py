@@ -9,10 +9,11 @@ beta-hat = 0), for a potential U = -log density (possibly a minibatch estimate):
 with learning rate ``eta``, friction ``a`` in (0, 1], temperature ``T`` and a fixed
 diagonal preconditioner ``M^-1``. Here ``v = sqrt(eta) p`` (Chen et al.'s substitution), and
 when the schedule changes ``eta`` the velocity is rescaled by ``sqrt(eta_new / eta_old)`` so the
-momentum ``p`` is continuous: the schedule then only reparameterises time. Without it a
-decaying step inflates the position variance (the adiabatic invariant of the oscillation grows
-the amplitude as the step falls); measured +10% on the small scales of Neal's Gaussian. With ``a = 1`` the momentum is forgotten at every step
-and the update is SGLD (Welling & Teh 2011, eq. 4, with their epsilon = 2 eta).
+momentum ``p`` is continuous: the schedule then only reparameterises time. Without it, a
+lightly damped chain under a decaying step gains position variance (from memory: the
+oscillation's adiabatic invariant E / omega grows its amplitude as the step falls); measured
++10% on the small scales of Neal's Gaussian. With ``a = 1`` the momentum is forgotten at
+every step and the update is SGLD (Welling & Teh 2011, eq. 4, with their epsilon = 2 eta).
 
 The step size follows the cyclical cosine schedule of Zhang et al. (2020, "Cyclical
 stochastic gradient MCMC for Bayesian deep learning", eq. 1):
