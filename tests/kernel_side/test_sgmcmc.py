@@ -12,6 +12,8 @@ from hypothesis import strategies as st
 
 import jostle
 from jostle.fitting.hmc.diagnostics import ConvergenceWarning
+from jostle.fitting.hmc.network_density import NetworkPosterior, map_start
+from jostle.fitting.sgmcmc.fit import MinibatchDensity
 from jostle.fitting.sgmcmc.kernel import cyclical_step_size, sampling_steps
 from tests.kernel_side.references.sghmc_stationary import stationary_covariance, stationary_variance
 
@@ -231,3 +233,26 @@ def test_bad_arguments_name_parameter_rule_and_value(case, data, leak):
         jostle.sample_sgmcmc(lambda q: -(q ** 2).sum(-1), torch.zeros(2, 2), **{name: value})
     with pytest.raises(ValueError, match=rf"^{message}; got "):
         jostle.fit_sgmcmc(jostle.mlp(2, 2, hidden=(4,)), leak, progress=False, **{name: value})
+
+
+def test_minibatches_cover_each_epoch_once_and_average_to_the_full_density(leak):
+    # Welling & Teh (2011), eq. 4: the minibatch sum scaled by N / n is unbiased; over one epoch
+    # without replacement (200 points, batches of 40) the batches' mean is the full sum exactly
+    # up to float32 rounding of 200-term sums (tolerance 1e-4 relative).
+    posterior = NetworkPosterior(jostle.mlp(2, 2, hidden=(8,)), leak, 1.0, torch.device("cpu"))
+    density = MinibatchDensity(posterior, 40, seed=0)
+    flat = map_start(posterior, 3, 0, 1.0, 0)
+    seen, values = [], []
+    for _ in range(5):
+        batch = density.next_batch()
+        seen.append(batch)
+        density.order = torch.cat([batch, density.order])  # put it back for the call below
+        values.append(density(flat))
+    assert sorted(torch.cat(seen).tolist()) == list(range(200))
+    full = posterior(flat)
+    assert torch.allclose(torch.stack(values).mean(0), full, rtol=1e-4)
+
+
+def test_device_is_checked(leak):
+    with pytest.raises(ValueError, match=r"device must name a torch device"):
+        jostle.fit_sgmcmc(jostle.mlp(2, 2, hidden=(4,)), leak, device="nowhere", progress=False)

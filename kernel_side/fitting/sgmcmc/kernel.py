@@ -189,7 +189,7 @@ def _run(log_density: LogDensity, initial: Tensor, inverse_mass: Tensor, setting
     friction = 1.0 if settings["method"] == "sgld" else settings["friction"]
     length, cycles = settings["steps_per_cycle"], settings["cycles"]
     keep = set(sampling_steps(length, settings["exploration"], settings["draws_per_cycle"]))
-    first_sampling = math.ceil(settings["exploration"] * length)
+    first = math.ceil(settings["exploration"] * length)
     state = evaluate(log_density, initial)
     if not bool(torch.isfinite(state.log_density).all()):
         raise ValueError("log_density must be finite at initial; got NaN or inf for at least one chain")
@@ -202,22 +202,10 @@ def _run(log_density: LogDensity, initial: Tensor, inverse_mass: Tensor, setting
         try:
             for step in range(cycles * length):
                 eta, previous = cyclical_step_size(step, length, settings["step_size"]), eta
-                noisy = step % length >= first_sampling
-                # v = sqrt(eta) p: keep the momentum p continuous when the step changes.
-                velocity = velocity * math.sqrt(eta / previous)
-                velocity = (1.0 - friction) * velocity + eta * inverse_mass * grad
-                if noisy:
-                    scale = math.sqrt(2.0 * friction * eta * settings["temperature"])
-                    noise = torch.randn(position.shape, generator=generator, dtype=position.dtype,
-                                        device=position.device)
-                    velocity = velocity + scale * inverse_mass.sqrt() * noise
-                proposed = evaluate(log_density, position + velocity)
-                bad = ~torch.isfinite(proposed.log_density)
-                if bool(bad.any()):
-                    rejected += bad.long()
-                    velocity = torch.where(bad[:, None], torch.zeros_like(velocity), velocity)
-                position = torch.where(bad[:, None], position, proposed.position)
-                grad = torch.where(bad[:, None], grad, proposed.grad)
+                noise = math.sqrt(2.0 * friction * eta * settings["temperature"]) if step % length >= first else 0.0
+                position, velocity, grad, bad = _step(log_density, position, velocity, grad, (eta, previous),
+                                                      friction, noise, inverse_mass, generator)
+                rejected += bad.long()
                 taken += 1
                 if step % length in keep:
                     samples.append(position)
@@ -229,3 +217,20 @@ def _run(log_density: LogDensity, initial: Tensor, inverse_mass: Tensor, setting
     stacked = torch.stack(samples, dim=1) if samples else position.new_zeros(position.shape[0], 0, position.shape[1])
     return SGMCMCDraws(stacked, torch.tensor(step_sizes, dtype=torch.float64), rejected.cpu(), taken,
                        time.perf_counter() - started, interrupted)
+
+
+def _step(log_density: LogDensity, position: Tensor, velocity: Tensor, grad: Tensor, steps: tuple[float, float],
+          friction: float, noise: float, inverse_mass: Tensor, generator: torch.Generator):
+    """One update; a chain whose new density or gradient is not finite stays where it was."""
+    eta, previous = steps
+    # v = sqrt(eta) p: keep the momentum p continuous when the step changes.
+    velocity = velocity * math.sqrt(eta / previous)
+    velocity = (1.0 - friction) * velocity + eta * inverse_mass * grad
+    if noise:
+        draw = torch.randn(position.shape, generator=generator, dtype=position.dtype, device=position.device)
+        velocity = velocity + noise * inverse_mass.sqrt() * draw
+    proposed = evaluate(log_density, position + velocity)
+    bad = ~torch.isfinite(proposed.log_density)
+    keep = bad[:, None]
+    velocity = torch.where(keep, torch.zeros_like(velocity), velocity)
+    return (torch.where(keep, position, proposed.position), velocity, torch.where(keep, grad, proposed.grad), bad)
