@@ -19,6 +19,7 @@ BENCHMARKS = [
     "bench_widgets",
     "bench_browser",
     "bench_gradient_readout",
+    "bench_sgmcmc",
 ]
 
 

@@ -23,6 +23,8 @@ from jostle.fitting.hmc.fit import fit_hmc
 from jostle.fitting.hmc.sampler import HMCDraws, HMCState, sample_hmc
 from jostle.fitting.laplace import LastLayerLaplace, fit_laplace
 from jostle.fitting.point_estimates import fit_deep_ensemble, fit_map
+from jostle.fitting.sgmcmc.fit import fit_sgmcmc
+from jostle.fitting.sgmcmc.kernel import SGMCMCDraws, sample_sgmcmc
 from jostle.fitting.variational import VariationalPosterior, fit_vi
 from jostle.posterior.architectures import build_architecture, init_parameters, mlp, register_architecture
 from jostle.posterior.demo_posteriors import DEMO_POSTERIORS, demo_posterior
@@ -88,4 +90,7 @@ __all__ = [
     "GradientPictures",
     "gradient_pictures",
     "dataset_gradients",
+    "fit_sgmcmc",
+    "sample_sgmcmc",
+    "SGMCMCDraws",
 ]

@@ -27,6 +27,7 @@ from jostle.fitting.dropout import fit_dropout
 from jostle.fitting.hmc.fit import fit_hmc
 from jostle.fitting.laplace import fit_laplace
 from jostle.fitting.point_estimates import fit_deep_ensemble, fit_map
+from jostle.fitting.sgmcmc.fit import fit_sgmcmc
 from jostle.fitting.variational import fit_vi
 from jostle.posterior.architectures import ACTIVATIONS
 
@@ -44,6 +45,7 @@ FITS = {
     "vi": fit_vi,
     "laplace": fit_laplace,
     "hmc": fit_hmc,
+    "sgmcmc": fit_sgmcmc,
 }
 #: posterior method -> the name of that function (as exported by jostle)
 METHODS: dict[str, str] = {name: fit.__name__ for name, fit in FITS.items()}

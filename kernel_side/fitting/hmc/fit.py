@@ -115,6 +115,20 @@ def fit_hmc(
     ConvergenceWarning
         When the train log-likelihood's R-hat or the 95th percentile of the test points'
         R-hat exceeds 1.01, bulk ESS is under 100 per chain, or transitions diverged.
+
+    Notes
+    -----
+    Image-size data. Every leapfrog step evaluates the whole training set, so the cost is
+    chains x (warmup + draws_per_chain) x leapfrog steps full-batch gradients. Recommended
+    for 28x28 images and a small MLP: ``chains=2, warmup=150, draws_per_chain=100,
+    max_steps=32, samples=50``. Measured on 500 of ``jostle.datasets.meter_cards()`` with
+    ``jostle.mlp(784, 10, hidden=(32,))``, one thread on a shared 2-core CPU: 55 s, test
+    accuracy 0.926, acceptance 0.91 at step size 0.023 (every iteration used the 32 steps);
+    the R-hat / ESS checks still warn at this length (train log-likelihood R-hat 1.015).
+    ``chains=4, warmup=200, draws_per_chain=200, max_steps=32, samples=100``: 238 s,
+    accuracy 0.926, train log-likelihood R-hat within 1.01 but the test-probability R-hat
+    (95th percentile 1.05) and ESS checks still warn.
+    For more data than this, :func:`jostle.fit_sgmcmc` samples from minibatches.
     """
     started = time.perf_counter()
     settings = _check_arguments(module, data, samples, chains, warmup, draws_per_chain, prior_std,
