@@ -87,3 +87,20 @@ def test_no_private_name_is_imported_across_rooms(path):
             assert not private, f"{path.name} imports private {private} from {node.module}"
             assert not any(part.startswith("_") for part in node.module.split(".")[1:]), (
                 f"{path.name} imports the private module {node.module}")
+
+
+def test_every_package_is_listed_for_the_wheel():
+    # The wheel ships only the packages pyproject.toml lists (setuptools with package-dir remaps
+    # cannot discover them); a package left out imports in an editable install and fails in a wheel.
+    try:
+        import tomllib
+    except ModuleNotFoundError:  # Python 3.10
+        import tomli as tomllib
+
+    root = KERNEL.parent
+    listed = set(tomllib.loads((root / "pyproject.toml").read_text())["tool"]["setuptools"]["packages"])
+    found = {"jostle." + ".".join(p.parent.relative_to(KERNEL).parts) if p.parent != KERNEL else "jostle"
+             for p in KERNEL.rglob("__init__.py") if "__pycache__" not in p.parts}
+    found |= {"jostle.widgets." + ".".join(p.parent.relative_to(root / "widgets").parts)
+              for p in (root / "widgets").rglob("__init__.py") if p.parent != root / "widgets"}
+    assert found - listed == set(), f"packages missing from pyproject.toml: {sorted(found - listed)}"
