@@ -1,5 +1,5 @@
 // jostle canvas helpers, placed ahead of the canvas views' modules when they are served
-// (widgets/_assets.py: canvas_module): binary wire arrays and theme colours.
+// (widgets/_assets.py: canvas_module): binary wire arrays, theme colours and eps-balls.
 
 /** @typedef {{shape: number[], dtype: string, buffer: DataView}} WireArray */
 
@@ -26,4 +26,12 @@ function rgb(colour) {
   }
   const parts = value.match(/[\d.]+/g) || [];
   return parts.length >= 3 ? parts.slice(0, 3).map(Number) : [136, 136, 136];
+}
+
+/** Draw a ball of radius eps (L-inf: square, L2: disc) around the centre. */
+function ball(ctx, px, py, centre, eps, sx, sy, norm) {
+  ctx.beginPath();
+  if (norm === "2") ctx.ellipse(px(centre[0]), py(centre[1]), eps * sx, eps * sy, 0, 0, 2 * Math.PI);
+  else ctx.rect(px(centre[0] - eps), py(centre[1] + eps), 2 * eps * sx, 2 * eps * sy);
+  ctx.stroke();
 }
