@@ -112,8 +112,9 @@ function draw(model, canvas, root, state) {
   }
   const proved = model.get("certified_radius"), flip = model.get("flip_budget");
   if (centre && centre.length === 2 && proved >= 0) {
-    ctx.strokeStyle = colours.certified; ctx.lineWidth = 2.5;
-    ball(ctx, px, py, centre, proved, sx, sy, model.get("ball_norm"));
+    for (const [style, width] of [[colours.surface, 5], [colours.certified, 2.5]]) { // halo: visible on the blue layer
+      ctx.strokeStyle = style; ctx.lineWidth = width; ball(ctx, px, py, centre, proved, sx, sy, model.get("ball_norm"));
+    }
   }
   if (centre && centre.length === 2 && flip >= 0) {
     ctx.strokeStyle = colours.attack; ctx.lineWidth = 1; ctx.setLineDash([1, 3]);
@@ -232,8 +233,7 @@ function render({ model, el }) {
   const onBar = () => { buildBar(model, bar, select); buildRadiusLegend(model, radiusLegend); };
   const onRadius = () => { buildRadiusLegend(model, radiusLegend); state.layerDirty = true; redraw(); };
   model.on("change:background change:layer_values change:layer_shown change:layer_max", onLayer);
-  model.on("change:point", onPoint);
-  model.on("change:radius_layer change:radius_layer_max change:radius_layer_note", onRadius);
+  model.on("change:point", onPoint); model.on("change:radius_layer change:radius_layer_max change:radius_layer_note", onRadius);
   model.on("change:classes change:layer_labels change:layer", onBar); model.on("change:layer", onLayer);
   for (const k of VIEW_KEYS) model.on(`change:${k}`, redraw);
   const resize = new ResizeObserver(redraw); resize.observe(root);

@@ -6,7 +6,7 @@ import pytest
 import torch
 
 import jostle
-from jostle.live.certified_map import map_levels, radius_map, radius_map_levels
+from jostle.live.certified_map import MAP_ITERATIONS, map_levels, radius_map, radius_map_levels
 
 
 def _ensemble(activation: str) -> jostle.Ensemble:
@@ -25,11 +25,11 @@ def test_each_cell_equals_certified_radius_at_that_point(method, norm, activatio
     for j, y in enumerate(np.linspace(lo[1], hi[1], 5)):
         for i, x in enumerate(np.linspace(lo[0], hi[0], 5)):
             alone = jostle.certified_radius(ens[:3], torch.tensor([[x, y]], dtype=ens.dtype), norm=norm,
-                                            method=method, bounds=box, iterations=12)
-            # One point against 25 in a batch changes float reduction order; a verdict flipped by
-            # rounding at a midpoint moves the end by at most the final bracket (top / 2**12), so two of them.
+                                            method=method, bounds=box, iterations=MAP_ITERATIONS)
+            # One point against 25 in a batch changes float reduction order; a verdict flipped by rounding
+            # at a midpoint moves the end by at most the final bracket (top / 2**MAP_ITERATIONS): two of them.
             assert found.radius[j, i] == pytest.approx(float(alone.eps[0]), abs=2 * found.resolution)
-    assert found.resolution == pytest.approx(found.top / 2**12)
+    assert found.resolution == pytest.approx(found.top / 2**MAP_ITERATIONS)
     assert (found.radius >= 0).all() and (found.radius <= found.top).all()
 
 
