@@ -72,7 +72,7 @@ class Explorer(LiveBox):
                                "steps": steps, "objective": objective, "layer": layer, "grid": grid,
                                "boundaries": boundaries, "seed": seed},
                          budget_max=round(0.5 * float(np.min(hi - lo)), 3), n_features=2)
-        self._fixed = {"grid": grid, "boundaries": boundaries, "seed": seed}
+        self._fixed = {"grid": grid, "boundaries": boundaries, "seed": seed, "certificate": "crown"}
         self._map = ExplorerMap(bounds=[lo[0], hi[0], lo[1], hi[1]], classes=[str(c) for c in data.classes],
                                 train_points=to_wire(data.x_train.numpy()),
                                 train_labels=to_wire(data.y_train.numpy(), "uint8"))
@@ -85,6 +85,7 @@ class Explorer(LiveBox):
         self._map_worker = live.LiveWorker(self._compute_radius_map, self._deliver_radius_map,
                                            on_start=self._radius_map_started, name="jostle-radius-map")
         self._map_generation = 0
+        self._map_closed = False
         predictive, self._draw_predictive = _charts.predictive_chart()
         spread, spread_text, self._draw_spread = _charts.spread_chart()
         path, self._draw_path = _charts.path_chart()
@@ -116,7 +117,7 @@ class Explorer(LiveBox):
         elif view.state.certificate == "off":
             self._certified_text.value = "certified radius: off"
         else:
-            self._certified_text.value = "certified radius: unavailable (see the status line)"
+            self._certified_text.value = "certified radius: unavailable for this network (see the status line)"
 
     # ------------------------------------------------ certified-radius layer, on its own thread
     def _request_radius_map(self) -> None:
@@ -135,13 +136,16 @@ class Explorer(LiveBox):
         samples, grid, lo, hi, norm = request
         found = None
         for found in radius_map_levels(self._ens, samples, grid, lo, hi, norm, RADIUS_MAP_METHOD,
-                                       keep_going=lambda: self._map_worker.generation == generation):
-            if self._map_worker.generation != generation:
+                                       keep_going=lambda: self._map_current(generation)):
+            if not self._map_current(generation):
                 return None
             self._show_radius_map(found, grid)
         if found is not None and found.radius.shape[0] == grid:
             self._radius_maps = {request: found}
         return found
+
+    def _map_current(self, generation: int) -> bool:
+        return not self._map_closed and self._map_worker.generation == generation
 
     def _show_radius_map(self, found: Any, grid: int) -> None:
         with self._view_lock, self._map.hold_sync():
@@ -197,6 +201,7 @@ class Explorer(LiveBox):
 
     def close(self) -> None:
         if hasattr(self, "_map_worker"):
+            self._map_closed = True  # a layer being computed stops at its next level
             self._map_worker.close()
         if hasattr(self, "_map"):
             self._map.close()

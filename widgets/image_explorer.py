@@ -57,7 +57,7 @@ class ImageExplorer(LiveBox):
         budget_max = round(0.5 * (self._value_range[1] - self._value_range[0]), 3)
         self._setup_live(ens, {"budget": budget, "samples": samples, "method": method, "norm": norm, "steps": steps,
                                "objective": objective, "seed": seed}, budget_max=budget_max)
-        self._fixed = {"grid": 0, "boundaries": 0, "seed": seed, "radius": False}
+        self._fixed = {"grid": 0, "boundaries": 0, "seed": seed, "radius": False, "certificate": "crown"}
         truth = data.y_test[: self._images.shape[0]].tolist()
         self._strip = ImageStrip(images=to_wire(self._images.reshape((-1,) + self._shape)),
                                  captions=[f"test image {k}: class {self._classes[y]}" for k, y in enumerate(truth)],
@@ -138,7 +138,7 @@ class ImageExplorer(LiveBox):
                                          f"attacked: {names[top]} ({view.after.probs[top]:.2f}), {verdict}"]
         certificate = view.budget_certificate
         self._certified_text.value = (certificate.words if certificate is not None
-                                      else "certificate: unavailable (see the status line)")
+                                      else "certificate: unavailable for this network (see the status line)")
         self._draw_predictive(view)
         self._draw_fade(view)
 

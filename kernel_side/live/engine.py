@@ -81,7 +81,8 @@ class ExplorerState:
     fade_repeats : int
         Random member subsets averaged per sample count in the fading-gradient chart.
     certificate : str
-        Bound method of the certified read-outs: ``crown``, ``ibp`` or ``off``.
+        Bound method of the certified read-outs: ``crown``, ``ibp`` or ``off`` (the default,
+        so a plain view costs what it did; the explorer widgets ask for ``crown``).
     radius : bool
         Compute the certified radius and the attack's flip budget at ``point`` (kept per point,
         norm and samples); False computes the certificate at the current budget instead.
@@ -99,7 +100,7 @@ class ExplorerState:
     grid: int = 64
     boundaries: int = 6
     fade_repeats: int = 16
-    certificate: str = "crown"
+    certificate: str = "off"
     radius: bool = True
 
 
@@ -244,7 +245,7 @@ def compute_view(ens: Ensemble, state: ExplorerState, bounds: Any = None, cache:
         errors.append(str(refused))
     fade = get("fade", (s.point, label, s.fade_repeats, s.seed),
                lambda: fade_part(ens, s.point, label, s.fade_repeats, s.seed))
-    radius, budget_certificate = _certified(ens, s, (lo, hi), get, errors, attack)
+    radius, budget_certificate = _certified(ens, s, (lo, hi), get, notes, attack)
     return ViewData(state=s, label=label, classes=_classes(ens, before), before=before, after=after,
                     attack=attack, grid=grid, fade=fade, spread=spread_part(before, after, label),
                     radius=radius, budget_certificate=budget_certificate,
@@ -298,8 +299,8 @@ def check_state(ens: Ensemble, state: ExplorerState) -> ExplorerState:
     return replace(state, **clean)
 
 
-def _certified(ens: Ensemble, s: ExplorerState, box: tuple, get: Any, errors: list[str], attack: Any) -> tuple:
-    """The certified read-out of ``s``; a network the bounds do not cover is reported, the rest still shown."""
+def _certified(ens: Ensemble, s: ExplorerState, box: tuple, get: Any, notes: list[str], attack: Any) -> tuple:
+    """The certified read-out of ``s``; a network the bounds do not cover gets a note, the rest still shown."""
     if s.certificate == "off":
         return None, None
     try:
@@ -313,8 +314,8 @@ def _certified(ens: Ensemble, s: ExplorerState, box: tuple, get: Any, errors: li
         return None, get("budget_certificate", (s.point, s.budget, s.norm, s.samples, s.certificate, box),
                          lambda: budget_certificate_part(ens, s.point, s.budget, s.norm, s.samples, s.certificate,
                                                          box))
-    except ValueError as refused:  # e.g. a layer the bounds do not cover
-        errors.append(f"certificate: {refused}")
+    except ValueError as refused:  # a layer the bounds do not cover: not a wrong setting, so a note
+        notes.append(f"no certificate: {refused}")
         return None, None
 
 

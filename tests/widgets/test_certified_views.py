@@ -100,8 +100,8 @@ def test_an_uncovered_layer_is_reported_and_the_rest_still_shown(moons):
     ex = Explorer(ens, moons, steps=4, grid=4, boundaries=0)
     try:
         assert ex.wait(120)
-        state, text = ex.status
-        assert state == "error" and text.startswith("certificate:")
+        state, text = ex.status  # not a wrong setting: a note, the status stays idle
+        assert state == "idle" and "no certificate: " in text
         assert ex.result.attack is not None and ex.result.radius is None
         assert "unavailable" in ex._certified_text.value
         ex.budget = 0.05
