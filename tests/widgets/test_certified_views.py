@@ -157,3 +157,30 @@ def test_comparison_shows_both_radii_per_posterior(moons):
             assert "r = " in found.words or "Nothing is certified" in found.words
     finally:
         comparison.close()
+
+
+def test_budget_and_point_changes_do_not_wait_for_the_radius_layer(ens, moons, monkeypatch):
+    import threading
+
+    import jostle.widgets.explorer as explorer_module
+    release, entered = threading.Event(), threading.Event()
+    real = explorer_module.radius_map_levels
+
+    def held(*args, **kwargs):  # the layer's first level stays in progress until released
+        entered.set()
+        assert release.wait(120)
+        yield from real(*args, **kwargs)
+
+    monkeypatch.setattr(explorer_module, "radius_map_levels", held)
+    ex = Explorer(ens, moons, steps=4, grid=8, boundaries=0, layer="certified")
+    try:
+        assert entered.wait(120)
+        ex.budget, ex.point = 0.07, [0.2, 0.3]
+        assert ex.worker.wait(120)  # the views' worker finishes while the layer is still held
+        assert not release.is_set() and ex.result.state.budget == 0.07 and ex.result.state.point == (0.2, 0.3)
+        assert ex._map.ball_budget == 0.07 and ex.radius_map is None
+        release.set()
+        assert ex.wait(120) and ex.radius_map.radius.shape == (8, 8)
+    finally:
+        release.set()
+        ex.close()
