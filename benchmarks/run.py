@@ -20,6 +20,7 @@ BENCHMARKS = [
     "bench_browser",
     "bench_gradient_readout",
     "bench_sgmcmc",
+    "bench_certify",
 ]
 
 

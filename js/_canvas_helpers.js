@@ -1,5 +1,5 @@
 // jostle canvas helpers, placed ahead of the canvas views' modules when they are served
-// (widgets/_assets.py: canvas_module): binary wire arrays, theme colours and theme changes.
+// (widgets/_assets.py: canvas_module): binary wire arrays, theme colours, theme changes and eps-balls.
 
 /** @typedef {{shape: number[], dtype: string, buffer: DataView}} WireArray */
 
@@ -34,4 +34,12 @@ function onThemeChange(repaint) {
   const observer = new MutationObserver(() => requestAnimationFrame(() => repaint()));
   observer.observe(document.body, { attributes: true, attributeFilter: ["data-jp-theme-name", "data-jp-theme-light"] });
   return () => observer.disconnect();
+}
+
+/** Draw a ball of radius eps (L-inf: square, L2: disc) around the centre. */
+function ball(ctx, px, py, centre, eps, sx, sy, norm) {
+  ctx.beginPath();
+  if (norm === "2") ctx.ellipse(px(centre[0]), py(centre[1]), eps * sx, eps * sy, 0, 0, 2 * Math.PI);
+  else ctx.rect(px(centre[0] - eps), py(centre[1] + eps), 2 * eps * sx, 2 * eps * sy);
+  ctx.stroke();
 }

@@ -1,9 +1,10 @@
 // jostle input map: background layer, member boundaries, training points, eps-ball, attack path.
 // Pick the input by click/drag or arrow keys (Shift for larger steps). User strings are text only.
-// typed() and rgb() come from _canvas_helpers.js, served ahead of this module.
+// typed(), rgb() and ball() come from _canvas_helpers.js, served ahead of this module.
 
 const VIEW_KEYS = ["view_revision", "background", "layer_values", "layer_shown", "layer_max", "segments", "path", "ball_budget",
-  "ball_norm", "ball_centre", "success", "train_points", "train_labels", "bounds", "point"];
+  "ball_norm", "ball_centre", "success", "train_points", "train_labels", "bounds", "point",
+  "certified_radius", "flip_budget", "radius_layer", "radius_layer_max", "layer"];
 
 /** @param {HTMLElement} root */
 function palette(root) {
@@ -12,11 +13,31 @@ function palette(root) {
   const classes = [];
   for (let c = 0; c < 10; c++) classes.push(rgb(v(`--jostle-class-${c}`)));
   return { classes, attack: v("--jostle-attack"), ink: v("--jostle-ink"), surface: v("--jostle-surface"),
-    uncertain: rgb(v("--jostle-uncertain")), muted: v("--jostle-muted") };
+    uncertain: rgb(v("--jostle-uncertain")), muted: v("--jostle-muted"), certified: v("--jostle-certified"),
+    certifiedRgb: rgb(v("--jostle-certified")) };
+}
+
+/** The certified-radius layer: one hue, darker where the proved radius is larger (row 0 = lowest y). */
+function paintRadius(model, colours) {
+  const grid = model.get("radius_layer"), values = typed(grid);
+  if (!grid || grid.shape.length !== 2 || values.length === 0) return null;
+  const [ny, nx] = grid.shape, top = model.get("radius_layer_max") || 1;
+  const off = Object.assign(document.createElement("canvas"), { width: nx, height: ny });
+  const ctx = off.getContext("2d"), img = ctx.createImageData(nx, ny), [r, g, b] = colours.certifiedRgb;
+  for (let j = 0; j < ny; j++) {
+    for (let i = 0; i < nx; i++) {
+      const out = ((ny - 1 - j) * nx + i) * 4;
+      img.data[out] = r; img.data[out + 1] = g; img.data[out + 2] = b;
+      img.data[out + 3] = Math.round(255 * 0.85 * Math.min(1, Math.max(0, values[j * nx + i] / top)));
+    }
+  }
+  ctx.putImageData(img, 0, 0);
+  return off;
 }
 
 /** Paint the gridded layer into a small offscreen canvas (row 0 = lowest y). */
 function paintLayer(model, colours) {
+  if (model.get("layer") === "certified") return paintRadius(model, colours);
   const bg = model.get("background");
   const probs = typed(bg);
   if (!bg || bg.shape.length !== 3 || probs.length === 0) return null;
@@ -86,10 +107,18 @@ function draw(model, canvas, root, state) {
   let radius = 0;
   if (centre && centre.length === 2) {
     radius = eps * sx;
-    ctx.strokeStyle = colours.attack; ctx.lineWidth = 1.5; ctx.setLineDash([4, 3]); ctx.beginPath();
-    if (model.get("ball_norm") === "2") ctx.ellipse(px(centre[0]), py(centre[1]), eps * sx, eps * sy, 0, 0, 2 * Math.PI);
-    else ctx.rect(px(centre[0] - eps), py(centre[1] + eps), 2 * eps * sx, 2 * eps * sy);
-    ctx.stroke(); ctx.setLineDash([]);
+    ctx.strokeStyle = colours.attack; ctx.lineWidth = 1.5; ctx.setLineDash([4, 3]);
+    ball(ctx, px, py, centre, eps, sx, sy, model.get("ball_norm")); ctx.setLineDash([]);
+  }
+  const proved = model.get("certified_radius"), flip = model.get("flip_budget");
+  if (centre && centre.length === 2 && proved >= 0) {
+    for (const [style, width] of [[colours.surface, 5], [colours.certified, 2.5]]) { // halo: visible on the blue layer
+      ctx.strokeStyle = style; ctx.lineWidth = width; ball(ctx, px, py, centre, proved, sx, sy, model.get("ball_norm"));
+    }
+  }
+  if (centre && centre.length === 2 && flip >= 0) {
+    ctx.strokeStyle = colours.attack; ctx.lineWidth = 1; ctx.setLineDash([1, 3]);
+    ball(ctx, px, py, centre, flip, sx, sy, model.get("ball_norm")); ctx.setLineDash([]);
   }
   const path = typed(model.get("path"));
   const steps = Math.floor(path.length / 2);
@@ -117,7 +146,23 @@ function draw(model, canvas, root, state) {
   root.dataset.success = String(model.get("success"));
   root.dataset.viewRevision = String(model.get("view_revision"));
   root.dataset.layerRevision = String(state.layerRevision);
+  root.dataset.certifiedRadiusPx = proved >= 0 ? (proved * sx).toFixed(2) : "";
+  root.dataset.flipRadiusPx = flip >= 0 ? (flip * sx).toFixed(2) : "";
+  root.dataset.radiusLayer = String(typed(model.get("radius_layer")).length);
   root.dataset.pathEnd = steps > 0 ? `${path[2 * steps - 2]},${path[2 * steps - 1]}` : "";
+}
+
+/** Numbers beside the certified-radius colour ramp (text only), shown with that layer. */
+function buildRadiusLegend(model, box) {
+  const grid = model.get("radius_layer"), shown = model.get("layer") === "certified";
+  box.hidden = !shown;
+  if (!shown) return;
+  const top = model.get("radius_layer_max") || 0, ramp = Object.assign(document.createElement("i"), { className: "jostle-ramp" });
+  const [low, high, note] = [0, 1, 2].map(() => document.createElement("span"));
+  low.textContent = "r = 0"; high.textContent = `${top.toPrecision(3)}`;
+  note.textContent = grid && grid.shape.length === 2 && grid.shape[0] > 0
+    ? ` certified radius per cell (${model.get("radius_layer_note")})` : " certified radius: computing";
+  box.replaceChildren(low, ramp, high, note);
 }
 
 /** Legend and layer picker; every class name goes in as textContent. */
@@ -131,7 +176,8 @@ function buildBar(model, bar, select) {
     item.append(dot, document.createTextNode(String(name)));
     legend.append(item);
   });
-  for (const [cls, text] of [["--jostle-attack", "attack path / eps-ball"], ["--jostle-ink", "member boundaries"]]) {
+  for (const [cls, text] of [["--jostle-attack", "attack path / eps-ball (dotted: attack flip e)"],
+    ["--jostle-certified", "certified radius r"], ["--jostle-ink", "member boundaries"]]) {
     const item = document.createElement("span"), line = document.createElement("i");
     line.className = "jostle-swatch jostle-line"; line.style.background = `var(${cls})`;
     item.append(line, document.createTextNode(text)); legend.append(item);
@@ -172,7 +218,9 @@ function render({ model, el }) {
   const select = document.createElement("select"); select.dataset.testid = "layer-select";
   select.setAttribute("aria-label", "background layer");
   const legend = document.createElement("div"); legend.className = "jostle-legend"; legend.dataset.testid = "map-legend";
-  bar.append(select, legend); root.append(canvas, about, bar); el.append(root);
+  const radiusLegend = Object.assign(document.createElement("div"), { className: "jostle-radius-legend" });
+  radiusLegend.dataset.testid = "radius-legend";
+  bar.append(select, legend, radiusLegend); root.append(canvas, about, bar); el.append(root);
   const state = { revision: 0, layerRevision: 0, layer: null, layerDirty: true, toData: null, localPoint: null, frame: 0, dragging: false };
   const redraw = () => { if (!state.frame) state.frame = requestAnimationFrame(() => { state.frame = 0; draw(model, canvas, root, state); }); };
   const send = (p) => { state.localPoint = p; model.set("point", p); model.save_changes(); redraw(); };
@@ -199,20 +247,22 @@ function render({ model, el }) {
   canvas.addEventListener("keydown", key); select.addEventListener("change", onSelect);
   const onLayer = () => { state.layerDirty = true; redraw(); };
   const onPoint = () => { state.localPoint = null; redraw(); };
-  const onBar = () => { buildBar(model, bar, select); };
+  const onBar = () => { buildBar(model, bar, select); buildRadiusLegend(model, radiusLegend); };
   const onAbout = () => { about.textContent = describe(model); };
+  const onRadius = () => { buildRadiusLegend(model, radiusLegend); state.layerDirty = true; redraw(); };
   model.on("change:background change:layer_values change:layer_shown change:layer_max", onLayer);
-  model.on("change:point", onPoint);
-  model.on("change:classes change:layer_labels change:layer", onBar);
+  model.on("change:point", onPoint); model.on("change:radius_layer change:radius_layer_max change:radius_layer_note", onRadius);
+  model.on("change:classes change:layer_labels change:layer", onBar); model.on("change:layer", onLayer);
   for (const k of VIEW_KEYS) model.on(`change:${k}`, redraw);
   model.on(ABOUT_EVENTS, onAbout);
   const offTheme = onThemeChange(onLayer);
   const resize = new ResizeObserver(redraw); resize.observe(root);
-  buildBar(model, bar, select); onAbout(); redraw();
+  buildBar(model, bar, select); buildRadiusLegend(model, radiusLegend); onAbout(); redraw();
   return () => {
     resize.disconnect(); offTheme(); cancelAnimationFrame(state.frame);
     model.off("change:background change:layer_values change:layer_shown change:layer_max", onLayer);
-    model.off("change:point", onPoint); model.off("change:classes change:layer_labels change:layer", onBar);
+    model.off("change:point", onPoint); model.off("change:layer", onLayer);
+    model.off("change:radius_layer change:radius_layer_max change:radius_layer_note", onRadius); model.off("change:classes change:layer_labels change:layer", onBar);
     for (const k of VIEW_KEYS) model.off(`change:${k}`, redraw);
     model.off(ABOUT_EVENTS, onAbout);
   };

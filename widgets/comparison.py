@@ -84,6 +84,14 @@ class Comparison(w.VBox):
         """Block until every explorer has shown its latest view; False on timeout."""
         return all(explorer.wait(timeout) for explorer in self.explorers)
 
+    def radii(self) -> list:
+        """Per column, the certified radius (lower bound) and the attack's flip budget (upper bound).
+
+        Each item is the column's ``jostle.live.engine.RadiusView`` at the shared input (``radius``,
+        ``flip``, ``words``), or None before its first view; each column also shows the words.
+        """
+        return [None if explorer.result is None else explorer.result.radius for explorer in self.explorers]
+
     def used_samples(self) -> list[int]:
         """Samples each column's attacker uses: ``min(samples, len(ensemble))``, in column order."""
         return [explorer.samples for explorer in self.explorers]

@@ -11,6 +11,7 @@ LAYER_LABELS = {
     "predictive": "posterior predictive",
     "epistemic": "epistemic (mutual information)",
     "entropy": "total entropy",
+    "certified": "certified radius (predictive)",
 }
 
 
@@ -27,7 +28,9 @@ class ExplorerMap(anywidget.AnyWidget):
     point = t.List(
         t.Float(), [0.0, 0.0], help="picked input (x, y) in data units; set by click, drag or arrow keys"
     ).tag(sync=True)
-    layer = t.Unicode("predictive", help="background layer shown: predictive, epistemic or entropy").tag(sync=True)
+    layer = t.Unicode(
+        "predictive", help="background layer shown: predictive, epistemic, entropy or certified"
+    ).tag(sync=True)
     layer_labels = t.Dict(LAYER_LABELS, help="readable name of each background layer").tag(sync=True)
     bounds = t.List(t.Float(), [-1.0, 1.0, -1.0, 1.0], help="input box [x_lo, x_hi, y_lo, y_hi] drawn").tag(sync=True)
     classes = t.List(t.Unicode(), [], help="class names, shown as plain text in the legend").tag(sync=True)
@@ -52,3 +55,12 @@ class ExplorerMap(anywidget.AnyWidget):
     predicted = t.Unicode(
         "", help="predicted class at ball_centre with its probability, as text (the map's ARIA description)"
     ).tag(sync=True)
+    certified_radius = t.Float(-1.0, help="certified radius at the input, drawn as a ring (-1: none)").tag(sync=True)
+    flip_budget = t.Float(
+        -1.0, help="smallest budget the attack flipped at, a dotted ring (-1: none found)"
+    ).tag(sync=True)
+    radius_layer = t.Dict(
+        empty_wire(None), help="certified radius of the predictive per grid cell, float32 (n_y, n_x)"
+    ).tag(sync=True)
+    radius_layer_max = t.Float(0.0, help="top of the certified-radius colour scale").tag(sync=True)
+    radius_layer_note = t.Unicode("", help="resolution drawn so far, e.g. '16 x 16 of 64 x 64'").tag(sync=True)

@@ -9,6 +9,7 @@ import traitlets as t
 
 import jostle.live.engine as live
 from jostle.common.checks import check_int
+from jostle.live.certified_parts import CAUTION as CERTIFICATE_CAUTION
 
 from . import _charts
 from ._gradient_strip_part import GradientStripPart
@@ -57,7 +58,7 @@ class ImageExplorer(GradientStripPart, LiveBox):
         budget_max = round(0.5 * (self._value_range[1] - self._value_range[0]), 3)
         self._setup_live(ens, {"budget": budget, "samples": samples, "method": method, "norm": norm, "steps": steps,
                                "objective": objective, "seed": seed}, budget_max=budget_max)
-        self._fixed = {"grid": 0, "boundaries": 0, "seed": seed}
+        self._fixed = {"grid": 0, "boundaries": 0, "seed": seed, "radius": False, "certificate": "crown"}
         truth = data.y_test[: self._images.shape[0]].tolist()
         self._strip = ImageStrip(images=to_wire(self._images.reshape((-1,) + self._shape)),
                                  captions=[f"test image {k}: class {self._classes[y]}" for k, y in enumerate(truth)],
@@ -65,7 +66,11 @@ class ImageExplorer(GradientStripPart, LiveBox):
         self._panels = ImagePanels(value_range=self._value_range)
         predictive, self._draw_predictive = _charts.predictive_chart()
         fade, self._draw_fade = _charts.fade_chart()
-        attack = [self._controls, fade, _charts.caption(_charts.FADE_CAPTION)]
+        self._certified_text = _charts.caption("certificate: computing")
+        self._certified_text.add_class("jostle-tid-certified-text")
+        certified_caution = _charts.caption(CERTIFICATE_CAUTION)
+        certified_caution.add_class("jostle-tid-certified-caution")
+        attack = [self._controls, self._certified_text, certified_caution, fade, _charts.caption(_charts.FADE_CAPTION)]
         gradients = self._setup_gradient_strip(data.image_shape)
         children = _layout(data, ens, self._strip, self._panels, predictive, attack, self._status)
         super().__init__(children=children[:-1] + [gradients, children[-1]], **kwargs)
@@ -133,6 +138,9 @@ class ImageExplorer(GradientStripPart, LiveBox):
                 verdict = "flipped" if view.attack.success else "held"
                 self._panels.captions = [first, f"perturbation (max |delta| {np.abs(delta).max():.3f})",
                                          f"attacked: {names[top]} ({view.after.probs[top]:.2f}), {verdict}"]
+        certificate = view.budget_certificate
+        self._certified_text.value = (certificate.words if certificate is not None
+                                      else "certificate: unavailable for this network (see the status line)")
         self._draw_predictive(view)
         self._draw_fade(view)
 

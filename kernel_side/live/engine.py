@@ -19,6 +19,13 @@ import torch
 
 from jostle.attacks.run import attack_names, registered_norms, registered_objectives
 from jostle.common.checks import check_choice, check_float, check_int, check_representable, show_value
+from jostle.live.certified_parts import (
+    BudgetCertificateView,
+    RadiusView,
+    budget_certificate_part,
+    radius_part,
+    radius_words,
+)
 from jostle.live.view_parts import (
     AttackView,
     FadeView,
@@ -38,10 +45,11 @@ from jostle.posterior.ensemble import Ensemble
 __all__ = [
     "ExplorerState", "ViewData", "ViewCache", "compute_view", "check_field", "check_state",
     "LiveWorker", "Outcome", "PointView", "GridView", "AttackView", "FadeView", "SpreadView",
-    "LAYERS",
+    "LAYERS", "CERTIFICATES", "RadiusView", "BudgetCertificateView",
 ]
 
-LAYERS = ("predictive", "epistemic", "entropy")
+LAYERS = ("predictive", "epistemic", "entropy", "certified")
+CERTIFICATES = ("crown", "ibp", "off")
 
 
 @dataclass(frozen=True)
@@ -62,14 +70,22 @@ class ExplorerState:
         ``objective`` are each some registered attack's; a pair the method lacks (``cw``
         with ``inf``) is reported in :attr:`ViewData.errors`, the other parts still shown.
     layer : str
-        Background layer: ``predictive`` (class mix), ``epistemic`` (mutual information) or
-        ``entropy`` (total predictive entropy).
+        Background layer: ``predictive`` (class mix), ``epistemic`` (mutual information),
+        ``entropy`` (total predictive entropy) or ``certified`` (the predictive's certified
+        radius per cell, computed apart by :func:`jostle.live.certified_map.radius_map`; the grid
+        part then carries the class mix).
     grid : int
         Background resolution per axis (2-D inputs only); 0 skips the map.
     boundaries : int
         How many members' decision boundaries to trace (0 for none).
     fade_repeats : int
         Random member subsets averaged per sample count in the fading-gradient chart.
+    certificate : str
+        Bound method of the certified read-outs: ``crown``, ``ibp`` or ``off`` (the default,
+        so a plain view costs what it did; the explorer widgets ask for ``crown``).
+    radius : bool
+        Compute the certified radius and the attack's flip budget at ``point`` (kept per point,
+        norm and samples); False computes the certificate at the current budget instead.
     """
 
     point: tuple[float, ...]
@@ -84,6 +100,8 @@ class ExplorerState:
     grid: int = 64
     boundaries: int = 6
     fade_repeats: int = 16
+    certificate: str = "off"
+    radius: bool = True
 
 
 @dataclass
@@ -108,6 +126,10 @@ class ViewData:
         Expected-gradient norm against the number of samples.
     spread : SpreadView
         Histogram over members of the attacked label's probability.
+    radius : RadiusView or None
+        Certified radius beside the attack's flip budget, in numbers and words (``state.radius``).
+    budget_certificate : BudgetCertificateView or None
+        Members certified at the budget and the posterior-mass bound (``state.radius`` False).
     recomputed : tuple of str
         Parts computed for this call rather than taken from the cache.
     timings : dict of str to float
@@ -128,6 +150,8 @@ class ViewData:
     grid: GridView | None
     fade: FadeView | None
     spread: SpreadView
+    radius: RadiusView | None = None
+    budget_certificate: BudgetCertificateView | None = None
     recomputed: tuple[str, ...] = ()
     timings: dict[str, float] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
@@ -209,8 +233,9 @@ def compute_view(ens: Ensemble, state: ExplorerState, bounds: Any = None, cache:
     if s.grid > 0 and len(s.point) == 2:
         gridded = get("grid_prediction", (s.samples, s.grid, lo, hi),
                       lambda: grid_prediction(ens, s.samples, s.grid, lo, hi))
-        grid = get("grid", (s.samples, s.grid, lo, hi, s.layer, s.boundaries),
-                   lambda: grid_part(gridded, s.layer, s.boundaries))
+        shown = "predictive" if s.layer == "certified" else s.layer
+        grid = get("grid", (s.samples, s.grid, lo, hi, shown, s.boundaries),
+                   lambda: grid_part(gridded, shown, s.boundaries))
     attack = after = fade = None
     try:
         attack, after = get("attack", (s.point, label, s.budget, s.samples, s.method, s.norm, s.steps,
@@ -220,8 +245,10 @@ def compute_view(ens: Ensemble, state: ExplorerState, bounds: Any = None, cache:
         errors.append(str(refused))
     fade = get("fade", (s.point, label, s.fade_repeats, s.seed),
                lambda: fade_part(ens, s.point, label, s.fade_repeats, s.seed))
+    radius, budget_certificate = _certified(ens, s, (lo, hi), get, notes, attack)
     return ViewData(state=s, label=label, classes=_classes(ens, before), before=before, after=after,
                     attack=attack, grid=grid, fade=fade, spread=spread_part(before, after, label),
+                    radius=radius, budget_certificate=budget_certificate,
                     recomputed=tuple(recomputed), timings=timings,
                     notes=notes, errors=errors)
 
@@ -248,11 +275,15 @@ def check_field(ens: Ensemble, name: str, value: Any, n_features: int | None = N
         return check_int("steps", value, low=1, high=10_000)
     if name in ("grid", "boundaries"):
         return check_int(name, value, low=0, high=512 if name == "grid" else 64)
+    if name == "radius":
+        if not isinstance(value, bool):
+            raise ValueError(f"radius must be True or False; got {show_value(value)}")
+        return value
     if name in ("fade_repeats", "seed"):
         return check_int(name, value, low=1 if name == "fade_repeats" else 0)
     # read at call time, so an attack registered after import is accepted
     choices = {"method": attack_names, "norm": registered_norms, "objective": registered_objectives,
-               "layer": lambda: LAYERS}
+               "layer": lambda: LAYERS, "certificate": lambda: CERTIFICATES}
     if name in choices:
         return check_choice(name, value, choices[name]())
     raise ValueError(f"name must be a field of ExplorerState; got {name!r}")
@@ -266,6 +297,26 @@ def check_state(ens: Ensemble, state: ExplorerState) -> ExplorerState:
     if clean["samples"] is None:
         clean["samples"] = len(ens)
     return replace(state, **clean)
+
+
+def _certified(ens: Ensemble, s: ExplorerState, box: tuple, get: Any, notes: list[str], attack: Any) -> tuple:
+    """The certified read-out of ``s``; a network the bounds do not cover gets a note, the rest still shown."""
+    if s.certificate == "off":
+        return None, None
+    try:
+        if s.radius:
+            flipped = attack is not None and attack.success
+            found = get("radius", (s.point, s.norm, s.samples, s.certificate, box),
+                        lambda: radius_part(ens, s.point, s.norm, s.samples, s.certificate, box))
+            words = radius_words(found.radius, found.flip, s.norm, s.certificate, found.search_top, s.budget,
+                                 flipped)
+            return replace(found, words=words), None
+        return None, get("budget_certificate", (s.point, s.budget, s.norm, s.samples, s.certificate, box),
+                         lambda: budget_certificate_part(ens, s.point, s.budget, s.norm, s.samples, s.certificate,
+                                                         box))
+    except ValueError as refused:  # a layer the bounds do not cover: not a wrong setting, so a note
+        notes.append(f"no certificate: {refused}")
+        return None, None
 
 
 def _check_point(value: Any, n_features: int | None) -> tuple[float, ...]:

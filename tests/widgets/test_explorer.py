@@ -214,7 +214,7 @@ def test_settings_the_attack_refuses_show_in_the_status_while_other_panels_updat
     ({"method": "laser"}, r"method must be one of"),
     ({"point": [0.0]}, r"point must have 2 coordinates; got 1"),
     ({"grid": -3}, r"grid must be an integer in \[0, 512\]; got -3"),
-    ({"layer": "heat"}, r"layer must be one of 'predictive', 'epistemic', 'entropy'; got 'heat'"),
+    ({"layer": "heat"}, r"layer must be one of 'predictive', 'epistemic', 'entropy', 'certified'; got 'heat'"),
 ])
 def test_constructor_arguments_are_checked_and_raise(ens, moons, kwargs, message):
     with pytest.raises(ValueError, match=message):

@@ -97,7 +97,7 @@ def test_samples_none_resolves_to_every_member(ens, state):
     ("method", "laser", r"method must be one of 'fgsm', 'pgd', 'cw', 'spsa', 'square'; got 'laser'"),
     ("norm", "1", r"norm must be one of 'inf', '2'; got '1'"),
     ("steps", 0, r"steps must be an integer in \[1, 10000\]; got 0"),
-    ("layer", "heat", r"layer must be one of 'predictive', 'epistemic', 'entropy'; got 'heat'"),
+    ("layer", "heat", r"layer must be one of 'predictive', 'epistemic', 'entropy', 'certified'; got 'heat'"),
     ("objective", "max", r"objective must be one of 'expected_loss', 'predictive', 'margin'; got 'max'"),
 ])
 def test_bad_fields_name_field_rule_and_value(ens, state, field, value, message):
