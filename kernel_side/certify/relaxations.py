@@ -21,6 +21,8 @@ Singh et al. 2019).
 """
 from __future__ import annotations
 
+import math
+
 import torch
 import torch.nn.functional as F
 from torch import Tensor
@@ -32,7 +34,6 @@ __all__ = ["activation_lines", "through_activation", "through_max_pool"]
 # Below this width an interval is treated as a point: the chord's slope would be rounding noise,
 # so the upper line is the constant f(u) (sound, since f is increasing).
 _NARROW = 1e-6
-_BISECTION_STEPS = 40
 
 
 def activation_lines(kind: str, lower: Tensor, upper: Tensor) -> tuple[Tensor, Tensor, Tensor, Tensor]:
@@ -132,16 +133,25 @@ def _s_shaped_upper(f, slope, lower: Tensor, upper: Tensor) -> tuple[Tensor, Ten
 
 
 def _tangent_through(f, slope, lower: Tensor, upper: Tensor) -> Tensor:
-    """Smallest d in [0, u] (from above) with f(d) + f'(d)(l - d) >= f(l); u where there is none."""
-    f_lo = f(lower)
-    low = torch.zeros_like(lower)
-    high = upper.clamp_min(0)
-    for _ in range(_BISECTION_STEPS):
+    """Smallest d in [0, u] (from above) with f(d) + f'(d)(l - d) >= f(l); u where there is none.
+
+    Only the neurons whose interval straddles 0 use the tangent, so only they are bisected; the
+    bisection keeps the sound end and runs as many halvings as the dtype has mantissa bits (a
+    narrower bracket than that is rounding).
+    """
+    touch = upper.clamp_min(0)
+    mixed = (lower < 0) & (upper > 0)
+    if not bool(mixed.any()):
+        return touch
+    low_end, up_end = lower[mixed], upper[mixed]
+    f_lo = f(low_end)
+    low, high = torch.zeros_like(low_end), up_end
+    for _ in range(round(-math.log2(torch.finfo(lower.dtype).eps)) + 1):
         mid = 0.5 * (low + high)
-        above = f(mid) + slope(mid) * (lower - mid) >= f_lo
+        above = f(mid) + slope(mid) * (low_end - mid) >= f_lo
         high = torch.where(above, mid, high)
         low = torch.where(above, low, mid)
-    return high
+    return touch.masked_scatter(mixed, high)
 
 
 def _tanh_slope(z: Tensor) -> Tensor:
