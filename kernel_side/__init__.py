@@ -23,7 +23,7 @@ from jostle.fitting.hmc.sampler import HMCDraws, HMCState, sample_hmc
 from jostle.fitting.laplace import LastLayerLaplace, fit_laplace
 from jostle.fitting.point_estimates import fit_deep_ensemble, fit_map
 from jostle.fitting.variational import VariationalPosterior, fit_vi
-from jostle.posterior.architectures import build_architecture, init_parameters, mlp, register_architecture
+from jostle.posterior.architectures import build_architecture, cnn, init_parameters, mlp, register_architecture
 from jostle.posterior.demo_posteriors import DEMO_POSTERIORS, demo_posterior
 from jostle.posterior.description import describe
 from jostle.posterior.ensemble import DEFAULT_MEMORY_BUDGET, Ensemble
@@ -84,4 +84,5 @@ __all__ = [
     "Sweep",
     "SweepConfigError",
     "SweepSummary",
+    "cnn",
 ]
