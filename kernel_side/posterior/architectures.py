@@ -1,6 +1,7 @@
 """Network builders whose architecture is recorded, so saved posteriors can be rebuilt."""
 from __future__ import annotations
 
+import copy
 import math
 from collections.abc import Callable
 from typing import Any
@@ -11,7 +12,7 @@ from torch import Tensor, nn
 from jostle.common.checks import check_choice, check_float, check_int
 
 __all__ = [
-    "mlp", "cnn", "ImageView", "register_architecture", "build_architecture", "architecture_of", "init_parameters",
+    "mlp", "cnn", "ImageView", "DropoutMask", "with_dropout_masks", "register_architecture", "build_architecture", "architecture_of", "init_parameters",
 ]
 
 ACTIVATIONS: dict[str, Callable[[], nn.Module]] = {
@@ -246,6 +247,49 @@ def _build_cnn(in_shape, classes, channels, kernel, pool, norm, hidden, dropout,
 
 
 register_architecture("cnn", _build_cnn)
+
+
+class DropoutMask(nn.Module):
+    """A fixed dropout mask: ``h * keep / (1 - p)``, ``keep`` (0 drops, 1 keeps) shaped like one
+    point's input (``(C, H, W)``, ``(C, 1, 1)`` for channel dropout, ``(features,)``) and shared
+    by every point. An MC-dropout member is the network with each Dropout replaced by one of
+    these; stacked over members, ``keep`` is a sampled input of the forward pass."""
+
+    def __init__(self, shape: tuple[int, ...] | list[int], p: float):
+        super().__init__()
+        self.p = float(p)
+        self.register_buffer("keep", torch.ones(tuple(int(s) for s in shape)))
+
+    def forward(self, h: Tensor) -> Tensor:
+        return h * (self.keep / (1.0 - self.p))
+
+    def extra_repr(self) -> str:
+        return f"shape={tuple(self.keep.shape)}, p={self.p}"
+
+
+def with_dropout_masks(module: nn.Module, sites: list[dict]) -> nn.Module:
+    """A copy of ``module`` with the submodule at each ``site["path"]`` replaced by a
+    :class:`DropoutMask` of ``site["shape"]`` and rate ``site["p"]``. A module built by a
+    registered builder gives one tagged ``dropout_masks``, so saved members rebuild on load."""
+    arch = architecture_of(module)
+    if arch is not None:
+        return build_architecture("dropout_masks", base=arch, sites=[dict(site) for site in sites])
+    return _replace_sites(copy.deepcopy(module), sites)
+
+
+def _replace_sites(module: nn.Module, sites: list[dict]) -> nn.Module:
+    for site in sites:
+        parent_path, _, child = site["path"].rpartition(".")
+        parent = module.get_submodule(parent_path) if parent_path else module
+        setattr(parent, child, DropoutMask(site["shape"], site["p"]))
+    return module
+
+
+def _build_dropout_masks(base: dict, sites: list[dict]) -> nn.Module:
+    return _replace_sites(build_architecture(base["builder"], **base["kwargs"]), sites)
+
+
+register_architecture("dropout_masks", _build_dropout_masks)
 
 
 @torch.no_grad()

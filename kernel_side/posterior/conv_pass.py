@@ -20,6 +20,7 @@ from torch import Tensor, nn
 from torch.nn import functional
 
 from jostle.posterior.activations import ELEMENTWISE, is_identity
+from jostle.posterior.architectures import DropoutMask
 
 __all__ = ["conv_steps", "conv_forward", "activation_sizes"]
 
@@ -79,6 +80,8 @@ def _step(name: str, layer: nn.Module, flat: bool) -> tuple | None:
         return ("flatten",)
     if isinstance(layer, nn.Linear) and flat:
         return ("linear", f"{name}.weight", f"{name}.bias" if layer.bias is not None else None)
+    if isinstance(layer, DropoutMask):
+        return ("mask", f"{name}.keep", layer.p)
     if isinstance(layer, ELEMENTWISE) and not isinstance(layer, nn.Dropout):
         return ("map", layer)
     return None
@@ -117,7 +120,7 @@ def conv_forward(steps: list[tuple], params: dict[str, Tensor], x: Tensor, shape
             h = _conv(step, params, h, members, shared)
             shared = False
             continue
-        if shared and kind in ("batchnorm", "groupnorm", "layernorm"):
+        if shared and kind in ("batchnorm", "groupnorm", "layernorm", "mask"):
             h = h.repeat(1, members, 1, 1)
             shared = False
         if kind == "flatten":
@@ -125,6 +128,8 @@ def conv_forward(steps: list[tuple], params: dict[str, Tensor], x: Tensor, shape
             shared = False
         elif kind == "linear":
             h = _linear(params[step[1]], None if step[2] is None else params[step[2]], h)
+        elif kind == "mask":
+            h = _masked(params[step[1]], step[2], h)
         elif kind == "map" or kind == "pool":
             h = step[1](h)
         else:
@@ -146,6 +151,14 @@ def _linear(weight: Tensor, bias: Tensor | None, h: Tensor) -> Tensor:
     if bias is None:
         return torch.bmm(h, weight.transpose(1, 2))
     return torch.baddbmm(bias.unsqueeze(1), h, weight.transpose(1, 2))
+
+
+def _masked(keep: Tensor, p: float, h: Tensor) -> Tensor:
+    """Each member's fixed dropout mask [s, *shape] on ``h`` [n, s*c, h, w] or [s, n, f]."""
+    scale = keep / (1.0 - p)
+    if h.dim() == 4:
+        return h * scale.reshape(1, -1, *scale.shape[2:])
+    return h * scale.unsqueeze(1)
 
 
 def _per_channel(values: Tensor, h: Tensor) -> Tensor:
