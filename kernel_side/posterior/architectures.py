@@ -12,7 +12,8 @@ from torch import Tensor, nn
 from jostle.common.checks import check_choice, check_float, check_int
 
 __all__ = [
-    "mlp", "cnn", "ImageView", "DropoutMask", "with_dropout_masks", "register_architecture", "build_architecture", "architecture_of", "init_parameters",
+    "mlp", "cnn", "ImageView", "DropoutMask", "with_dropout_masks", "register_architecture", "build_architecture",
+    "architecture_of", "init_parameters",
 ]
 
 ACTIVATIONS: dict[str, Callable[[], nn.Module]] = {

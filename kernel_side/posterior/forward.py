@@ -358,10 +358,12 @@ class ConvPlan(ForwardPlan):
     def chunk_sizes(self, members: int, points: int, memory_budget: int, element_bytes: int) -> tuple[int, int]:
         grad = torch.is_grad_enabled()
         pair_bytes = self.floats_per_pair * element_bytes * (2 if grad else 1)
-        member_chunk, point_chunk = chunk_sizes(members, points, pair_bytes, 0, memory_budget, cache_bytes=2**62)
         if points <= GROUPED_POINTS:
-            return min(member_chunk, GROUPED_MEMBERS), point_chunk
-        return min(member_chunk, BLOCK_MEMBERS), min(point_chunk, BLOCK_POINTS)
+            block_members, block_points = GROUPED_MEMBERS, points
+        else:
+            block_members, block_points = BLOCK_MEMBERS, BLOCK_POINTS
+        return chunk_sizes(min(members, block_members), min(points, block_points), pair_bytes, 0, memory_budget,
+                           cache_bytes=2**62)
 
     def forward(self, params: dict[str, Tensor], x: Tensor, per_member: bool = False) -> Tensor:
         """Logits [s, n, C]; with ``per_member=True`` ``x`` is [s, n, ...], one block per member."""
