@@ -18,6 +18,7 @@ BENCHMARKS = [
     "bench_sweep",
     "bench_widgets",
     "bench_browser",
+    "bench_cnn",
 ]
 
 
