@@ -191,3 +191,20 @@ def test_member_blocks_follow_the_size_rule(cards):
     tight.memory_budget = small
     with torch.no_grad():
         torch.testing.assert_close(tight.logits(cards.x_test[:20]), ens.logits(cards.x_test[:20]), atol=ATOL, rtol=0)
+
+
+def test_per_member_inputs_as_training_feeds_them_match_a_loop(cards):
+    # fit_deep_ensemble trains through plan.forward(params, x [S, n, ...], per_member=True)
+    ens, nets = _members(cards.image_shape, count=3, norm="layer")
+    x = cards.x_train[:30].reshape(3, 10, -1)
+    params = {k: v.clone().requires_grad_(v.is_floating_point()) for k, v in ens.params.items()}
+    logits = ens._plan.forward(params, x, per_member=True)
+    with torch.no_grad():
+        reference = torch.stack([net(x[s]) for s, net in enumerate(nets)])
+    torch.testing.assert_close(logits.detach(), reference, atol=ATOL, rtol=0)
+    y = cards.y_train[:30].reshape(3, 10)
+    loss = sum(F.cross_entropy(logits[s], y[s]) for s in range(3))
+    (grad,) = torch.autograd.grad(loss, params["1.weight"])
+    for s, net in enumerate(nets):
+        (own,) = torch.autograd.grad(F.cross_entropy(net(x[s]), y[s]), net[1].weight)
+        torch.testing.assert_close(grad[s], own, atol=ATOL, rtol=0)
