@@ -91,7 +91,8 @@ def activation_sizes(template: nn.Module, shape: tuple[int, ...]) -> list[int]:
     """Floats per image of the input and after each layer of ``template`` for one member
     (a probe on the meta device: no memory, no arithmetic)."""
     probe = copy.deepcopy(template).to_empty(device="meta")
-    h = torch.empty((1, *shape), device="meta")
+    dtype = next((p.dtype for p in probe.parameters() if p.is_floating_point()), torch.float32)
+    h = torch.empty((1, *shape), device="meta", dtype=dtype)
     sizes = [int(h[0].numel())]
     for layer in probe.children():
         h = layer(h)
