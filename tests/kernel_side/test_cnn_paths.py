@@ -120,6 +120,7 @@ def test_input_gradients_match_autograd_per_member(cards, norm):
     x, y = cards.x_test[:6], cards.y_test[:6]
     per_member = _loop_gradients(nets, x, y)
     torch.testing.assert_close(member_gradients(ens, x, y), per_member, atol=ATOL, rtol=0)
+    torch.testing.assert_close(member_gradients(ens, x, y, backward="autograd"), per_member, atol=ATOL, rtol=0)
     # Athalye et al. 2018: the expected-loss gradient is the mean of the members' gradients
     torch.testing.assert_close(jostle.expected_gradient(ens, x, y), per_member.mean(0), atol=ATOL, rtol=0)
 
