@@ -15,6 +15,7 @@ import torch
 from torch import Tensor, nn
 from torch.func import functional_call, vmap
 
+from jostle.common.threads import threads_for, torch_threads
 from jostle.posterior.activations import ELEMENTWISE, activation_of
 from jostle.posterior.conv_pass import activation_sizes, conv_forward, conv_steps
 
@@ -291,29 +292,32 @@ class GeneralPlan(ForwardPlan):
 
 # The size rule of ConvPlan, measured for the default jostle.cnn on 28x28 images on a 2-core
 # CPU shared with other jobs (side by side in one process, medians of interleaved repeats;
-# benchmarks/bench_cnn.py prints the strategies beside each other). Members side by side
-# as channel blocks won at every size measured: at S = 100, N = 1, 20 members per block
-# took 22 ms against 109 ms for a plain per-member loop (5 per block: 38 ms); at S = 20,
-# N = 100, blocks of 5 members x 64 images took 731 ms against 1,184 ms for the loop
-# (20 x 16: 742 ms), where a loop over members through this same pass (one member per
-# block, all images) took 1,167 ms. Channels-last layout measured the same within noise
-# for the blocks and 2-5x faster for one member's 16 -> 32 convolution.
+# benchmarks/bench_cnn.py). Up to GROUPED_POINTS points, GROUPED_MEMBERS members side by
+# side as channel blocks: S = 20, N = 1 took 2.3 ms against 3.7 ms for a per-member loop
+# (one thread); S = 100, N = 1: 22 ms against 109 ms (two threads). Above it, one member
+# per block over BLOCK_POINTS images, which keeps a block's activations near the caches:
+# S = 20, N = 1,000 took 1,700 ms against 3,421 ms for the loop over whole batches, and
+# 1,770 ms with blocks of 5 members x 64 images; S = 100, N = 100: 790 ms against 855 ms
+# (5 x 64: 1,256 ms; 20 x 16: 1,484 ms), one thread. Channels-last layout measured the
+# same within noise (1,688 against 1,702 ms).
 GROUPED_POINTS = 16
 GROUPED_MEMBERS = 20
-BLOCK_MEMBERS = 5
-BLOCK_POINTS = 64
+BLOCK_MEMBERS = 1
+BLOCK_POINTS = 128
 CHANNELS_LAST = True
 
 
 class ConvPlan(ForwardPlan):
     """Convolutional stacks (:mod:`jostle.posterior.conv_pass`) under a size rule.
 
-    Members run side by side as channel blocks (one convolution for a block of members):
-    up to ``GROUPED_POINTS`` points, ``GROUPED_MEMBERS`` members with every point; above
-    it, blocks of ``BLOCK_MEMBERS`` members x ``BLOCK_POINTS`` images, which keep a
-    block's activations (~5 MiB at 28x28) near the caches. One member per block is the
-    plain per-member loop; it was never faster (measurements above). Blocks always
-    stay under the memory budget (``chunk_sizes``).
+    Up to ``GROUPED_POINTS`` points, ``GROUPED_MEMBERS`` members run side by side as
+    channel blocks (one convolution for a block of members), which amortises the
+    per-call cost of tiny convolutions; above it, a loop over members
+    (``BLOCK_MEMBERS = 1``) over ``BLOCK_POINTS`` images at a time, where a plain
+    convolution is efficient and a grouped one was slower (measurements above). Blocks
+    always stay under the memory budget (``chunk_sizes``). Small work runs on one thread
+    (:func:`jostle.common.threads.threads_for`): on a shared 2-core machine a tiny
+    convolution on two threads measured up to 40x slower.
     """
 
     def __init__(self, template: nn.Module, steps: list[tuple], shape: tuple[int, int, int] | None):
@@ -364,6 +368,12 @@ class ConvPlan(ForwardPlan):
             block_members, block_points = BLOCK_MEMBERS, BLOCK_POINTS
         return chunk_sizes(min(members, block_members), min(points, block_points), pair_bytes, 0, memory_budget,
                            cache_bytes=2**62)
+
+    def run(self, params: dict[str, Tensor], x: Tensor, memory_budget: int,
+            transform: Callable[[Tensor], Tensor] | None = None) -> Tensor:
+        work = int(next(iter(params.values())).shape[0]) * int(x.shape[0]) * self.floats_per_pair
+        with torch_threads(threads_for("auto", work, x.device)):
+            return super().run(params, x, memory_budget, transform)
 
     def forward(self, params: dict[str, Tensor], x: Tensor, per_member: bool = False) -> Tensor:
         """Logits [s, n, C]; with ``per_member=True`` ``x`` is [s, n, ...], one block per member."""
