@@ -21,6 +21,7 @@ BENCHMARKS = [
     "bench_gradient_readout",
     "bench_sgmcmc",
     "bench_certify",
+    "bench_cnn",
 ]
 
 

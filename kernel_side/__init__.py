@@ -26,7 +26,7 @@ from jostle.fitting.point_estimates import fit_deep_ensemble, fit_map
 from jostle.fitting.sgmcmc.fit import fit_sgmcmc
 from jostle.fitting.sgmcmc.kernel import SGMCMCDraws, sample_sgmcmc
 from jostle.fitting.variational import VariationalPosterior, fit_vi
-from jostle.posterior.architectures import build_architecture, init_parameters, mlp, register_architecture
+from jostle.posterior.architectures import build_architecture, cnn, init_parameters, mlp, register_architecture
 from jostle.posterior.demo_posteriors import DEMO_POSTERIORS, demo_posterior
 from jostle.posterior.description import describe
 from jostle.posterior.ensemble import DEFAULT_MEMORY_BUDGET, Ensemble
@@ -93,4 +93,5 @@ __all__ = [
     "fit_sgmcmc",
     "sample_sgmcmc",
     "SGMCMCDraws",
+    "cnn",
 ]

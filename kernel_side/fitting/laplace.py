@@ -25,6 +25,7 @@ from jostle.posterior.ensemble import Ensemble
 
 __all__ = [
     "fit_laplace", "LastLayerLaplace", "softmax_hessian", "log_marginal_likelihood", "optimise_prior_precision",
+    "last_layer_features",
 ]
 
 
@@ -54,8 +55,11 @@ def fit_laplace(
 
     Parameters
     ----------
-    module : nn.Sequential
-        Ending in an ``nn.Linear`` layer (e.g. ``jostle.mlp``); only that layer varies.
+    module : nn.Module
+        Any network whose output is its last ``nn.Linear`` layer's output (``jostle.mlp``,
+        ``jostle.cnn``, a Sequential ending in Linear); only that layer varies. Its input
+        (the penultimate features) is read with a forward hook. Every member carries its
+        own copy of the shared body (S x the network's parameters).
     data : jostle.Dataset
     samples : int
         Draws of the last layer; every member shares the MAP body.
@@ -123,10 +127,10 @@ class LastLayerLaplace:
         import time
 
         started = time.perf_counter()
-        body, weight_name, bias_name = _split(point)
+        _, weight_name, bias_name = _split(point)
         # The curvature algebra is small and runs in float64 on the CPU whatever the device.
         with torch.no_grad():
-            features = body(x).double().cpu()
+            features = last_layer_features(point, x).double().cpu()
             mean = _flat_last_layer(point, weight_name, bias_name).cpu()
             logits = point.logits(x)[0].double().cpu()
         y = y.cpu()
@@ -231,20 +235,46 @@ def optimise_prior_precision(log_likelihood: float, mode: Tensor, hessian_eigenv
     return float(10.0 ** (result.x if result.fun <= values[best] else grid[best]))
 
 
-def _last_linear(module: nn.Module) -> int:
-    if not isinstance(module, nn.Sequential) or not len(module) or not isinstance(module[-1], nn.Linear):
-        last = type(module[-1]).__name__ if isinstance(module, nn.Sequential) and len(module) else None
-        raise ValueError(f"module must be an nn.Sequential ending in an nn.Linear layer for last-layer Laplace; "
-                         f"got {type(module).__name__}" + (f" ending in {last}" if last else ""))
-    return len(module) - 1
+def last_layer_features(point: Ensemble, x: Tensor, chunk: int = 1024) -> Tensor:
+    """The last Linear layer's input [N, H] for member 0 of ``point`` at ``x`` (a forward hook),
+    in chunks of ``chunk`` points; refuses a network whose output is not that layer's output."""
+    path = _last_linear(point.template)
+    member = point.module(0).eval()
+    seen: dict[str, Tensor] = {}
+    hook = member.get_submodule(path).register_forward_hook(
+        lambda layer, inputs, output: seen.update(features=inputs[0], output=output))
+    pieces = []
+    try:
+        for start in range(0, int(x.shape[0]), chunk):
+            out = member(x[start:start + chunk])
+            if "output" not in seen or out is not seen["output"]:
+                raise ValueError(f"module must output its last nn.Linear layer's ({path!r}) output for last-layer "
+                                 f"Laplace; its output is computed after that layer")
+            pieces.append(seen.pop("features").reshape(out.shape[0], -1))
+            seen.clear()
+    finally:
+        hook.remove()
+    return torch.cat(pieces)
+
+
+def _last_linear(module: nn.Module) -> str:
+    """The path of the module's last ``nn.Linear`` (module order), which must come last."""
+    children = list(module.named_modules())
+    linear = [name for name, layer in children if isinstance(layer, nn.Linear)]
+    last = children[-1][1] if len(children) > 1 else module
+    if isinstance(module, nn.Sequential) and len(module) and not isinstance(module[-1], nn.Linear):
+        linear = []
+        last = module[-1]
+    if not linear:
+        raise ValueError(f"module must end in an nn.Linear layer for last-layer Laplace; got {type(module).__name__}"
+                         f" ending in {type(last).__name__}")
+    return linear[-1]
 
 
 def _split(point: Ensemble):
-    index = _last_linear(point.template)
-    member = point.module(0)
-    body = nn.Sequential(*list(member)[:index]).eval()
-    bias = f"{index}.bias" if member[index].bias is not None else None
-    return body, f"{index}.weight", bias
+    path = _last_linear(point.template)
+    bias = f"{path}.bias" if point.template.get_submodule(path).bias is not None else None
+    return None, f"{path}.weight", bias
 
 
 def _flat_last_layer(point: Ensemble, weight_name: str, bias_name: str | None) -> Tensor:

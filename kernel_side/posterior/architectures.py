@@ -1,16 +1,20 @@
 """Network builders whose architecture is recorded, so saved posteriors can be rebuilt."""
 from __future__ import annotations
 
+import copy
 import math
 from collections.abc import Callable
 from typing import Any
 
 import torch
-from torch import nn
+from torch import Tensor, nn
 
 from jostle.common.checks import check_choice, check_float, check_int
 
-__all__ = ["mlp", "register_architecture", "build_architecture", "architecture_of", "init_parameters"]
+__all__ = [
+    "mlp", "cnn", "ImageView", "DropoutMask", "with_dropout_masks", "register_architecture", "build_architecture",
+    "architecture_of", "init_parameters",
+]
 
 ACTIVATIONS: dict[str, Callable[[], nn.Module]] = {
     "tanh": nn.Tanh,
@@ -108,18 +112,201 @@ def _build_mlp(in_features, classes, hidden, activation, dropout) -> nn.Sequenti
 
 register_architecture("mlp", _build_mlp)
 
+POOLS: dict[str, Callable[[], nn.Module]] = {
+    "max": lambda: nn.MaxPool2d(2),
+    "avg": lambda: nn.AvgPool2d(2),
+}
+NORMS = (None, "layer", "group", "batch")
+
+
+class ImageView(nn.Module):
+    """Reshape inputs to images ``(n, C, H, W)``: flat rows ``(n, C*H*W)`` (how jostle's data
+    sets hold images) and images alike are accepted."""
+
+    def __init__(self, shape: tuple[int, int, int]):
+        super().__init__()
+        self.shape = tuple(int(s) for s in shape)
+
+    def forward(self, x: Tensor) -> Tensor:
+        return x.reshape(x.shape[0], *self.shape)
+
+    def extra_repr(self) -> str:
+        return f"shape={self.shape}"
+
+
+def cnn(
+    in_shape: tuple[int, int, int] | list[int],
+    classes: int,
+    channels: tuple[int, ...] | list[int] = (16, 32),
+    kernel: int = 3,
+    pool: str = "max",
+    norm: str | None = None,
+    hidden: tuple[int, ...] | list[int] = (),
+    dropout: float = 0.0,
+    activation: str = "relu",
+) -> nn.Sequential:
+    """A small convolutional classifier for images ``(C, H, W)`` returning logits.
+
+    Each block is ``Conv2d(kernel, padding=kernel // 2)`` (same size), an optional norm,
+    the activation and a 2x2 pooling; then Flatten, hidden Linear layers and one Linear
+    head. The first layer, :class:`ImageView`, takes flat rows ``(n, C*H*W)`` (as in
+    ``jostle.datasets``) or images ``(n, C, H, W)``.
+
+    Parameters
+    ----------
+    in_shape : (C, H, W)
+        Image shape, e.g. ``data.image_shape`` ((1, 28, 28) greyscale, (3, 32, 32) colour).
+    classes : int
+        Number of output classes (>= 2).
+    channels : sequence of int
+        Output channels of each convolution block (at least one).
+    kernel : int
+        Odd square kernel size of every convolution.
+    pool : {"max", "avg"}
+        The 2x2 pooling after each block; H and W must stay >= 1.
+    norm : {None, "layer", "group", "batch"}
+        After each convolution: ``LayerNorm`` over (channels, H, W), ``GroupNorm`` (4 groups
+        when the channels divide by 4, else 1), or ``BatchNorm2d`` (used in eval mode by
+        every posterior; fitting it in training mode is not supported).
+    hidden : sequence of int
+        Widths of Linear layers between the features and the head.
+    dropout : float
+        Dropout probability after each block and each hidden activation (0 adds none).
+    activation : str
+        One of ``tanh``, ``relu``, ``gelu``, ``silu``, ``elu``, ``sigmoid``, ``softplus``.
+
+    Examples
+    --------
+    >>> net = cnn((1, 28, 28), 10)
+    >>> [type(layer).__name__ for layer in net]  # doctest: +NORMALIZE_WHITESPACE
+    ['ImageView', 'Conv2d', 'ReLU', 'MaxPool2d', 'Conv2d', 'ReLU', 'MaxPool2d', 'Flatten', 'Linear']
+    """
+    if not isinstance(in_shape, (tuple, list)) or len(in_shape) != 3 or not all(
+            isinstance(s, int) and not isinstance(s, bool) and s >= 1 for s in in_shape):
+        raise ValueError(f"in_shape must be (channels, height, width) of positive integers; got {in_shape!r}")
+    classes = check_int("classes", classes, low=2)
+    channels = _widths("channels", channels, allow_empty=False)
+    kernel = check_int("kernel", kernel, low=1)
+    if kernel % 2 == 0:
+        raise ValueError(f"kernel must be an odd integer >= 1 (padding kernel // 2 keeps the size); got {kernel}")
+    check_choice("pool", pool, tuple(POOLS))
+    if norm not in NORMS:
+        raise ValueError(f"norm must be one of {list(NORMS)}; got {norm!r}")
+    hidden = _widths("hidden", hidden, allow_empty=True)
+    dropout = check_float("dropout", dropout, low=0.0, high=1.0, high_open=True)
+    check_choice("activation", activation, tuple(ACTIVATIONS))
+    height, width = in_shape[1], in_shape[2]
+    for _ in channels:
+        height, width = height // 2, width // 2
+    if height < 1 or width < 1:
+        raise ValueError(f"in_shape {tuple(in_shape)} is too small for {len(channels)} 2x2 poolings; "
+                         f"height and width must be >= {2 ** len(channels)}")
+    return build_architecture(
+        "cnn", in_shape=list(in_shape), classes=classes, channels=channels, kernel=kernel, pool=pool,
+        norm=norm, hidden=hidden, dropout=dropout, activation=activation,
+    )
+
+
+def _widths(name: str, widths: Any, allow_empty: bool) -> list[int]:
+    if isinstance(widths, int) or not isinstance(widths, (tuple, list)) or not all(
+            isinstance(w, int) and not isinstance(w, bool) and w >= 1 for w in widths) or (
+            not widths and not allow_empty):
+        rule = "a sequence of positive integers" + ("" if allow_empty else " (at least one)")
+        raise ValueError(f"{name} must be {rule}; got {widths!r}")
+    return list(widths)
+
+
+def _norm_layer(norm: str | None, channels: int, height: int, width: int) -> list[nn.Module]:
+    if norm is None:
+        return []
+    if norm == "layer":
+        return [nn.LayerNorm([channels, height, width])]
+    if norm == "group":
+        return [nn.GroupNorm(4 if channels % 4 == 0 else 1, channels)]
+    return [nn.BatchNorm2d(channels)]
+
+
+def _build_cnn(in_shape, classes, channels, kernel, pool, norm, hidden, dropout, activation) -> nn.Sequential:
+    depth, height, width = in_shape
+    layers: list[nn.Module] = [ImageView(tuple(in_shape))]
+    for size in channels:
+        layers.append(nn.Conv2d(depth, size, kernel, padding=kernel // 2))
+        layers += _norm_layer(norm, size, height, width)
+        layers += [ACTIVATIONS[activation](), POOLS[pool]()]
+        if dropout > 0:
+            layers.append(nn.Dropout(dropout))
+        depth, height, width = size, height // 2, width // 2
+    layers.append(nn.Flatten())
+    features = depth * height * width
+    for size in hidden:
+        layers += [nn.Linear(features, size), ACTIVATIONS[activation]()]
+        if dropout > 0:
+            layers.append(nn.Dropout(dropout))
+        features = size
+    layers.append(nn.Linear(features, classes))
+    return nn.Sequential(*layers)
+
+
+register_architecture("cnn", _build_cnn)
+
+
+class DropoutMask(nn.Module):
+    """A fixed dropout mask: ``h * keep / (1 - p)``, ``keep`` (0 drops, 1 keeps) shaped like one
+    point's input (``(C, H, W)``, ``(C, 1, 1)`` for channel dropout, ``(features,)``) and shared
+    by every point. An MC-dropout member is the network with each Dropout replaced by one of
+    these; stacked over members, ``keep`` is a sampled input of the forward pass."""
+
+    def __init__(self, shape: tuple[int, ...] | list[int], p: float):
+        super().__init__()
+        self.p = float(p)
+        self.register_buffer("keep", torch.ones(tuple(int(s) for s in shape)))
+
+    def forward(self, h: Tensor) -> Tensor:
+        return h * (self.keep / (1.0 - self.p))
+
+    def extra_repr(self) -> str:
+        return f"shape={tuple(self.keep.shape)}, p={self.p}"
+
+
+def with_dropout_masks(module: nn.Module, sites: list[dict]) -> nn.Module:
+    """A copy of ``module`` with the submodule at each ``site["path"]`` replaced by a
+    :class:`DropoutMask` of ``site["shape"]`` and rate ``site["p"]``. A module built by a
+    registered builder gives one tagged ``dropout_masks``, so saved members rebuild on load."""
+    arch = architecture_of(module)
+    if arch is not None:
+        return build_architecture("dropout_masks", base=arch, sites=[dict(site) for site in sites])
+    return _replace_sites(copy.deepcopy(module), sites)
+
+
+def _replace_sites(module: nn.Module, sites: list[dict]) -> nn.Module:
+    for site in sites:
+        parent_path, _, child = site["path"].rpartition(".")
+        parent = module.get_submodule(parent_path) if parent_path else module
+        setattr(parent, child, DropoutMask(site["shape"], site["p"]))
+    return module
+
+
+def _build_dropout_masks(base: dict, sites: list[dict]) -> nn.Module:
+    return _replace_sites(build_architecture(base["builder"], **base["kwargs"]), sites)
+
+
+register_architecture("dropout_masks", _build_dropout_masks)
+
 
 @torch.no_grad()
 def init_parameters(module: nn.Module, generator: torch.Generator) -> nn.Module:
-    """Re-draw every Linear layer's weights with PyTorch's default scheme, from ``generator``.
+    """Re-draw every Linear and Conv2d layer's weights with PyTorch's default scheme, from ``generator``.
 
     PyTorch's own initialisers draw from the global RNG; this keeps seeding explicit.
     Weights and biases are U(-1/sqrt(fan_in), 1/sqrt(fan_in)), which is what
-    ``nn.Linear.reset_parameters`` gives (kaiming_uniform with a = sqrt(5)).
+    ``nn.Linear.reset_parameters`` and ``nn.Conv2d.reset_parameters`` give (kaiming_uniform
+    with a = sqrt(5)); fan_in of a convolution is in_channels / groups * kernel area.
+    Norm layers keep their weights (ones and zeros by default).
     """
     for layer in module.modules():
-        if isinstance(layer, nn.Linear):
-            bound = 1.0 / math.sqrt(layer.in_features)
+        if isinstance(layer, (nn.Linear, nn.Conv2d)):
+            fan_in = layer.weight[0].numel()
+            bound = 1.0 / math.sqrt(fan_in)
             device = layer.weight.device
             weight = torch.rand(layer.weight.shape, generator=generator, dtype=layer.weight.dtype)
             layer.weight.copy_((weight * 2 - 1).mul_(bound).to(device))

@@ -32,7 +32,7 @@ from torch.func import functional_call, grad, vmap
 
 import jostle.posterior.forward as forward_plans
 from jostle.common.checks import check_choice
-from jostle.posterior.forward import ForwardPlan, MLPPlan, chunk_sizes
+from jostle.posterior.forward import ConvPlan, ForwardPlan, MLPPlan, chunk_sizes
 from jostle.posterior.planned_gradient import ExpectedLossGradient
 
 __all__ = ["OBJECTIVES", "BACKWARDS", "objective_values", "GradientEngine"]
@@ -95,6 +95,8 @@ class GradientEngine:
         """Each selected member's input gradient of its own cross-entropy -> [S, n, ...]."""
         if backward == "auto" and self.planned:
             return self._kernel(ens, members, labels, 1.0).member_gradients(x)
+        if backward == "auto" and isinstance(self.plan, ConvPlan):
+            return self._blocked_member_grads(ens, x, labels, members)
         template = ens.template
 
         def member_loss(params: dict[str, Tensor], points: Tensor, targets: Tensor) -> Tensor:
@@ -110,6 +112,29 @@ class GradientEngine:
         # Points are independent, so the sum over a chunk yields each point's own gradient.
         pieces = [per_member(params, x[i:i + chunk], labels[i:i + chunk]) for i in range(0, points, chunk)]
         return torch.cat(pieces, dim=1)
+
+    def _blocked_member_grads(self, ens, x: Tensor, labels: Tensor, members: Any) -> Tensor:
+        """Member input gradients through the convolutional pass: each member gets its own
+        copy of the inputs (``per_member=True``), in the blocks of the plan's size rule, and
+        one backward of the summed losses gives every member's gradient (members and points
+        are independent)."""
+        params = {k: v.detach() for k, v in ens._selected(members).items()}
+        count, points = int(next(iter(params.values())).shape[0]), int(x.shape[0])
+        out = x.new_empty((count, *x.shape))
+        with torch.enable_grad():
+            member_chunk, point_chunk = self.plan.chunk_sizes(count, points, ens.memory_budget, x.element_size())
+            for m0 in range(0, count, member_chunk):
+                block = {k: v[m0:m0 + member_chunk] for k, v in params.items()}
+                size = int(next(iter(block.values())).shape[0])
+                for n0 in range(0, points, point_chunk):
+                    piece = x[n0:n0 + point_chunk]
+                    leaf = piece.unsqueeze(0).expand(size, *piece.shape).clone().requires_grad_(True)
+                    logits = self.plan.forward(block, leaf, per_member=True)
+                    targets = labels[n0:n0 + point_chunk].repeat(size)
+                    loss = torch.nn.functional.cross_entropy(logits.reshape(-1, logits.shape[-1]), targets,
+                                                             reduction="sum")
+                    (out[m0:m0 + size, n0:n0 + point_chunk],) = torch.autograd.grad(loss, leaf)
+        return out
 
     def _kernel(self, ens, members: Any, labels: Tensor, sign: float) -> ExpectedLossGradient:
         """The planned kernel for these members and labels: kept, or built and kept.

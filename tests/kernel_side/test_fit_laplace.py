@@ -177,7 +177,8 @@ def test_laplace_errors_are_clear(moons):
         fit_laplace(net, moons, samples=0)
     with pytest.raises(ValueError, match="prior_precision must be a finite float > 0; got -1"):
         fit_laplace(net, moons, prior_precision=-1.0)
-    with pytest.raises(ValueError, match="module must be an nn.Sequential ending in an nn.Linear layer"):
+    with pytest.raises(ValueError, match="module must end in an nn.Linear layer for last-layer Laplace; "
+                                         "got Sequential ending in Tanh"):
         fit_laplace(torch.nn.Sequential(torch.nn.Linear(2, 2), torch.nn.Tanh()), moons)
     with pytest.raises(ValueError, match="epochs must be an integer >= 1; got 0"):
         fit_laplace(net, moons, epochs=0)

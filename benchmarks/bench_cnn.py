@@ -1,0 +1,129 @@
+"""The default CNN on 28x28 images: jostle's batched passes against a per-member loop.
+
+Network: ``jostle.cnn((1, 28, 28), 10)`` (two 3x3 convolutions of 16 and 32 channels,
+ReLU, 2x2 max pooling, one Linear head), S members seeded by ``init_parameters``. The
+loop evaluates each member as its own ``nn.Module`` on the whole batch (what a user
+writes); PGD's loop differentiates each member with plain autograd. Every ratio is
+measured side by side in one process, candidates interleaved round after round, medians
+taken (the machine's speed swings with its load). Also the strategies the forward
+engine chooses between (members side by side as channel blocks, one member at a time
+through the same pass, ``vmap``), and the peak extra memory of predict at S = 100,
+N = 10,000 in a fresh process (its resident-set high-water mark above the resident size
+before: an upper bound).
+"""
+from __future__ import annotations
+
+import subprocess
+import sys
+
+import torch
+from _timing import interleaved, median
+from torch import nn
+
+import jostle
+import jostle.posterior.forward as forward
+from jostle.posterior.forward import GeneralPlan
+
+SHAPE, CLASSES, STEPS, EPS = (1, 28, 28), 10, 40, 0.1
+
+
+def main() -> None:
+    for members in (20, 100):
+        ens, nets = _ensemble(members)
+        for points in (1, 100, 1000):
+            _show(_predict_rows(ens, nets, points))
+    ens, nets = _ensemble(100)
+    x = torch.rand(1, 784, generator=torch.Generator().manual_seed(7))
+    y = ens.predict(x).label
+    times = interleaved({
+        "jostle": lambda: jostle.attack(ens, x, y, eps=EPS, steps=STEPS, record_path=False),
+        "loop": lambda: _loop_pgd(nets, x, y),
+    }, repeats=5, warmup=1)
+    ms = {name: median(values) * 1e3 for name, values in times.items()}
+    _show([("PGD-40, N=1, S=100: jostle / per-member autograd loop (ms)",
+            f"{ms['jostle']:.1f} / {ms['loop']:.1f} = {ms['loop'] / ms['jostle']:.1f}x (target >= 10x)")])
+    _show([("predict S=100, N=10,000: peak extra memory (MiB; target < 2048)", f"{_peak_extra_mib():.0f}")])
+
+
+def _show(rows: list[tuple[str, str]]) -> None:
+    """Print as measured (the whole run takes minutes on a loaded machine)."""
+    for name, value in rows:
+        print(f"{name:<62}  {value}", flush=True)
+
+
+def _predict_rows(ens, nets, points: int) -> list[tuple[str, str]]:
+    members = len(ens)
+    x = torch.rand(points, 784, generator=torch.Generator().manual_seed(points))
+    candidates = {"jostle": lambda: ens.predict(x), "loop": lambda: _loop_predict(nets, x)}
+    if members == 20 and points <= 100:
+        candidates["one member per block"] = lambda: _rule(ens, x, 1)
+        candidates["vmap"] = lambda: _vmap_predict(ens, x)
+    times = interleaved(candidates, repeats=3 if members * points >= 100_000 else 7, warmup=1)
+    ms = {name: median(values) * 1e3 for name, values in times.items()}
+    tag = f"predict S={members}, N={points}"
+    rows = [(f"{tag}: jostle / loop (ms)", f"{ms['jostle']:.1f} / {ms['loop']:.1f}"
+             f" = {ms['loop'] / ms['jostle']:.2f}x (never slower; 1.5x at S=100, N=1000)")]
+    rows += [(f"{tag}: strategy '{name}' (ms)", f"{ms[name]:.1f}") for name in ("one member per block", "vmap")
+             if name in ms]
+    return rows
+
+
+def _ensemble(members: int):
+    g = torch.Generator().manual_seed(0)
+    nets = [jostle.init_parameters(jostle.cnn(SHAPE, CLASSES), g).eval() for _ in range(members)]
+    return jostle.Ensemble.from_modules(nets), nets
+
+
+def _loop_predict(nets, x):
+    with torch.no_grad():
+        return torch.stack([torch.softmax(net(x), -1) for net in nets]).mean(0)
+
+
+def _rule(ens, x, members_per_block):
+    kept = forward.GROUPED_MEMBERS, forward.BLOCK_MEMBERS
+    forward.GROUPED_MEMBERS = forward.BLOCK_MEMBERS = members_per_block
+    try:
+        return ens.predict(x)
+    finally:
+        forward.GROUPED_MEMBERS, forward.BLOCK_MEMBERS = kept
+
+
+def _vmap_predict(ens, x):
+    plan = GeneralPlan(ens.template)
+    with torch.no_grad():
+        return torch.softmax(plan.run(ens.params, x, ens.memory_budget), -1).mean(0)
+
+
+def _loop_pgd(nets, x, y):
+    step = 2.5 * EPS / STEPS
+    x_adv = x.clone()
+    for _ in range(STEPS):
+        leaf = x_adv.detach().requires_grad_(True)
+        loss = sum(nn.functional.cross_entropy(net(leaf), y, reduction="sum") for net in nets) / len(nets)
+        (grad,) = torch.autograd.grad(loss, leaf)
+        x_adv = torch.min(torch.max(leaf.detach() + step * grad.sign(), x - EPS), x + EPS)
+    return x_adv
+
+
+_MEMORY_PROBE = """
+import resource, torch, jostle
+g = torch.Generator().manual_seed(0)
+nets = [jostle.init_parameters(jostle.cnn((1, 28, 28), 10), g).eval() for _ in range(100)]
+ens = jostle.Ensemble.from_modules(nets)
+x = torch.rand(10_000, 784, generator=g)
+ens.predict(x[:100])
+import os
+before = int(open("/proc/self/statm").read().split()[1]) * os.sysconf("SC_PAGE_SIZE") / 2**20  # resident now
+ens.predict(x)
+# the high-water mark (KiB on Linux) above the resident size before: an upper bound on the extra
+print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024 - before)
+"""
+
+
+def _peak_extra_mib() -> float:
+    out = subprocess.run([sys.executable, "-c", _MEMORY_PROBE], capture_output=True, text=True, check=True)
+    return float(out.stdout.strip().splitlines()[-1])
+
+
+if __name__ == "__main__":
+    main()
