@@ -17,24 +17,6 @@ function palette(root) {
     certifiedRgb: rgb(v("--jostle-certified")) };
 }
 
-/** The certified-radius layer: one hue, darker where the proved radius is larger (row 0 = lowest y). */
-function paintRadius(model, colours) {
-  const grid = model.get("radius_layer"), values = typed(grid);
-  if (!grid || grid.shape.length !== 2 || values.length === 0) return null;
-  const [ny, nx] = grid.shape, top = model.get("radius_layer_max") || 1;
-  const off = Object.assign(document.createElement("canvas"), { width: nx, height: ny });
-  const ctx = off.getContext("2d"), img = ctx.createImageData(nx, ny), [r, g, b] = colours.certifiedRgb;
-  for (let j = 0; j < ny; j++) {
-    for (let i = 0; i < nx; i++) {
-      const out = ((ny - 1 - j) * nx + i) * 4;
-      img.data[out] = r; img.data[out + 1] = g; img.data[out + 2] = b;
-      img.data[out + 3] = Math.round(255 * 0.85 * Math.min(1, Math.max(0, values[j * nx + i] / top)));
-    }
-  }
-  ctx.putImageData(img, 0, 0);
-  return off;
-}
-
 /** Paint the gridded layer into a small offscreen canvas (row 0 = lowest y). */
 function paintLayer(model, colours) {
   if (model.get("layer") === "certified") return paintRadius(model, colours);
@@ -150,19 +132,6 @@ function draw(model, canvas, root, state) {
   root.dataset.flipRadiusPx = flip >= 0 ? (flip * sx).toFixed(2) : "";
   root.dataset.radiusLayer = String(typed(model.get("radius_layer")).length);
   root.dataset.pathEnd = steps > 0 ? `${path[2 * steps - 2]},${path[2 * steps - 1]}` : "";
-}
-
-/** Numbers beside the certified-radius colour ramp (text only), shown with that layer. */
-function buildRadiusLegend(model, box) {
-  const grid = model.get("radius_layer"), shown = model.get("layer") === "certified";
-  box.hidden = !shown;
-  if (!shown) return;
-  const top = model.get("radius_layer_max") || 0, ramp = Object.assign(document.createElement("i"), { className: "jostle-ramp" });
-  const [low, high, note] = [0, 1, 2].map(() => document.createElement("span"));
-  low.textContent = "r = 0"; high.textContent = `${top.toPrecision(3)}`;
-  note.textContent = grid && grid.shape.length === 2 && grid.shape[0] > 0
-    ? ` certified radius per cell (${model.get("radius_layer_note")})` : " certified radius: computing";
-  box.replaceChildren(low, ramp, high, note);
 }
 
 /** Legend and layer picker; every class name goes in as textContent. */

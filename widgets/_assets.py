@@ -22,7 +22,7 @@ def read_asset(name: str) -> str:
     return asset_path(name).read_text(encoding="utf-8")
 
 
-def canvas_module(name: str) -> str:
+def canvas_module(name: str, *helpers: str) -> str:
     """A canvas view's ES module as served: the shared helpers of ``_canvas_helpers.js``
-    (wire arrays, theme colours) placed ahead of the module's own source."""
-    return read_asset("_canvas_helpers.js") + "\n" + read_asset(name)
+    (wire arrays, theme colours) and any of the view's own ``helpers`` placed ahead of its source."""
+    return "\n".join(read_asset(part) for part in ("_canvas_helpers.js", *helpers, name))

@@ -22,7 +22,7 @@ class ExplorerMap(anywidget.AnyWidget):
     writes only ``point`` and ``layer``.
     """
 
-    _esm = canvas_module("explorer_map.js")
+    _esm = canvas_module("explorer_map.js", "_radius_layer.js")
     _css = asset_path("theme.css")
 
     point = t.List(
