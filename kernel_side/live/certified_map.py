@@ -48,7 +48,7 @@ def map_levels(grid: int) -> tuple[int, ...]:
 
 
 def radius_map(ens: Ensemble, samples: int, grid: int, lo: tuple, hi: tuple, norm: str = "inf",
-               method: str = "crown", iterations: int = MAP_ITERATIONS) -> RadiusMap:
+               method: str = "crown", iterations: int = MAP_ITERATIONS, start: RadiusMap | None = None) -> RadiusMap:
     """Certified radius of the first ``samples`` members' predictive at each cell of a ``grid`` x ``grid`` grid.
 
     Parameters
@@ -64,6 +64,12 @@ def radius_map(ens: Ensemble, samples: int, grid: int, lo: tuple, hi: tuple, nor
         As for :func:`jostle.certified_radius`.
     iterations : int
         Bisection steps; the result is within ``top / 2**iterations`` of the bisection's limit.
+    start : RadiusMap, optional
+        A coarser map of the same box, norm and method: each cell's bracket starts around the
+        nearest coarse cell's radius, widened by the distance between the two cells (the
+        smallest flipping distance moves by at most that much, a triangle-inequality fact from
+        memory); both ends of that guess are checked, so the answer is the same kind of bracket,
+        at most ``top / 2**iterations`` wide, in fewer steps.
 
     Returns
     -------
@@ -76,8 +82,9 @@ def radius_map(ens: Ensemble, samples: int, grid: int, lo: tuple, hi: tuple, nor
     box = (torch.as_tensor(lo, dtype=ens.dtype), torch.as_tensor(hi, dtype=ens.dtype))
     span = box[1] - box[0]
     top = float(span.max() if norm == "inf" else span.norm())
-    radius = _bisect_predictive(ens[:samples], points, norm, method, box, top, check_int("iterations", iterations,
-                                                                                          low=1))
+    iterations = check_int("iterations", iterations, low=1)
+    guess = None if start is None else _guess_from(start, xs, ys, norm)
+    radius = _bisect_predictive(ens[:samples], points, norm, method, box, top, iterations, guess)
     return RadiusMap(xs=xs.astype(np.float32), ys=ys.astype(np.float32),
                      radius=radius.reshape(grid, grid).numpy().astype(np.float32),
                      resolution=top / 2**iterations, top=top, norm=norm, method=method, samples=samples)
@@ -86,19 +93,35 @@ def radius_map(ens: Ensemble, samples: int, grid: int, lo: tuple, hi: tuple, nor
 def radius_map_levels(ens: Ensemble, samples: int, grid: int, lo: tuple, hi: tuple, norm: str = "inf",
                       method: str = "crown", keep_going: Callable[[], bool] = lambda: True) -> Iterator[RadiusMap]:
     """:func:`radius_map` at each of :func:`map_levels`, coarse first; stops once ``keep_going()`` is False."""
+    found = None
     for level in map_levels(grid):
         if not keep_going():
             return
-        yield radius_map(ens, samples, level, lo, hi, norm, method)
+        found = radius_map(ens, samples, level, lo, hi, norm, method, start=found)
+        yield found
+
+
+def _guess_from(coarse: RadiusMap, xs: np.ndarray, ys: np.ndarray, norm: str) -> tuple[torch.Tensor, torch.Tensor]:
+    """Per fine cell (row-major, y then x): a low and a high guess from the nearest coarse cell."""
+    ix = np.abs(xs[:, None] - coarse.xs[None, :].astype(np.float64)).argmin(1)
+    iy = np.abs(ys[:, None] - coarse.ys[None, :].astype(np.float64)).argmin(1)
+    dx, dy = np.abs(xs - coarse.xs[ix]), np.abs(ys - coarse.ys[iy])
+    gap = np.maximum(dy[:, None], dx[None, :]) if norm == "inf" else np.hypot(dy[:, None], dx[None, :])
+    near = coarse.radius[np.ix_(iy, ix)].astype(np.float64)
+    slack = gap + coarse.resolution
+    low = np.maximum(near - slack, 0.0).ravel()
+    high = np.minimum(near + slack, coarse.top).ravel()
+    return torch.as_tensor(low), torch.as_tensor(high)
 
 
 def _bisect_predictive(ens: Ensemble, points: torch.Tensor, norm: str, method: str, box: tuple, top: float,
-                       iterations: int) -> torch.Tensor:
+                       iterations: int, guess: tuple[torch.Tensor, torch.Tensor] | None = None) -> torch.Tensor:
     """The bracket of :func:`jostle.certified_radius` with ``high = top``, for the predictive alone.
 
     The predictive's label is computed once per cell, and each step bounds only the cells whose
-    bracket is still open (the member radii are not needed here, which halves the work of
-    ``certified_radius``); the lower end is certified at every step.
+    bracket is still open and wider than ``top / 2**iterations`` (the member radii are not
+    needed here, which halves the work of ``certified_radius``); the lower end is certified at
+    every step. ``guess`` (low, high per cell) starts each bracket nearer its answer.
     """
     with torch.no_grad():
         label = ens.predict(points).label
@@ -111,14 +134,29 @@ def _bisect_predictive(ens: Ensemble, points: torch.Tensor, norm: str, method: s
         return low.gather(1, own).squeeze(1) > up.scatter(1, own, float("-inf")).amax(1)
 
     every = torch.arange(points.shape[0])
-    zero = torch.zeros(points.shape[0], dtype=points.dtype)
-    alive = holds(zero, every)
-    lower, upper = zero.clone(), torch.where(alive, top, 0.0).to(zero.dtype)
-    at_top = torch.zeros_like(alive)
-    at_top[every[alive]] = holds(torch.full_like(zero, top), every[alive])
-    lower[at_top], upper[at_top] = top, torch.inf
-    for _ in range(iterations):
-        cells = every[torch.isfinite(upper) & alive & (upper > lower)]
+    lower = torch.zeros(points.shape[0], dtype=points.dtype)
+    upper = torch.full_like(lower, top)
+    if guess is None:
+        alive = holds(lower, every)
+        upper[~alive] = 0.0
+    else:  # check the guess's low end, then its high end where the low end held
+        low_guess, high_guess = (g.to(lower.dtype) for g in guess)
+        held = holds(low_guess, every)
+        lower[held], upper[~held] = low_guess[held], low_guess[~held]
+        upper[held] = high_guess[held]
+    tried = every[upper == top]  # does the whole box hold?
+    at_top = holds(upper, tried)
+    lower[tried[at_top]], upper[tried[at_top]] = top, torch.inf
+    if guess is not None:
+        cells = every[held & (upper < top) & (upper > lower)]
+        above = cells[holds(upper, cells)]  # the high guess held too: search above it, up to the box
+        lower[above] = upper[above]
+        whole = holds(torch.full_like(upper, top), above)
+        upper[above] = torch.where(whole, torch.inf, top).to(upper.dtype)
+        lower[above[whole]] = top
+    resolution = top / 2**iterations
+    for _ in range(iterations + 2):
+        cells = every[torch.isfinite(upper) & (upper - lower > resolution)]
         if cells.numel() == 0:
             break
         mid = 0.5 * (lower + upper)

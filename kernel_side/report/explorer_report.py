@@ -57,24 +57,25 @@ def view_numbers(view: ViewData) -> dict:
 
 
 def certified_radius_of(view: Any) -> float | None:
-    """The certified radius at the picked input carried by a view, or None where none was computed.
+    """The certified radius of the predictive at the picked input (``view.radius``), or None where
+    the view computed none (certificates off, or a network the bounds do not cover)."""
+    found = getattr(view, "radius", None)
+    return None if found is None else float(found.radius)
 
-    Read from ``view.certified_radius``, ``view.certified`` or ``view.certificate``: a number, a
-    one-element tensor or array, or an object with ``radius`` or ``eps`` holding one.
-    """
-    for name in ("certified_radius", "certified", "certificate"):
-        found = getattr(view, name, None)
-        for inner in ("radius", "eps"):
-            found = getattr(found, inner, found)
-        if found is None:
-            continue
-        try:
-            value = float(np.asarray(found, dtype=np.float64).reshape(-1)[0])
-        except (TypeError, ValueError, IndexError):
-            continue
-        if np.isfinite(value):
-            return value
-    return None
+
+def certified_rows(view: Any) -> list[tuple[str, str]]:
+    """The certified read-outs of a view as (label, text) rows, each beside its caution."""
+    rows: list[tuple[str, str]] = []
+    radius = getattr(view, "radius", None)
+    if radius is not None:
+        flip = "none found" if not np.isfinite(radius.flip) else f"{radius.flip:.4f}"
+        rows += [(f"certified radius ({radius.method.upper()}, L-{radius.norm} ball)", f"{radius.radius:.4f}"),
+                 ("smallest flipping budget the attack found (an upper bound)", flip),
+                 ("in words", radius.words), ("about the certificate", radius.caution)]
+    budget = getattr(view, "budget_certificate", None)
+    if budget is not None:
+        rows += [("certified at the budget", budget.words), ("about the certificate", budget.caution)]
+    return rows
 
 
 def explorer_figures(view: ViewData, bounds: Any = None, train: tuple | None = None,
@@ -139,9 +140,7 @@ def number_rows(view: ViewData) -> tuple[list[list[str]], list[tuple[str, str]]]
     if view.attack is not None:
         summary += [("attack flipped the prediction", "yes" if view.attack.success else "no"),
                     ("distance moved", f"{view.attack.distance:.4f}")]
-    radius = certified_radius_of(view)
-    if radius is not None:
-        summary.append(("certified radius", f"{radius:.4f}"))
+    summary += certified_rows(view)
     summary += [(f"note: {k + 1}", text) for k, text in enumerate(view.errors)]
     return per_class, summary
 

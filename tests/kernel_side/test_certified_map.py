@@ -47,3 +47,35 @@ def test_levels_go_coarse_to_fine_and_stop_when_told():
 def test_bad_grid_is_refused():
     with pytest.raises(ValueError, match="grid must be an integer >= 2; got 1"):
         map_levels(1)
+
+
+@pytest.mark.parametrize("norm", ["inf", "2"])
+def test_a_level_started_from_a_coarser_one_matches_a_cold_start(norm, monkeypatch):
+    # IBP bounds grow with the ball, so each cell has one threshold radius and both brackets
+    # (each at most top / 2**MAP_ITERATIONS wide) hold it: the ends differ by at most one bracket.
+    ens = _ensemble("relu")
+    lo, hi = (-1.5, -1.0), (2.0, 1.5)
+    import importlib
+
+    layer = importlib.import_module("jostle.live.certified_map")
+    bounded, bound = [], layer.pair_bounds
+
+    def counting(ens, x, *args):
+        bounded.append(x.shape[0])
+        return bound(ens, x, *args)
+
+    monkeypatch.setattr(layer, "pair_bounds", counting)
+    coarse = radius_map(ens, 4, 6, lo, hi, norm=norm, method="ibp")
+    bounded.clear()
+    cold = radius_map(ens, 4, 12, lo, hi, norm=norm, method="ibp")
+    cold_cells, bounded[:] = sum(bounded), []
+    warm = radius_map(ens, 4, 12, lo, hi, norm=norm, method="ibp", start=coarse)
+    assert sum(bounded) < 0.8 * cold_cells, (sum(bounded), cold_cells)  # the point of the warm start
+    np.testing.assert_allclose(warm.radius, cold.radius, atol=cold.resolution * (1 + 1e-5), rtol=0)
+    assert (cold.radius > 0).any() and (cold.radius == 0).any(), "the grid should cross a decision boundary"
+    box = (torch.tensor(lo, dtype=ens.dtype), torch.tensor(hi, dtype=ens.dtype))
+    points = torch.tensor(np.stack(np.meshgrid(warm.xs, warm.ys), -1).reshape(-1, 2), dtype=ens.dtype)
+    held = jostle.certify(ens, points, eps=torch.as_tensor(warm.radius.ravel(), dtype=ens.dtype), norm=norm,
+                          method="ibp", bounds=box).predictive
+    positive = torch.as_tensor(warm.radius.ravel() > 0)
+    assert bool(held[positive].all()), "every positive radius drawn is a certified budget"

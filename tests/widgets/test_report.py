@@ -270,6 +270,8 @@ def test_image_report_round_trip_and_refusals(digits, tmp_path):
         assert re.findall(r'<figure data-view="([a-z]+)">', text) == [
             "original", "perturbation", "attacked", "predictive", "fade"]
         assert len(parser.images) == 3 and all(h.startswith("data:image/png;base64,") for h in parser.images)
+        assert ex.result.budget_certificate is not None  # members certified at the budget, with its caution
+        assert ex.result.budget_certificate.words in html.unescape(text)
         entry = read_report_state(path)["entries"][0]
         np.testing.assert_array_equal(np.asarray(entry["view"]["attack"]["x_adv"], dtype=ex.result.attack.x_adv.dtype),
                                       ex.result.attack.x_adv)
@@ -321,21 +323,21 @@ def test_explorer_report_state_json_is_strict(report):
     json.loads(raw, parse_constant=lambda name: pytest.fail(f"non-strict JSON constant {name}"))
 
 
-def test_a_certified_radius_carried_by_the_view_is_drawn_in_green(explorer):
-    from types import SimpleNamespace
-
+def test_the_certified_radius_of_the_live_view_is_drawn_and_written(explorer, report):
     from jostle.report.charts import map_drawing
     from jostle.report.explorer_report import certified_radius_of
 
     view = explorer.result
-    assert certified_radius_of(view) is None  # this view carries no certificate
-    assert certified_radius_of(SimpleNamespace(certified_radius=0.25)) == 0.25
-    assert certified_radius_of(SimpleNamespace(certified=SimpleNamespace(eps=np.array([0.125])))) == 0.125
+    assert view.radius is not None, "the Explorer computes the CROWN radius at the picked input"
+    assert certified_radius_of(view) == view.radius.radius
     bounds = explorer._bounds
     plain = map_drawing(view, bounds).svg()
     certified = map_drawing(view, bounds, certified_radius=0.1).svg()
     assert report_palette.CERTIFIED_COLOUR not in plain
     assert certified.count(f'stroke="{report_palette.CERTIFIED_COLOUR}"') == 1
+    text = html.unescape(report.read_text(encoding="utf-8"))
+    assert f"{view.radius.radius:.4f}" in text and view.radius.words in text
+    assert view.radius.caution in text  # the caution stands beside the certified read-out
 
 
 def test_settings_the_attack_refuses_still_give_a_report(evil_moons, tmp_path):
