@@ -13,6 +13,7 @@ function paint(canvas, w, colour, rgbOf, tile) {
   const [height, width] = w.shape.slice(-2), plane = height * width, channels = w.shape.length === 3;
   const total = channels && tile ? 3 * width + 2 : width;
   canvas.width = total; canvas.height = height;
+  canvas.style.width = `${Math.round(88 * total / height)}px`; // the theme's 88px height, pixels kept square
   const ctx = canvas.getContext("2d"), img = ctx.createImageData(total, height);
   const put = (x, y, [r, g, b]) => {
     const o = 4 * (y * total + x);
