@@ -65,7 +65,11 @@ class ImageExplorer(GradientStripPart, LiveBox):
         fade, self._draw_fade = _charts.fade_chart()
         attack = [self._controls, fade, _charts.caption(_charts.FADE_CAPTION)]
         gradients = self._setup_gradient_strip(data.image_shape)
-        children = _layout(data, ens, self._strip, self._panels, predictive, attack, self._status)
+        self._view_choice = w.Dropdown(options=list(PERTURBATION_VIEWS), value="channels",
+                                       description="perturbation", layout=w.Layout(width="220px"))
+        self._view_choice.add_class("jostle-tid-perturbation-view")
+        inputs = w.VBox([self._panels, self._view_choice] if len(shape) == 3 else [self._panels])
+        children = _layout(data, ens, self._strip, inputs, predictive, attack, self._status)
         super().__init__(children=children[:-1] + [gradients, children[-1]], **kwargs)
         self.add_class("jostle-root")
         for name in ("jostle-image-explorer", "jostle-tag-scope", "jostle-tid-image-explorer"):
@@ -75,6 +79,7 @@ class ImageExplorer(GradientStripPart, LiveBox):
             self.samples = len(ens) if samples is None else samples
             self.steps, self.objective = steps, objective
         self._strip.selected = self.index
+        w.link((self, "perturbation_view"), (self._view_choice, "value"))
         self._strip.observe(self._from_strip, names=["selected"])
         self._start_live()
 
@@ -110,7 +115,7 @@ class ImageExplorer(GradientStripPart, LiveBox):
         self._request()
 
     def close(self) -> None:
-        for child in ("_strip", "_panels"):
+        for child in ("_strip", "_panels", "_view_choice"):
             if hasattr(self, child):
                 getattr(self, child).close()
         super().close()

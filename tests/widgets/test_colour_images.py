@@ -49,7 +49,8 @@ def test_perturbation_per_channel_and_as_magnitude(colour_explorer, cards):
     # x_adv - x in float64, sent as float32: one float32 rounding, relative 2**-24 (float32 eps / 2)
     np.testing.assert_allclose(per_channel, x_adv - x, rtol=6e-8, atol=1e-12)
     np.testing.assert_allclose(from_wire(ex._panels.attacked), x_adv, rtol=6e-8)
-    ex.perturbation_view = "magnitude"
+    ex._view_choice.value = "magnitude"  # the dropdown under the panels
+    assert ex.perturbation_view == "magnitude"
     assert ex.wait(120) and ex.status[0] == "idle"
     magnitude = from_wire(ex._panels.perturbation)
     assert magnitude.shape == tuple(shape[1:])
