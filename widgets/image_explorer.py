@@ -66,7 +66,7 @@ class ImageExplorer(GradientStripPart, LiveBox):
         attack = [self._controls, fade, _charts.caption(_charts.FADE_CAPTION)]
         gradients = self._setup_gradient_strip(data.image_shape)
         self._view_choice = w.Dropdown(options=list(PERTURBATION_VIEWS), value="channels",
-                                       description="perturbation", layout=w.Layout(width="220px"))
+                                       description="perturbation", style={"description_width": "initial"})
         self._view_choice.add_class("jostle-tid-perturbation-view")
         inputs = w.VBox([self._panels, self._view_choice] if len(shape) == 3 else [self._panels])
         children = _layout(data, ens, self._strip, inputs, predictive, attack, self._status)
