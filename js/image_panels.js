@@ -1,16 +1,29 @@
 // jostle image panels: the chosen image, the perturbation on a diverging scale, the attacked image.
 // typed() and rgb() come from _canvas_helpers.js, served ahead of this module.
 
-/** @param {HTMLCanvasElement} canvas @param {WireArray} w @param {(v: number) => number[]} colour */
-function paint(canvas, w, colour) {
+/**
+ * (H, W) is drawn with `colour`; (3, H, W) as RGB (`rgbOf` maps a value to 0..255), or with
+ * `tile` its three channels side by side, one pixel apart, each with `colour`.
+ * @param {HTMLCanvasElement} canvas @param {WireArray} w @param {(v: number) => number[]} colour
+ */
+function paint(canvas, w, colour, rgbOf, tile) {
   const values = typed(w);
-  if (!w || w.shape.length !== 2 || values.length === 0) { canvas.width = canvas.width; return; }
-  const [height, width] = w.shape;
-  canvas.width = width; canvas.height = height;
-  const ctx = canvas.getContext("2d"), img = ctx.createImageData(width, height);
-  for (let k = 0; k < values.length; k++) {
-    const [r, g, b] = colour(values[k]);
-    img.data[4 * k] = r; img.data[4 * k + 1] = g; img.data[4 * k + 2] = b; img.data[4 * k + 3] = 255;
+  const ok = w && values.length > 0 && (w.shape.length === 2 || (w.shape.length === 3 && w.shape[0] === 3));
+  if (!ok) { canvas.width = canvas.width; return; }
+  const [height, width] = w.shape.slice(-2), plane = height * width, channels = w.shape.length === 3;
+  const total = channels && tile ? 3 * width + 2 : width;
+  canvas.width = total; canvas.height = height;
+  canvas.style.width = `${Math.round(88 * total / height)}px`; // the theme's 88px height, pixels kept square
+  const ctx = canvas.getContext("2d"), img = ctx.createImageData(total, height);
+  const put = (x, y, [r, g, b]) => {
+    const o = 4 * (y * total + x);
+    img.data[o] = r; img.data[o + 1] = g; img.data[o + 2] = b; img.data[o + 3] = 255;
+  };
+  for (let y = 0; y < height; y++) for (let x = 0; x < width; x++) {
+    const k = y * width + x;
+    if (!channels) put(x, y, colour(values[k]));
+    else if (!tile) put(x, y, [0, 1, 2].map((c) => rgbOf(values[c * plane + k])));
+    else for (let c = 0; c < 3; c++) put(c * (width + 1) + x, y, colour(values[c * plane + k]));
   }
   ctx.putImageData(img, 0, 0);
 }
@@ -40,9 +53,10 @@ function render({ model, el }) {
       const t = Math.max(-1, Math.min(1, v / scale));
       return t < 0 ? mix(light, low, -t) : mix(light, high, t);
     };
-    paint(panels[0].canvas, model.get("original"), grey);
-    paint(panels[1].canvas, model.get("perturbation"), diverging);
-    paint(panels[2].canvas, model.get("attacked"), grey);
+    const level = (v) => Math.round(255 * Math.min(1, Math.max(0, (v - lo) / (hi - lo || 1))));
+    paint(panels[0].canvas, model.get("original"), grey, level, false);
+    paint(panels[1].canvas, model.get("perturbation"), diverging, level, true);
+    paint(panels[2].canvas, model.get("attacked"), grey, level, false);
     const captions = model.get("captions");
     panels.forEach((p, k) => {
       p.caption.textContent = captions[k] === undefined ? "" : String(captions[k]);

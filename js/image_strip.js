@@ -3,15 +3,19 @@
 // typed() and rgb() come from _canvas_helpers.js, served ahead of this module.
 
 /** Grey ramp from the theme's surface (low) to its ink (high). */
-function paintImage(canvas, values, offset, height, width, range, root) {
+function paintImage(canvas, values, offset, height, width, range, root, colour) {
   const css = getComputedStyle(root);
   const light = rgb(css.getPropertyValue("--jostle-surface")), dark = rgb(css.getPropertyValue("--jostle-ink"));
   canvas.width = width; canvas.height = height;
   const ctx = canvas.getContext("2d"), img = ctx.createImageData(width, height);
   const [lo, hi] = range;
   for (let k = 0; k < width * height; k++) {
-    const t = Math.min(1, Math.max(0, (values[offset + k] - lo) / (hi - lo || 1)));
-    for (let c = 0; c < 3; c++) img.data[4 * k + c] = Math.round(light[c] + t * (dark[c] - light[c]));
+    const level = (v) => Math.min(1, Math.max(0, (v - lo) / (hi - lo || 1)));
+    const t = level(values[offset + k]);
+    for (let c = 0; c < 3; c++) {
+      img.data[4 * k + c] = colour ? Math.round(255 * level(values[offset + c * width * height + k]))
+        : Math.round(light[c] + t * (dark[c] - light[c]));
+    }
     img.data[4 * k + 3] = 255;
   }
   ctx.putImageData(img, 0, 0);
@@ -29,15 +33,17 @@ function render({ model, el }) {
     if (!root.isConnected) return; // theme colours resolve only in the page; the observer calls again
     const w = model.get("images"), values = typed(w), captions = model.get("captions");
     root.replaceChildren(); items = [];
-    if (!w || w.shape.length !== 3) return;
-    const [n, height, width] = w.shape;
+    // (n, H, W) greyscale or (n, 3, H, W) colour, drawn as RGB
+    const colour = w && w.shape.length === 4 && w.shape[1] === 3;
+    if (!w || !(w.shape.length === 3 || colour)) return;
+    const n = w.shape[0], [height, width] = w.shape.slice(-2), size = (colour ? 3 : 1) * height * width;
     for (let k = 0; k < n; k++) {
       const canvas = document.createElement("canvas");
       canvas.dataset.testid = "image-strip-item"; canvas.dataset.index = String(k);
       canvas.tabIndex = 0; canvas.setAttribute("role", "option");
       const caption = captions[k] === undefined ? `image ${k}` : String(captions[k]);
       canvas.setAttribute("aria-label", caption); canvas.title = caption;
-      paintImage(canvas, values, k * height * width, height, width, model.get("value_range"), root);
+      paintImage(canvas, values, k * size, height, width, model.get("value_range"), root, colour);
       canvas.addEventListener("click", () => choose(k));
       canvas.addEventListener("keydown", (ev) => {
         if (ev.key === "Enter" || ev.key === " ") { ev.preventDefault(); choose(k); }

@@ -37,16 +37,14 @@ class ImageExplorer(GradientStripPart, LiveBox):
     """
 
     index = t.Int(0, help="position in the strip of the chosen test image").tag(sync=True)
+    perturbation_view = t.Unicode(
+        "channels", help="colour perturbation drawn per channel ('channels') or as the norm over channels ('magnitude')"
+    ).tag(sync=True)
 
     def __init__(self, ens: Any, data: Any, index: int = 0, budget: float = 0.1, samples: int | None = None,
                  method: str = "pgd", norm: str = "inf", steps: int = 40, objective: str = "expected_loss",
                  strip: int = 24, seed: int = 0, **kwargs: Any):
-        shape = tuple(int(s) for s in data.image_shape or ())
-        if len(shape) == 3 and shape[0] == 1:
-            shape = shape[1:]  # one greyscale channel
-        if len(shape) != 2:
-            raise ValueError(f"data must have a greyscale image_shape, (H, W) or (1, H, W), for ImageExplorer; "
-                             f"got {data.image_shape!r}")
+        shape = _image_shape(data.image_shape)
         count = check_int("strip", strip, low=1)
         self._images = data.x_test[: min(count, data.x_test.shape[0])].numpy().astype(np.float64)
         self._shape = shape
@@ -72,7 +70,11 @@ class ImageExplorer(GradientStripPart, LiveBox):
         certified_caution.add_class("jostle-tid-certified-caution")
         attack = [self._controls, self._certified_text, certified_caution, fade, _charts.caption(_charts.FADE_CAPTION)]
         gradients = self._setup_gradient_strip(data.image_shape)
-        children = _layout(data, ens, self._strip, self._panels, predictive, attack, self._status)
+        self._view_choice = w.Dropdown(options=list(PERTURBATION_VIEWS), value="channels",
+                                       description="perturbation", style={"description_width": "initial"})
+        self._view_choice.add_class("jostle-tid-perturbation-view")
+        inputs = w.VBox([self._panels, self._view_choice] if len(shape) == 3 else [self._panels])
+        children = _layout(data, ens, self._strip, inputs, predictive, attack, self._status)
         super().__init__(children=children[:-1] + [gradients, children[-1]], **kwargs)
         self.add_class("jostle-root")
         for name in ("jostle-image-explorer", "jostle-tag-scope", "jostle-tid-image-explorer"):
@@ -82,6 +84,7 @@ class ImageExplorer(GradientStripPart, LiveBox):
             self.samples = len(ens) if samples is None else samples
             self.steps, self.objective = steps, objective
         self._strip.selected = self.index
+        w.link((self, "perturbation_view"), (self._view_choice, "value"))
         self._strip.observe(self._from_strip, names=["selected"])
         self._start_live()
 
@@ -95,6 +98,20 @@ class ImageExplorer(GradientStripPart, LiveBox):
         self._accepted["index"] = value
         return value
 
+    @t.validate("perturbation_view")
+    def _validate_perturbation_view(self, proposal: Any) -> Any:
+        if proposal.value not in PERTURBATION_VIEWS:
+            self._worker.notify(ValueError(f"perturbation_view must be one of {', '.join(PERTURBATION_VIEWS)}; "
+                                           f"got {proposal.value!r}"))
+            return self._accepted.get("perturbation_view", "channels")
+        self._accepted["perturbation_view"] = proposal.value
+        return proposal.value
+
+    @t.observe("perturbation_view")
+    def _on_perturbation_view(self, change: Any) -> None:
+        if change.old != change.new:
+            self._request()
+
     @t.observe("index")
     def _on_index(self, change: Any) -> None:
         if change.old == change.new:  # a rejected value, see LiveBox._on_control
@@ -103,7 +120,7 @@ class ImageExplorer(GradientStripPart, LiveBox):
         self._request()
 
     def close(self) -> None:
-        for child in ("_strip", "_panels"):
+        for child in ("_strip", "_panels", "_view_choice"):
             if hasattr(self, child):
                 getattr(self, child).close()
         super().close()
@@ -131,10 +148,11 @@ class ImageExplorer(GradientStripPart, LiveBox):
             else:
                 attacked = view.attack.x_adv.reshape(self._shape)
                 delta = attacked - original
+                shown = perturbation_picture(delta, self.perturbation_view)
                 top = int(np.argmax(view.after.probs))
-                self._panels.perturbation, self._panels.attacked = to_wire(delta), to_wire(attacked)
-                self._panels.max_abs = float(np.abs(delta).max())
-                self._panels.scale = max(float(np.abs(delta).max()), view.state.budget, 1e-6)
+                self._panels.perturbation, self._panels.attacked = to_wire(shown), to_wire(attacked)
+                self._panels.max_abs = float(np.abs(shown).max())
+                self._panels.scale = max(float(np.abs(shown).max()), view.state.budget, 1e-6)
                 verdict = "flipped" if view.attack.success else "held"
                 self._panels.captions = [first, f"perturbation (max |delta| {np.abs(delta).max():.3f})",
                                          f"attacked: {names[top]} ({view.after.probs[top]:.2f}), {verdict}"]
@@ -171,6 +189,29 @@ class ImageExplorer(GradientStripPart, LiveBox):
         _report.check_same_posterior(ens, entry, path)
         _report.check_same_image(data, entry, path)
         return cls(ens, data, **{**_report.explorer_settings(entry), **kwargs})
+
+
+PERTURBATION_VIEWS = ("channels", "magnitude")
+
+
+def _image_shape(image_shape: Any) -> tuple:
+    """(H, W) for greyscale, (3, H, W) for colour; anything else is refused."""
+    shape = tuple(int(s) for s in image_shape or ())
+    if len(shape) == 3 and shape[0] == 1:
+        shape = shape[1:]  # one greyscale channel
+    if len(shape) == 2 or (len(shape) == 3 and shape[0] == 3):
+        if min(shape) >= 1:
+            return shape
+    raise ValueError(f"data must have an image_shape (H, W), (1, H, W) or (3, H, W) for ImageExplorer; "
+                     f"got {image_shape!r}")
+
+
+def perturbation_picture(delta: np.ndarray, view: str) -> np.ndarray:
+    """What the perturbation panel draws: ``delta`` itself (greyscale, or colour per channel,
+    (3, H, W)), or for colour with ``view="magnitude"`` its Euclidean norm over channels, (H, W)."""
+    if delta.ndim == 3 and view == "magnitude":
+        return np.sqrt(np.sum(delta * delta, axis=0))
+    return delta
 
 
 def _layout(data: Any, ens: Any, strip: w.Widget, panels: w.Widget, predictive: w.Widget, attack: list,

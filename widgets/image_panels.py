@@ -14,9 +14,9 @@ class ImagePanels(anywidget.AnyWidget):
     _esm = canvas_module("image_panels.js")
     _css = asset_path("theme.css")
 
-    original = t.Dict(empty_wire(None), help="the chosen image, float32 (height, width)").tag(sync=True)
-    perturbation = t.Dict(empty_wire(None), help="attacked minus original, float32 (height, width)").tag(sync=True)
-    attacked = t.Dict(empty_wire(None), help="the attacked image, float32 (height, width)").tag(sync=True)
+    original = t.Dict(empty_wire(None), help="the chosen image, float32 (H, W) or (3, H, W)").tag(sync=True)
+    perturbation = t.Dict(empty_wire(None), help="attacked - original, (H, W) or (3, H, W)").tag(sync=True)
+    attacked = t.Dict(empty_wire(None), help="the attacked image, float32 (H, W) or (3, H, W)").tag(sync=True)
     value_range = t.List(t.Float(), [0.0, 1.0], help="pixel values drawn as lightest and darkest").tag(sync=True)
     max_abs = t.Float(
         0.0, help="largest |perturbation|; the diverging scale spans +-max(max_abs, budget)"

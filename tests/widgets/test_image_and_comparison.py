@@ -53,7 +53,7 @@ def test_image_explorer_bad_index_and_budget_reach_the_status(image_explorer):
 
 
 def test_image_explorer_refuses_data_without_images(moons, ens):
-    refusal = r"data must have a greyscale image_shape, \(H, W\) or \(1, H, W\), for ImageExplorer; got None"
+    refusal = r"data must have an image_shape \(H, W\), \(1, H, W\) or \(3, H, W\) for ImageExplorer; got None"
     with pytest.raises(ValueError, match=refusal):
         ImageExplorer(ens, moons)
 
