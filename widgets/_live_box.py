@@ -15,6 +15,7 @@ import traitlets as t
 import jostle.live.engine as live
 from jostle import Ensemble
 
+from . import _shown
 from .attack_controls import AttackControls
 from .status_line import StatusLine
 
@@ -48,6 +49,7 @@ class LiveBox(w.VBox):
             if value is not None:
                 live.check_field(ens, name, value, n_features=n_features)
         self._ens = ens
+        _shown.remember(self)
         self._point_features = n_features
         self._cache = live.ViewCache()
         self._result: live.ViewData | None = None

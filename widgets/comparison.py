@@ -9,6 +9,7 @@ import traitlets
 
 from jostle.common.checks import check_int
 
+from . import _shown
 from .explorer import Explorer
 
 SHARED = ("point", "budget", "method", "norm", "steps", "objective", "layer")
@@ -77,6 +78,7 @@ class Comparison(w.VBox):
             column.add_class("jostle-tid-comparison-column")
             columns.append(column)
         super().__init__([self.samples_control, w.HBox(columns, layout=w.Layout(flex_flow="row wrap", width="100%"))])
+        _shown.remember(self)
         for name in ("jostle-root", "jostle-comparison", "jostle-tag-scope", "jostle-tid-comparison"):
             self.add_class(name)
 

@@ -57,6 +57,20 @@ def section(explorer: Any, heading: str, timeout: float = 60.0) -> tuple[str, di
                             extra={**_extra(explorer), "column": heading}, **_context(explorer))
 
 
+def report_open_explorers(folder: Any, stem: str, timeout: float = 60.0) -> list[Path]:
+    """Write one report per explorer still open in this session, ``<folder>/<stem>-<k>-<kind>.html``.
+
+    ``jostle report NOTEBOOK.ipynb`` runs the notebook and then calls this in its kernel, so
+    every Explorer, ImageExplorer, Comparison and SweepExplorer the notebook left open gets
+    the same report its own ``report()`` writes.
+    """
+    from ._shown import open_views
+
+    folder = Path(folder)
+    return [view.report(folder / f"{stem}-{k}-{type(view).__name__.lower()}.html", timeout=timeout)
+            for k, view in enumerate(open_views(), start=1)]
+
+
 def explorers_report(explorers: list, headings: list[str], path: Any, title: str, kind: str,
                      timeout: float = 60.0) -> Path:
     """Write the report of one or more explorers (a Comparison's columns)."""

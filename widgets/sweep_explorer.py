@@ -21,6 +21,7 @@ from jostle.sweeps.one_run import load_run_data
 from jostle.sweeps.results_db import RunStore
 from jostle.sweeps.sweep import Sweep
 
+from . import _shown
 from ._wire import to_wire
 from .explorer import Explorer
 from .image_explorer import ImageExplorer
@@ -90,6 +91,7 @@ class SweepExplorer(ipw.HBox):
         charts = ipw.VBox(children=(self.chart, self.limit_chart),
                           layout=ipw.Layout(flex="0 1 auto", min_width="380px"))
         super().__init__(children=(charts, self.detail), **kwargs)
+        _shown.remember(self)
         self.add_class("jostle-sweep-explorer")
         self.add_class("jostle-tid-sweep-explorer")
         with self.hold_trait_notifications():

@@ -1,16 +1,15 @@
 """``jostle report``: a store's charts as one offline HTML file; a notebook gets a message saying why not."""
 from __future__ import annotations
 
-import json
 import subprocess
 import sys
 
 import numpy as np
 import pytest
+import torch
 
 import jostle
 from jostle.cli import main
-from jostle.cli.report import notebook_explorers
 from jostle.report import read_report_state
 from jostle.sweeps.chart_data import sweep_points
 from jostle.sweeps.results_db import RunStore
@@ -69,20 +68,59 @@ def test_report_default_path_and_errors(store, tmp_path, capsys):
     assert "is not a readable sweep store" in capsys.readouterr().err
 
 
-def test_a_notebook_gets_a_message_that_says_what_a_report_needs(tmp_path, capsys):
-    state = {"m1": {"model_name": "VBoxModel", "state": {"point": [0.5, 0.1], "budget": 0.2, "method": "pgd",
-                                                         "norm": "inf", "steps": 40}},
-             "m2": {"model_name": "LabelModel", "state": {"value": "x"}}}
-    notebook = {"cells": [], "metadata": {"widgets": {"application/vnd.jupyter.widget-state+json": {
-        "state": state, "version_major": 2, "version_minor": 0}}}, "nbformat": 4, "nbformat_minor": 5}
-    path = tmp_path / "tour.ipynb"
-    path.write_text(json.dumps(notebook), encoding="utf-8")
-    assert notebook_explorers(notebook) == [{"point": [0.5, 0.1], "method": "pgd", "budget": 0.2, "norm": "inf",
-                                             "steps": 40}]
-    assert main(["report", str(path)]) == 1
+def _notebook(path, *sources):
+    import nbformat
+
+    notebook = nbformat.v4.new_notebook(cells=[nbformat.v4.new_code_cell(src) for src in sources])
+    nbformat.write(notebook, str(path))
+    return path
+
+
+NOTEBOOK_CELLS = (
+    "import jostle\nfrom jostle.widgets import Comparison, Explorer\n"
+    "data = jostle.datasets.leak_alarm()\n"
+    "hmc, point = jostle.demo_posterior('leak_alarm_hmc')[:20], jostle.demo_posterior('leak_alarm_map')",
+    "ex = Explorer(hmc, data, point=(0.3, 0.2), budget=0.25, steps=8, grid=16)\nassert ex.wait(120)\nex",
+    "gone = Explorer(point, data, grid=16)\ngone.close()  # closed: not reported",
+    "both = Comparison([hmc, point], data, steps=8, grid=16)\nboth",
+)
+
+
+def test_a_notebook_is_run_and_each_open_explorer_reported(tmp_path, capsys):
+    # The notebook runs in a fresh kernel (nbclient); every explorer it left open gets the
+    # report its own report() writes, with the view that notebook computed.
+    source = _notebook(tmp_path / "finding.ipynb", *NOTEBOOK_CELLS)
+    out = tmp_path / "reports"
+    assert main(["report", str(source), "--out", str(out)]) == 0
+    printed = capsys.readouterr().out
+    files = sorted(p.name for p in out.iterdir())
+    assert files == ["finding-1-explorer.html", "finding-2-comparison.html"], files
+    assert printed.count("wrote ") == 2
+    explorer = read_report_state(out / files[0])
+    assert explorer["kind"] == "explorer" and len(explorer["entries"]) == 1
+    entry = explorer["entries"][0]
+    assert entry["state"]["point"] == [0.3, 0.2] and entry["state"]["budget"] == 0.25 and entry["state"]["steps"] == 8
+    assert "hmc posterior: 20 members" in entry["provenance"]["description"]
+    # The reported predictive is the posterior's at that input, computed here in another process:
+    # same float32 arithmetic on the same parameters, so agreement to float32 rounding (~1e-7, x10).
+    expected = jostle.demo_posterior("leak_alarm_hmc")[:20].predict(torch.tensor([[0.3, 0.2]])).probs[0]
+    np.testing.assert_allclose(entry["view"]["before"]["probs"], expected.numpy(), rtol=0, atol=1e-6)
+    comparison = read_report_state(out / files[1])
+    assert comparison["kind"] == "comparison" and len(comparison["entries"]) == 2
+
+
+def test_a_notebook_that_fails_or_shows_nothing_says_so(tmp_path, capsys):
+    broken = _notebook(tmp_path / "broken.ipynb", "x = 1", "raise RuntimeError('sensor feed offline')")
+    assert main(["report", str(broken)]) == 1
     err = capsys.readouterr().err
-    assert "a notebook does not hold the posteriors or the views a report draws" in err
-    assert "holds the settings of 1 explorer(s)" in err and "explorer.report('finding.html')" in err
+    assert "running the notebook failed in cell 2" in err and "sensor feed offline" in err
+    empty = _notebook(tmp_path / "empty.ipynb", "import jostle")
+    assert main(["report", str(empty)]) == 1
+    assert "ran but left no open jostle explorer to report" in capsys.readouterr().err
+    not_a_notebook = tmp_path / "noise.ipynb"
+    not_a_notebook.write_text("{ not json", encoding="utf-8")
+    assert main(["report", str(not_a_notebook)]) == 1
+    assert "is not a readable notebook" in capsys.readouterr().err
 
 
 def test_the_command_imports_no_widget_library(store, tmp_path):
