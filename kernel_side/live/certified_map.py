@@ -134,32 +134,40 @@ def _bisect_predictive(ens: Ensemble, points: torch.Tensor, norm: str, method: s
         return low.gather(1, own).squeeze(1) > up.scatter(1, own, float("-inf")).amax(1)
 
     every = torch.arange(points.shape[0])
+    resolution = top / 2**iterations
     lower = torch.zeros(points.shape[0], dtype=points.dtype)
     upper = torch.full_like(lower, top)
+
+    def narrow() -> None:
+        for _ in range(iterations + 2):
+            cells = every[torch.isfinite(upper) & (upper - lower > resolution)]
+            if cells.numel() == 0:
+                return
+            mid = 0.5 * (lower + upper)
+            ok = holds(mid, cells)
+            lower[cells[ok]], upper[cells[~ok]] = mid[cells[ok]], mid[cells[~ok]]
+
+    def whole_box(cells: torch.Tensor) -> None:  # where the ball may cover the box: does it hold there?
+        at_top = cells[holds(torch.full_like(upper, top), cells)]
+        lower[at_top], upper[at_top] = top, torch.inf
+
     if guess is None:
         alive = holds(lower, every)
         upper[~alive] = 0.0
-    else:  # check the guess's low end, then its high end where the low end held
-        low_guess, high_guess = (g.to(lower.dtype) for g in guess)
-        held = holds(low_guess, every)
-        lower[held], upper[~held] = low_guess[held], low_guess[~held]
-        upper[held] = high_guess[held]
-    tried = every[upper == top]  # does the whole box hold?
-    at_top = holds(upper, tried)
-    lower[tried[at_top]], upper[tried[at_top]] = top, torch.inf
-    if guess is not None:
-        cells = every[held & (upper < top) & (upper > lower)]
-        above = cells[holds(upper, cells)]  # the high guess held too: search above it, up to the box
-        lower[above] = upper[above]
-        whole = holds(torch.full_like(upper, top), above)
-        upper[above] = torch.where(whole, torch.inf, top).to(upper.dtype)
-        lower[above[whole]] = top
-    resolution = top / 2**iterations
-    for _ in range(iterations + 2):
-        cells = every[torch.isfinite(upper) & (upper - lower > resolution)]
-        if cells.numel() == 0:
-            break
-        mid = 0.5 * (lower + upper)
-        ok = holds(mid, cells)
-        lower[cells[ok]], upper[cells[~ok]] = mid[cells[ok]], mid[cells[~ok]]
+        whole_box(every[alive])
+        narrow()
+        return lower
+    # Check the guess's low end; take its high end as the failing end unchecked, and check it
+    # only where the bisection never moved off it (there the answer may lie above the guess).
+    low_guess, high_guess = (g.to(lower.dtype) for g in guess)
+    held = holds(low_guess, every)
+    lower[held], upper[~held] = low_guess[held], low_guess[~held]
+    upper[held] = high_guess[held]
+    whole_box(every[held & (upper == top)])
+    narrow()
+    stuck = every[held & (upper == high_guess) & (upper < top) & (upper > lower)]
+    above = stuck[holds(upper, stuck)]
+    lower[above], upper[above] = upper[above], top
+    whole_box(above)
+    narrow()
     return lower
