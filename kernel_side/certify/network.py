@@ -14,16 +14,19 @@ import torch
 import torch.nn.functional as F
 from torch import Tensor, nn
 
+from jostle.posterior.architectures import ImageView
+
 __all__ = ["Step", "Chain", "read_chain", "AFFINE", "ELEMENTWISE", "SUPPORTED"]
 
 AFFINE = ("linear", "conv", "avgpool", "flatten")
 ELEMENTWISE = ("relu", "tanh", "sigmoid")
 _KINDS: dict[type, str] = {
-    nn.Linear: "linear", nn.Conv2d: "conv", nn.AvgPool2d: "avgpool", nn.Flatten: "flatten",
+    nn.Linear: "linear", nn.Conv2d: "conv", nn.AvgPool2d: "avgpool", nn.Flatten: "flatten", ImageView: "flatten",
     nn.ReLU: "relu", nn.Tanh: "tanh", nn.Sigmoid: "sigmoid", nn.MaxPool2d: "maxpool",
 }
 _PASS_THROUGH = (nn.Identity, nn.Dropout)
-SUPPORTED = "Linear, Conv2d, ReLU, Tanh, Sigmoid, MaxPool2d, AvgPool2d, Flatten (and Identity, Dropout in eval mode)"
+SUPPORTED = ("Linear, Conv2d, ReLU, Tanh, Sigmoid, MaxPool2d, AvgPool2d, Flatten, jostle.cnn's ImageView "
+             "(and Identity, Dropout in eval mode)")
 
 
 @dataclass
@@ -49,8 +52,8 @@ class Step:
             return out + self.bias[:, None] if (with_bias and self.bias is not None) else out
         if self.kind == "conv":
             return self._conv(z, self.weight, self.bias if with_bias else None)
-        if self.kind == "flatten":
-            return z.reshape(*z.shape[:2], -1)
+        if self.kind == "flatten":  # nn.Flatten, or ImageView (flat rows to images): a reshape either way
+            return z.reshape(*z.shape[:2], *getattr(self.module, "shape", (-1,)))
         folded = z.reshape(-1, *self.in_shape)
         if self.kind == "avgpool":
             out = F.avg_pool2d(folded, **_pool_options(self.module, average=True))
@@ -192,7 +195,7 @@ def _check_options(name: str, layer: nn.Module, kind: str) -> None:
     if kind == "maxpool" and (layer.ceil_mode or layer.return_indices):
         raise ValueError(f"layer {name!r}: MaxPool2d must have ceil_mode=False and return_indices=False "
                          f"for certify; got ceil_mode={layer.ceil_mode}, return_indices={layer.return_indices}")
-    if kind == "flatten" and (layer.start_dim != 1 or layer.end_dim != -1):
+    if isinstance(layer, nn.Flatten) and (layer.start_dim != 1 or layer.end_dim != -1):
         raise ValueError(f"layer {name!r}: Flatten must flatten dims 1..-1 (the defaults) for certify; "
                          f"got start_dim={layer.start_dim}, end_dim={layer.end_dim}")
 
