@@ -43,3 +43,14 @@ function ball(ctx, px, py, centre, eps, sx, sy, norm) {
   else ctx.rect(px(centre[0] - eps), py(centre[1] + eps), 2 * eps * sx, 2 * eps * sy);
   ctx.stroke();
 }
+
+/** Paint rows x cols values (from `offset`) into `canvas`, one pixel each, coloured by `colour(v)` -> [r, g, b]. */
+function paintValues(canvas, values, offset, rows, cols, colour) {
+  canvas.width = cols; canvas.height = rows;
+  const ctx = canvas.getContext("2d"), img = ctx.createImageData(cols, rows);
+  for (let k = 0; k < rows * cols; k++) {
+    const [r, g, b] = colour(values[offset + k]);
+    img.data[4 * k] = r; img.data[4 * k + 1] = g; img.data[4 * k + 2] = b; img.data[4 * k + 3] = 255;
+  }
+  ctx.putImageData(img, 0, 0);
+}

@@ -6,16 +6,6 @@
 const blend = (a, b, t) => a.map((v, c) => Math.round(v + t * (b[c] - v)));
 
 /** Paint rows x cols values of `values` from `offset` with `colour`. */
-function paintGrid(canvas, values, offset, rows, cols, colour) {
-  canvas.width = cols; canvas.height = rows;
-  const ctx = canvas.getContext("2d"), img = ctx.createImageData(cols, rows);
-  for (let k = 0; k < rows * cols; k++) {
-    const [r, g, b] = colour(values[offset + k]);
-    img.data[4 * k] = r; img.data[4 * k + 1] = g; img.data[4 * k + 2] = b; img.data[4 * k + 3] = 255;
-  }
-  ctx.putImageData(img, 0, 0);
-}
-
 function render({ model, el }) {
   const root = document.createElement("div");
   root.className = "jostle-root jostle-components"; root.dataset.testid = "gradient-components";
@@ -45,7 +35,7 @@ function render({ model, el }) {
         map.setAttribute("role", "img"); map.setAttribute("aria-label", `S = ${counts[k]}: ${rows} inputs by ${cols} components`);
         map.style.height = `${Math.max(40, Math.min(240, 4 * rows))}px`;
         const scale = scales[k] || 1;
-        paintGrid(map, heatValues, k * rows * cols, rows, cols, (v) => {
+        paintValues(map, heatValues, k * rows * cols, rows, cols, (v) => {
           const t = Math.max(-1, Math.min(1, v / scale));
           return t < 0 ? blend(light, low, -t) : blend(light, high, t);
         });
@@ -53,7 +43,7 @@ function render({ model, el }) {
         mean.dataset.testid = "gradient-components-summary"; mean.setAttribute("role", "img");
         mean.setAttribute("aria-label", `S = ${counts[k]}: mean absolute component`);
         if (height * width) {
-          paintGrid(mean, summaryValues, k * height * width, height, width, (v) => blend(light, high, Math.min(1, v / top)));
+          paintValues(mean, summaryValues, k * height * width, height, width, (v) => blend(light, high, Math.min(1, v / top)));
           mean.style.height = `${Math.max(8, Math.round(72 * height / width))}px`;
         }
         const caption = document.createElement("div"); caption.className = "jostle-components-caption";

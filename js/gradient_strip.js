@@ -16,16 +16,6 @@ function colourScale(root, scale, signed) {
   };
 }
 
-function paintGradient(canvas, values, offset, height, width, colour) {
-  canvas.width = width; canvas.height = height;
-  const ctx = canvas.getContext("2d"), img = ctx.createImageData(width, height);
-  for (let k = 0; k < width * height; k++) {
-    const [r, g, b] = colour(values[offset + k]);
-    img.data[4 * k] = r; img.data[4 * k + 1] = g; img.data[4 * k + 2] = b; img.data[4 * k + 3] = 255;
-  }
-  ctx.putImageData(img, 0, 0);
-}
-
 function render({ model, el }) {
   const root = document.createElement("div");
   root.className = "jostle-root jostle-gradients"; root.dataset.testid = "gradient-strip";
@@ -50,7 +40,7 @@ function render({ model, el }) {
         figure.dataset.highlighted = String(k === highlighted);
         caption.textContent = captions[k] === undefined ? "" : String(captions[k]);
         canvas.setAttribute("role", "img"); canvas.setAttribute("aria-label", caption.textContent.replace(/\n/g, ", "));
-        paintGradient(canvas, values, k * height * width, height, width, colourScale(root, scales[k], signed));
+        paintValues(canvas, values, k * height * width, height, width, colourScale(root, scales[k], signed));
         figure.append(canvas, caption); row.append(figure);
       }
     }

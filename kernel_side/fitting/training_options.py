@@ -22,7 +22,7 @@ import torch
 from jostle.common.checks import check_choice, check_float, check_int, check_seed, show_value
 
 __all__ = ["TrainingOptions", "TRAINING_OPTIONS", "OPTIMISER_OPTIONS", "OPTIMIZERS", "training_fit",
-           "check_device"]
+           "check_device", "check_module_and_data"]
 
 OPTIMIZERS = ("adam", "sgd")
 Fit = TypeVar("Fit", bound=Callable[..., Any])
@@ -140,6 +140,16 @@ def training_fit(options: tuple[str, ...] = TRAINING_OPTIONS) -> Callable[[Fit],
         return fit
 
     return mark
+
+
+def check_module_and_data(module: Any, data: Any) -> None:
+    """The sampling fits' first checks: a module with trainable parameters and a jostle Dataset."""
+    if not isinstance(module, torch.nn.Module):
+        raise ValueError(f"module must be a torch.nn.Module; got {show_value(module)}")
+    if not all(hasattr(data, name) for name in ("x_train", "y_train", "x_test", "classes", "bounds")):
+        raise ValueError(f"data must be a jostle.Dataset; got {show_value(data)}")
+    if not any(p.requires_grad for p in module.parameters()):
+        raise ValueError("module must have at least one parameter with requires_grad=True; got none")
 
 
 def check_device(device: Any) -> torch.device:

@@ -16,7 +16,7 @@ from typing import Any
 import torch
 from torch import Tensor, nn
 
-from jostle.common.checks import check_choice, check_float, check_int, show_value
+from jostle.common.checks import check_choice, check_float, check_int
 from jostle.common.threads import threads_for, torch_threads
 from jostle.fitting.hmc.diagnostics import ConvergenceWarning
 from jostle.fitting.hmc.network_density import (
@@ -28,7 +28,7 @@ from jostle.fitting.hmc.network_density import (
 )
 from jostle.fitting.hmc.sampler import HMCDraws, sample_hmc
 from jostle.fitting.training_loop import stream_seed
-from jostle.fitting.training_options import training_fit
+from jostle.fitting.training_options import check_module_and_data, training_fit
 from jostle.posterior.architectures import architecture_of
 from jostle.posterior.ensemble import Ensemble
 
@@ -193,12 +193,7 @@ def _compute_threads(threads: Any, posterior: NetworkPosterior, chains: int):
 # ---------------------------------------------------------------------------- helpers
 def _check_arguments(module, data, samples, chains, warmup, draws_per_chain, prior_std,
                      trajectory_length, max_steps, target_accept, init, map_steps, map_lr, seed) -> dict:
-    if not isinstance(module, nn.Module):
-        raise ValueError(f"module must be a torch.nn.Module; got {show_value(module)}")
-    if not all(hasattr(data, name) for name in ("x_train", "y_train", "x_test", "classes", "bounds")):
-        raise ValueError(f"data must be a jostle.Dataset; got {show_value(data)}")
-    if not any(p.requires_grad for p in module.parameters()):
-        raise ValueError("module must have at least one parameter with requires_grad=True; got none")
+    check_module_and_data(module, data)
     samples = check_int("samples", samples, low=1)
     chains = check_int("chains", chains, low=1)
     check_int("warmup", warmup, low=0)

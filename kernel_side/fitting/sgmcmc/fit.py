@@ -17,7 +17,7 @@ from typing import Any
 import torch
 from torch import Tensor, nn
 
-from jostle.common.checks import check_float, check_int, show_value
+from jostle.common.checks import check_float, check_int
 from jostle.common.threads import threads_for, torch_threads
 from jostle.fitting.hmc.diagnostics import ConvergenceWarning
 from jostle.fitting.hmc.network_density import (
@@ -28,7 +28,7 @@ from jostle.fitting.hmc.network_density import (
 )
 from jostle.fitting.sgmcmc.kernel import SGMCMCDraws, check_settings, sample_sgmcmc
 from jostle.fitting.training_loop import stream_seed
-from jostle.fitting.training_options import check_device, training_fit
+from jostle.fitting.training_options import check_device, check_module_and_data, training_fit
 from jostle.posterior.architectures import architecture_of
 from jostle.posterior.ensemble import Ensemble
 
@@ -234,12 +234,7 @@ def thin_interleaved(samples: Tensor, keep: int) -> Tensor:
 
 def _check_arguments(module, data, samples, chains, method, cycles, epochs_per_cycle, batch_size, step_size,
                      friction, exploration, prior_std, temperature, draws_per_cycle, seed) -> dict:
-    if not isinstance(module, nn.Module):
-        raise ValueError(f"module must be a torch.nn.Module; got {show_value(module)}")
-    if not all(hasattr(data, name) for name in ("x_train", "y_train", "x_test", "classes", "bounds")):
-        raise ValueError(f"data must be a jostle.Dataset; got {show_value(data)}")
-    if not any(p.requires_grad for p in module.parameters()):
-        raise ValueError("module must have at least one parameter with requires_grad=True; got none")
+    check_module_and_data(module, data)
     samples = check_int("samples", samples, low=1)
     chains = check_int("chains", chains, low=1)
     cycles = check_int("cycles", cycles, low=1)
