@@ -118,7 +118,7 @@ def conv_forward(steps: list[tuple], params: dict[str, Tensor], x: Tensor, shape
     for step in steps:
         kind = step[0]
         if kind == "conv":
-            h = _conv(step, params, h, members, shared)
+            h = _conv(step, params, h, members, shared, channels_last)
             shared = False
             continue
         if shared and kind in ("batchnorm", "groupnorm", "layernorm", "mask"):
@@ -138,14 +138,17 @@ def conv_forward(steps: list[tuple], params: dict[str, Tensor], x: Tensor, shape
     return h
 
 
-def _conv(step: tuple, params: dict[str, Tensor], h: Tensor, members: int, shared: bool) -> Tensor:
+def _conv(step: tuple, params: dict[str, Tensor], h: Tensor, members: int, shared: bool,
+          channels_last: bool) -> Tensor:
     _, weight_name, bias_name, stride, padding, dilation, groups = step
     weight = params[weight_name]
     filters = weight.reshape(-1, *weight.shape[2:])
     bias = None if bias_name is None else params[bias_name].reshape(-1)
     if shared and groups > 1:
         h, shared = h.repeat(1, members, 1, 1), False
-    return functional.conv2d(h, filters, bias, stride, padding, dilation, groups if shared else groups * members)
+    out = functional.conv2d(h, filters, bias, stride, padding, dilation, groups if shared else groups * members)
+    # a one-channel input is ambiguous, and its convolution comes back NCHW
+    return out.contiguous(memory_format=torch.channels_last) if channels_last else out
 
 
 def _linear(weight: Tensor, bias: Tensor | None, h: Tensor) -> Tensor:

@@ -114,9 +114,12 @@ def _loop_gradients(nets, x, y):
     return torch.stack(grads)
 
 
-@pytest.mark.parametrize("norm", [None, "batch"])
-def test_input_gradients_match_autograd_per_member(cards, norm):
-    ens, nets = _members(cards.image_shape, norm=norm)
+# ReLU, tanh and sigmoid never decrease, so the pass pools before them; the cards' blank
+# background gives every pooling window there four equal values (each convolution output is
+# its bias), so these cases also check that ties route the gradient as nn.MaxPool2d does.
+@pytest.mark.parametrize("norm,activation", [(None, "relu"), ("batch", "relu"), (None, "tanh"), (None, "sigmoid")])
+def test_input_gradients_match_autograd_per_member(cards, norm, activation):
+    ens, nets = _members(cards.image_shape, norm=norm, activation=activation)
     x, y = cards.x_test[:6], cards.y_test[:6]
     per_member = _loop_gradients(nets, x, y)
     torch.testing.assert_close(member_gradients(ens, x, y), per_member, atol=ATOL, rtol=0)
