@@ -51,7 +51,7 @@ def test_wheel_installs_and_finds_its_files(tmp_path):
     (wheel,) = wheel_dir.glob("jostle-*.whl")
     names = set(zipfile.ZipFile(wheel).namelist())
     demo = ("01_first_tour", "02_fading_gradient", "03_meter_cards", "04_robustness_vs_accuracy", "05_bring_your_own",
-            "06_limit_study")
+            "06_limit_study", "07_scanned_cards_cnn")
     for expected in ("jostle/__init__.py", "jostle/posterior/ensemble.py", "jostle/attacks/problem.py",
                      "jostle/widgets/__init__.py", "jostle/js/theme.css", "jostle/data/leak_alarm_hmc.safetensors",
                      "jostle/data/leak_alarm_map.safetensors", "jostle/demo_notebooks/data/leak_alarm_limit.sqlite",

@@ -1,6 +1,7 @@
 """The shipped demo notebooks run in a real JupyterLab page and draw their widgets.
 
-The first three tours cover the Comparison, the Explorer and the ImageExplorer; the tall
+The first three tours cover the Comparison, the Explorer and the ImageExplorer, and 07 the
+ImageExplorer on a convolutional ensemble of 28x28 cards; the tall
 viewport keeps each widget whole in its screenshot. Each notebook is copied unchanged into
 the lab's root, run with "run all cells", and its widgets are waited for until their status
 lines are idle. The page must report no errors.
@@ -37,6 +38,7 @@ CASES = [
     ("01_first_tour.ipynb", ".jostle-comparison", 2, "demo-first-tour-comparison"),
     ("02_fading_gradient.ipynb", ".jostle-explorer", 1, "demo-fading-gradient-explorer"),
     ("03_meter_cards.ipynb", ".jostle-image-explorer", 1, "demo-meter-cards-image-explorer"),
+    ("07_scanned_cards_cnn.ipynb", ".jostle-image-explorer", 1, "demo-scanned-cards-cnn-image-explorer"),
 ]
 
 
