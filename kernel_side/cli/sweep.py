@@ -74,7 +74,8 @@ def _fit(args: argparse.Namespace) -> int:
     if out.suffix != ".safetensors":
         raise CommandError(f"--out must end in .safetensors; got {str(out)!r}")
     try:
-        config = check_run(read_toml(args.config), where=Path(args.config).name, need_evaluation=False)
+        config = check_run(read_toml(args.config), where=Path(args.config).name, need_evaluation=False,
+                           paths_from=Path(args.config).resolve().parent)
     except SweepConfigError as err:
         raise CommandError(str(err)) from None
     try:
@@ -144,6 +145,9 @@ def _readable_table(runs) -> str:
     """
     import pandas as pd
 
+    # depth and width belong to the depth-width MLP; other architectures (and those naming no activation) show "-"
+    runs = runs.assign(**{c: runs[c].astype(object).where(runs[c].notna(), "-")
+                          for c in ("depth", "width", "activation")})
     runs = runs.assign(settings=runs["method_settings"].map(_settings_text), key=runs["key"].str[:12],
                        saved=runs["ensemble_path"].notna().map({True: "yes", False: "no"}),
                        cell=[f"{s:.2f} / {r:.3f}" for s, r in zip(runs["success_rate"], runs["robustness"])])
@@ -180,7 +184,7 @@ def _gradient_table(gradients) -> str:
             "expected over S members / single member (S = members is all of them)\n" + text)
 
 
-_SHOW_SHARED = ["dataset", "n_train", "depth", "width", "activation"]
+_SHOW_SHARED = ["dataset", "n_train", "depth", "width", "activation", "architecture"]
 _SHOW_RUN_COLUMNS = ["key"] + _SHOW_SHARED + ["method", "settings", "seed", "accuracy", "nll", "ece", "saved"]
 
 
