@@ -24,7 +24,6 @@ import inspect
 import json
 from collections import OrderedDict
 from pathlib import Path
-from typing import Any
 
 from jostle import datasets as _datasets
 from jostle.datasets.dataset import Dataset, from_arrays

@@ -208,7 +208,8 @@ class RunStore:
         Long form (default): one row per run x attack x budget, with the run's
         configuration columns (``dataset`` (a built-in name or a file's name), ``n_train``,
         ``depth``, ``width`` (of the depth-width MLP; None for other architectures),
-        ``activation`` (None where the architecture names none), ``architecture`` (``mlp``, a builder's or a function's name), ``method``, ``method_settings`` (JSON of the hyper-parameters),
+        ``activation`` (None where the architecture names none), ``architecture`` (``mlp``, a
+        builder's or a function's name), ``method``, ``method_settings`` (JSON of the hyper-parameters),
         ``family`` (``deterministic`` or ``Bayesian``), ``seed``), its headline metrics
         (``accuracy``, ``nll``, ``ece``) and ``attack``, ``budget``, ``success_rate``,
         ``robustness``. Wide form: one row per run, with columns

@@ -250,7 +250,8 @@ def test_cluster_sends_each_data_set_once(tmp_path):
     assert len(sources) == 1 and all(deps == sources for deps in plugin.runs.values())
     assert not sources & set(plugin.runs)
     (source,) = sources
-    assert len(held) == 4 and all(view == [[str(source)], [str(source)]] for view in held)  # broadcast: a copy per worker
+    # broadcast: each worker holds one copy, the same key, all through the sweep
+    assert len(held) == 4 and all(view == [[str(source)], [str(source)]] for view in held)
     local = jostle.Sweep(**spec)
     local.run(tmp_path / "local.sqlite", progress_bar=False)
     a = local.results().sort_values(["key", "attack"]).reset_index(drop=True)
@@ -309,3 +310,56 @@ def test_canonical_configurations_of_files_are_plain_json(npz):
     import json
 
     assert json.loads(canonical_json(config)) == config
+
+
+def test_folder_sweep_is_keyed_by_the_files_it_reads(tmp_path):
+    from PIL import Image
+
+    images, labels = digit_images(60)
+    root = tmp_path / "cards"
+    for k, (image, label) in enumerate(zip(images, labels)):
+        if label in (0, 1):
+            (root / f"digit{label}").mkdir(parents=True, exist_ok=True)
+            Image.fromarray(image, mode="L").save(root / f"digit{label}" / f"{k}.png")
+    spec = dict(datasets=[{"format": "folder", "path": str(root), "size": [8, 8]}], train_sizes=[8],
+                architectures=[{"builder": "cnn", "channels": [2]}], **QUICK)
+    sweep = jostle.Sweep(**spec)
+    assert sweep.runs()[0]["data"]["size"] == [8, 8]
+    summary = sweep.run(tmp_path / "runs.sqlite", progress_bar=False)
+    assert (summary.finished, summary.failed) == (1, 0)
+    (root / ".DS_Store").write_bytes(b"ignored")  # from_folder skips dot files, and so does the hash
+    (root / "digit0" / ".thumbs").write_bytes(b"ignored")
+    assert jostle.Sweep(**spec).keys() == sweep.keys()
+    first = sorted((root / "digit0").glob("*.png"))[0]
+    first.rename(root / "digit1" / first.name)  # one card moved to the other class: other data
+    assert jostle.Sweep(**spec).keys() != sweep.keys()
+
+
+FIT_TOML = """
+seed = 0
+[data]
+format = "npz"
+path = "cards.npz"
+n_train = 40
+[architecture]
+builder = "cnn"
+channels = [2]
+[method]
+name = "map"
+epochs = 1
+"""
+
+
+def test_fit_command_reads_a_file_named_from_its_toml(tmp_path, capsys, monkeypatch):
+    from tests.kernel_side.test_cli_sweep import in_process
+
+    write_npz(tmp_path / "cards.npz", count=80)
+    (tmp_path / "fit.toml").write_text(FIT_TOML)
+    (tmp_path / "elsewhere").mkdir()
+    done = in_process(["fit", str(tmp_path / "fit.toml"), "--out", "cnn.safetensors"], capsys,
+                      tmp_path / "elsewhere", monkeypatch)
+    assert done.returncode == 0, done.stderr
+    ens = jostle.load(str(tmp_path / "elsewhere" / "cnn.safetensors"))
+    assert ens.meta["architecture"]["builder"] == "cnn" and ens.meta["architecture"]["kwargs"]["in_shape"] == [1, 8, 8]
+    assert ens.meta["run"]["config"]["data"]["sha256"]["path"] == hashlib.sha256(
+        (tmp_path / "cards.npz").read_bytes()).hexdigest()
