@@ -363,3 +363,28 @@ def test_fit_command_reads_a_file_named_from_its_toml(tmp_path, capsys, monkeypa
     assert ens.meta["architecture"]["builder"] == "cnn" and ens.meta["architecture"]["kwargs"]["in_shape"] == [1, 8, 8]
     assert ens.meta["run"]["config"]["data"]["sha256"]["path"] == hashlib.sha256(
         (tmp_path / "cards.npz").read_bytes()).hexdigest()
+
+
+def test_a_builder_registered_with_its_checked_function_is_named_by_sweeps(monkeypatch):
+    from jostle.posterior import architectures
+
+    def checked_linear(in_features: int, classes: int, bias: bool = True):
+        if not isinstance(bias, bool):
+            raise ValueError(f"bias must be True or False; got {bias!r}")
+        return architectures.build_architecture("linear_head", in_features=in_features, classes=classes, bias=bias)
+
+    def build(in_features, classes, bias):
+        return torch.nn.Sequential(torch.nn.Linear(in_features, classes, bias=bias))
+
+    monkeypatch.setitem(architectures._BUILDERS, "linear_head", build)  # restored after the test
+    monkeypatch.setitem(architectures._MAKERS, "linear_head", checked_linear)
+    sweep = jostle.Sweep(datasets=["moons"], architectures=[{"builder": "linear_head"}], train_sizes=[40], **QUICK)
+    assert sweep.runs()[0]["architecture"] == {"builder": "linear_head", "bias": True}
+    record = execute_run(sweep.runs()[0])
+    assert record["status"] == "ok", record["error"]
+    with pytest.raises(SweepConfigError, match=r"^sweep\.architectures\[0\] on sweep\.datasets\[0\]: linear_head "
+                                               r"refused its arguments: bias must be True or False; got 'no'"):
+        jostle.Sweep(datasets=["moons"], architectures=[{"builder": "linear_head", "bias": "no"}], methods=["map"])
+    with pytest.raises(SweepConfigError, match=r"must name a registered builder with a checked function \('cnn', "
+                                               r"'linear_head', 'mlp'\); got 'dropout_masks'"):
+        jostle.Sweep(datasets=["moons"], architectures=[{"builder": "dropout_masks"}], methods=["map"])
