@@ -20,6 +20,7 @@ import inspect
 import itertools
 import json
 import math
+import os
 from pathlib import Path
 from typing import Any
 
@@ -290,6 +291,8 @@ def _check_file_data(spec: dict, where: str, n_train: int, paths_from: str | Pat
         if value is None:
             entry[argument] = None
             continue
+        if isinstance(value, os.PathLike):  # a pathlib.Path from Python
+            value = os.fspath(value)
         if not isinstance(value, str) or not value:
             raise SweepConfigError(f"{where}.{argument}: must be a path (a non-empty string); got {_brief(value)}")
         path = (base / Path(value).expanduser()).resolve()

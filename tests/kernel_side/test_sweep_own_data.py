@@ -68,7 +68,7 @@ def test_npz_sweep_keys_the_file_by_content(tmp_path):
     elsewhere = tmp_path / "moved"
     elsewhere.mkdir()
     shutil.copy(path, elsewhere / "cards.npz")
-    moved = jostle.Sweep(datasets=[{"format": "npz", "path": str(elsewhere / "cards.npz")}], train_sizes=[40, 60],
+    moved = jostle.Sweep(datasets=[{"format": "npz", "path": elsewhere / "cards.npz"}], train_sizes=[40, 60],
                          architectures=[{"depth": 1, "width": 8}], **QUICK)
     assert moved.keys() == sweep.keys()  # same bytes elsewhere: the same runs, already stored
     assert moved.run(tmp_path / "runs.sqlite", progress_bar=False).skipped == 2
