@@ -41,6 +41,8 @@ from jostle.sweeps.data_sources import (
     BUILTIN_DATASETS,
     FILE_FORMATS,
     PATH_ARGUMENTS,
+    TORCH_FORMAT,
+    arrays_sha256,
     builtin_loader,
     content_sha256,
     data_label,
@@ -49,7 +51,7 @@ from jostle.sweeps.data_sources import (
     source_of,
     without_paths,
 )
-from jostle.sweeps.networks import DATA_ARGUMENTS, build_network, factory_of
+from jostle.sweeps.networks import DATA_ARGUMENTS, build_network, factory_of, resolve_callable
 
 __all__ = [
     "SweepConfigError", "FITS", "METHODS", "DETERMINISTIC_METHODS", "DATASETS",
@@ -272,12 +274,15 @@ def _check_file_data(spec: dict, where: str, n_train: int, paths_from: str | Pat
     """``{"format": ..., <path arguments>, **loader args}`` -> absolute paths, their sha256, the
     loader's defaults filled in."""
     fmt = spec.pop("format")
-    if fmt not in FILE_FORMATS:
-        raise SweepConfigError(f"{where}.format: unknown file format {_brief(fmt)} (known: {_listing(FILE_FORMATS)})")
+    if fmt not in (*FILE_FORMATS, TORCH_FORMAT):
+        raise SweepConfigError(f"{where}.format: unknown file format {_brief(fmt)} "
+                               f"(known: {_listing((*FILE_FORMATS, TORCH_FORMAT))})")
     if "n_train" in spec:
         raise SweepConfigError(f"{where}.n_train: set training sizes with sweep.train_sizes")
     if "sha256" in spec:
-        raise SweepConfigError(f"{where}.sha256: computed from the file itself; remove it")
+        raise SweepConfigError(f"{where}.sha256: computed from the data themselves; remove it")
+    if fmt == TORCH_FORMAT:
+        return _check_torch_data(spec, where, n_train)
     parameters = inspect.signature(file_loader(fmt)).parameters
     _known_keys(spec, list(parameters), where)
     paths = PATH_ARGUMENTS[fmt]
@@ -315,6 +320,30 @@ def _check_file_data(spec: dict, where: str, n_train: int, paths_from: str | Pat
         entry[argument] = value if value is None else _check_plain(value, f"{where}.{argument}")
     entry["sha256"] = digests
     entry["n_train"] = n_train
+    return _check_loads(entry, where)
+
+
+def _check_torch_data(spec: dict, where: str, n_train: int) -> dict:
+    """``{"format": "torch", "datasets": "module:function", "arguments": {...}, "classes": [...]}``
+    -> the function's pair copied once, its arrays' sha256 recorded."""
+    _known_keys(spec, ("datasets", "arguments", "classes"), where)
+    if "datasets" not in spec:
+        raise SweepConfigError(f"{where}: missing key 'datasets' (a 'module:function' returning the "
+                               f"train and test torch datasets)")
+    try:
+        resolve_callable(spec["datasets"])
+    except ValueError as err:
+        raise SweepConfigError(f"{where}.datasets: {err}") from None
+    arguments = _table(spec.get("arguments", {}), f"{where}.arguments")
+    arguments = {k: _check_plain(v, f"{where}.arguments.{k}") for k, v in arguments.items()}
+    classes = spec.get("classes")
+    entry = {"format": TORCH_FORMAT, "datasets": spec["datasets"], "arguments": arguments,
+             "classes": None if classes is None else _check_plain(classes, f"{where}.classes"), "n_train": n_train}
+    try:
+        made = load_source(source_of(entry))
+    except (ValueError, TypeError) as err:
+        raise SweepConfigError(f"{where}: {err}") from None
+    entry["sha256"] = {"arrays": arrays_sha256(made)}
     return _check_loads(entry, where)
 
 

@@ -57,10 +57,13 @@ class Sweep:
         ``seed``; ``meter_cards`` takes ``resolution`` and ``colour``), or a file read by a
         jostle loader, ``{"format": "npz", "path": ..., **from_npz args}``, ``{"format": "idx",
         "images_path": ..., "labels_path": ..., "test_images": ..., "test_labels": ...,
-        **from_idx args}`` or ``{"format": "folder", "path": ..., "size": [H, W], ...}``. The
+        **from_idx args}``, ``{"format": "folder", "path": ..., "size": [H, W], ...}``, or
+        ``{"format": "torch", "datasets": "package.module:function", "arguments": {...}}`` whose
+        function returns a (train, test) pair of torch datasets for ``from_torch``. The
         training size comes from ``train_sizes`` (``digits``, ``meter_cards`` and files keep
         their first N training points). Relative paths are read from ``paths_from``; each
-        file's sha256 joins the run key in place of its path, so a changed file gives new runs.
+        file's sha256 joins the run key in place of its path (a torch pair: its arrays' sha256),
+        so changed data give new runs.
     methods : list of str or dict
         Each a method name (``map``, ``deep_ensemble``, ``dropout``, ``vi``, ``laplace``,
         ``hmc``) or ``{"name": ..., **hyper-parameters, "grid": {hyper-parameter: [values]}}``.

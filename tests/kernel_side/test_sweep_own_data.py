@@ -388,3 +388,36 @@ def test_a_builder_registered_with_its_checked_function_is_named_by_sweeps(monke
     with pytest.raises(SweepConfigError, match=r"must name a registered builder with a checked function \('cnn', "
                                                r"'linear_head', 'mlp'\); got 'dropout_masks'"):
         jostle.Sweep(datasets=["moons"], architectures=[{"builder": "dropout_masks"}], methods=["map"])
+
+
+def test_torch_datasets_made_by_a_function(tmp_path):
+    entry = {"format": "torch", "datasets": f"{MODELS}:digit_pair", "arguments": {"count": 100}}
+    sweep = jostle.Sweep(datasets=[entry], train_sizes=[50], architectures=[{"builder": "cnn", "channels": [2]}],
+                         **QUICK)
+    data = sweep.runs()[0]["data"]
+    train, test = sweep_models.digit_pair(100)
+    direct = jostle.datasets.from_torch(train, test)
+    cut = load_run_data(data)
+    assert cut.image_shape == (1, 8, 8) and torch.equal(cut.x_train, direct.x_train[:50])
+    assert torch.equal(cut.x_test, direct.x_test) and cut.x_test.shape[0] == 25
+    assert data["sha256"]["arrays"] == jostle.sweeps.data_sources.arrays_sha256(direct)
+    other = jostle.Sweep(datasets=[{**entry, "arguments": {"count": 120}}], train_sizes=[50], methods=["map"])
+    assert other.runs()[0]["data"]["sha256"] != data["sha256"]  # other images, another hash
+    summary = sweep.run(tmp_path / "runs.sqlite", progress_bar=False)
+    assert (summary.finished, summary.failed) == (1, 0)
+    assert set(sweep.results()["dataset"]) == {f"{MODELS}:digit_pair"}
+
+
+@pytest.mark.parametrize("entry, message", [
+    ({"format": "torch"}, r"^sweep\.datasets\[0\]: missing key 'datasets'"),
+    ({"format": "torch", "datasets": f"{MODELS}:one_dataset"},
+     r"^sweep\.datasets\[0\]: .*one_dataset' must return a pair \(train_dataset, test_dataset\); got TensorDataset"),
+    ({"format": "torch", "datasets": f"{MODELS}:absent"}, r"^sweep\.datasets\[0\]\.datasets: module .* no attribute"),
+    ({"format": "torch", "datasets": f"{MODELS}:digit_pair", "arguments": {"count": 100}, "classes": ["a"]},
+     r"^sweep\.datasets\[0\]: classes must name every label"),
+    ({"format": "torch", "datasets": f"{MODELS}:digit_pair", "count": 100},
+     r"^sweep\.datasets\[0\]: unknown key 'count'"),
+])
+def test_bad_torch_data_name_the_key(entry, message):
+    with pytest.raises(SweepConfigError, match=message):
+        jostle.Sweep(datasets=[entry], methods=["map"], train_sizes=[20])
