@@ -74,7 +74,8 @@ def _fit(args: argparse.Namespace) -> int:
     if out.suffix != ".safetensors":
         raise CommandError(f"--out must end in .safetensors; got {str(out)!r}")
     try:
-        config = check_run(read_toml(args.config), where=Path(args.config).name, need_evaluation=False)
+        config = check_run(read_toml(args.config), where=Path(args.config).name, need_evaluation=False,
+                           paths_from=Path(args.config).resolve().parent)
     except SweepConfigError as err:
         raise CommandError(str(err)) from None
     try:
@@ -144,6 +145,8 @@ def _readable_table(runs) -> str:
     """
     import pandas as pd
 
+    # depth and width belong to the depth-width MLP; other architectures (and those naming no activation) show "-"
+    runs = runs.assign(**{c: runs[c].map(_or_dash) for c in ("depth", "width", "activation")})
     runs = runs.assign(settings=runs["method_settings"].map(_settings_text), key=runs["key"].str[:12],
                        saved=runs["ensemble_path"].notna().map({True: "yes", False: "no"}),
                        cell=[f"{s:.2f} / {r:.3f}" for s, r in zip(runs["success_rate"], runs["robustness"])])
@@ -172,6 +175,7 @@ def _gradient_table(gradients) -> str:
     table.columns = [f"S={s}" for s in table.columns]
     table = table.reindex(sorted(table.columns, key=lambda c: int(c[2:])), axis=1)
     info = runs.loc[table.index, ["method", "width", "n_train", "seed", "members"]]
+    info = info.assign(width=info["width"].map(_or_dash))  # MLP widths only
     table = pd.concat([info, table.fillna("-")], axis=1).reset_index()
     table["key"] = table["key"].str[:12]
     with pd.option_context("display.width", 250, "display.max_columns", None, "display.max_rows", None):
@@ -180,7 +184,7 @@ def _gradient_table(gradients) -> str:
             "expected over S members / single member (S = members is all of them)\n" + text)
 
 
-_SHOW_SHARED = ["dataset", "n_train", "depth", "width", "activation"]
+_SHOW_SHARED = ["dataset", "n_train", "depth", "width", "activation", "architecture"]
 _SHOW_RUN_COLUMNS = ["key"] + _SHOW_SHARED + ["method", "settings", "seed", "accuracy", "nll", "ece", "saved"]
 
 
@@ -199,6 +203,13 @@ def _certified_table(certified) -> str:
         text = table.reset_index().to_string(index=False)
     return ("certified: certified accuracy (predictive provably unflipped and correct) / mean share of members "
             "certified; a certificate holds for the sampled members and the stated ball only\n" + text)
+
+
+def _or_dash(value):
+    """A cell of a column only some architectures fill: "-" where empty, whole numbers as integers."""
+    if value is None or (isinstance(value, float) and value != value):
+        return "-"
+    return int(value) if isinstance(value, float) and value.is_integer() else value
 
 
 def _settings_text(settings: str) -> str:

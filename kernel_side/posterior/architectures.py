@@ -13,7 +13,7 @@ from jostle.common.checks import check_choice, check_float, check_int
 
 __all__ = [
     "mlp", "cnn", "ImageView", "DropoutMask", "with_dropout_masks", "register_architecture", "build_architecture",
-    "architecture_of", "init_parameters",
+    "architecture_of", "architecture_maker", "init_parameters",
 ]
 
 ACTIVATIONS: dict[str, Callable[[], nn.Module]] = {
@@ -27,18 +27,34 @@ ACTIVATIONS: dict[str, Callable[[], nn.Module]] = {
 }
 
 _BUILDERS: dict[str, Callable[..., nn.Module]] = {}
+_MAKERS: dict[str, Callable[..., nn.Module]] = {}
 _ARCH_ATTR = "_jostle_architecture"
 
 
-def register_architecture(name: str, builder: Callable[..., nn.Module]) -> None:
+def register_architecture(name: str, builder: Callable[..., nn.Module],
+                          maker: Callable[..., nn.Module] | None = None) -> None:
     """Register ``builder(**kwargs) -> nn.Module`` under ``name`` so that files can rebuild it.
 
     The builder's keyword arguments must be JSON-serialisable. Modules it returns are tagged
-    with ``{"builder": name, "kwargs": kwargs}`` by :func:`build_architecture`.
+    with ``{"builder": name, "kwargs": kwargs}`` by :func:`build_architecture`. ``maker``, if
+    given, is the public function that checks its arguments and returns the tagged module (as
+    :func:`mlp` and :func:`cnn` do); sweeps build architectures by name through it.
     """
     if not isinstance(name, str) or not name:
         raise ValueError(f"name must be a non-empty string; got {name!r}")
     _BUILDERS[name] = builder
+    if maker is not None:
+        _MAKERS[name] = maker
+    else:
+        _MAKERS.pop(name, None)
+
+
+def architecture_maker(name: str) -> Callable[..., nn.Module]:
+    """The checked public function of registered architecture ``name`` (``mlp`` -> :func:`mlp`)."""
+    if name not in _MAKERS:
+        known = ", ".join(repr(n) for n in sorted(_MAKERS)) or "none"
+        raise ValueError(f"must name a registered builder with a checked function ({known}); got {name!r}")
+    return _MAKERS[name]
 
 
 def build_architecture(name: str, **kwargs: Any) -> nn.Module:
@@ -110,7 +126,7 @@ def _build_mlp(in_features, classes, hidden, activation, dropout) -> nn.Sequenti
     return nn.Sequential(*layers)
 
 
-register_architecture("mlp", _build_mlp)
+register_architecture("mlp", _build_mlp, maker=mlp)
 
 POOLS: dict[str, Callable[[], nn.Module]] = {
     "max": lambda: nn.MaxPool2d(2),
@@ -247,7 +263,7 @@ def _build_cnn(in_shape, classes, channels, kernel, pool, norm, hidden, dropout,
     return nn.Sequential(*layers)
 
 
-register_architecture("cnn", _build_cnn)
+register_architecture("cnn", _build_cnn, maker=cnn)
 
 
 class DropoutMask(nn.Module):

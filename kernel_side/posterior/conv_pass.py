@@ -94,6 +94,9 @@ def activation_sizes(template: nn.Module, shape: tuple[int, ...]) -> list[int]:
     dtype = next((p.dtype for p in probe.parameters() if p.is_floating_point()), torch.float32)
     h = torch.empty((1, *shape), device="meta", dtype=dtype)
     sizes = [int(h[0].numel())]
+    first = next(iter(probe.children()), None)
+    if isinstance(first, nn.Unflatten):  # it takes the flat rows it unflattens
+        h = h.flatten(1)
     for layer in probe.children():
         h = layer(h)
         sizes.append(int(h[0].numel()))

@@ -231,6 +231,7 @@ def limit_grid(gradients: Any, method: str, samples: str | int, statistic: str =
     """
     check_choice("statistic", statistic, tuple(GRADIENT_MEASURES))
     rows = gradients[(gradients["which"] == "expected") & (gradients["method"] == method)]
+    rows = rows[rows["width"].notna()]  # widths are the depth-width MLP's; other architectures have none
     widths = sorted({int(w) for w in rows["width"]})
     sizes = sorted({int(n) for n in rows["n_train"]})
     shape = (len(sizes), len(widths))
@@ -294,7 +295,8 @@ def _describe(row: Any) -> str:
     parts = [
         f"{_method_label(row['method'], hyper)}" + (f" ({settings})" if settings else ""),
         f"{row['dataset']} n_train={row['n_train']}",
-        f"depth {row['depth']} x width {row['width']} {row['activation']}",
+        (f"depth {row['depth']} x width {row['width']} {row['activation']}"
+         if row.get("architecture", "mlp") == "mlp" else f"architecture {row['architecture']}"),
         f"seed {row['seed']}",
         f"accuracy {row['accuracy']:.3f}, NLL {row['nll']:.3f}, ECE {row['ece']:.3f}",
         f"{row['attack']} eps={row['budget']:g}: success {row['success_rate']:.3f}, robustness {row['robustness']:.3f}",

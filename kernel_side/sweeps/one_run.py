@@ -25,14 +25,14 @@ from typing import Any
 import numpy as np
 import torch
 
-from jostle import datasets as _datasets
 from jostle import metrics as _metrics
 from jostle.attacks.readouts import softmax_robustness
 from jostle.attacks.run import attack as run_attack
 from jostle.certify.certificate import certify
 from jostle.common.threads import torch_threads
 from jostle.files.posterior_file import jsonable
-from jostle.posterior.architectures import mlp
+from jostle.sweeps import networks
+from jostle.sweeps.data_sources import cut, load_source, source_of
 from jostle.sweeps.spec import CERTIFY_DEFAULT, fit_function, gradient_sample_counts, run_key
 
 __all__ = ["execute_run", "fit_run", "evaluate", "gradient_readout", "certified_scores", "load_run_data",
@@ -42,7 +42,7 @@ __all__ = ["execute_run", "fit_run", "evaluate", "gradient_readout", "certified_
 GRADIENT_STATISTICS = ("l2_mean", "l2_median", "l2_p90", "linf_mean", "linf_median", "linf_p90", "abs_mean")
 
 
-def execute_run(config: dict, save_ensemble: bool = False) -> dict:
+def execute_run(config: dict, save_ensemble: bool = False, source=None) -> dict:
     """Fit and evaluate one run; return a record for the store (never raises for run errors).
 
     Parameters
@@ -53,6 +53,9 @@ def execute_run(config: dict, save_ensemble: bool = False) -> dict:
     save_ensemble : bool
         Also return the fitted ensemble as safetensors bytes (``record["ensemble_bytes"]``),
         for the process that owns the store to write beside it.
+    source : Dataset, optional
+        The run's data source already loaded (:func:`jostle.sweeps.data_sources.source_of`):
+        on a cluster, the data set the sweep sent to every worker once. None loads it here.
 
     Returns
     -------
@@ -73,7 +76,7 @@ def execute_run(config: dict, save_ensemble: bool = False) -> dict:
         with torch_threads(1), warnings.catch_warnings(record=True) as caught:
             # Kept with the run (a convergence warning is a result), not printed on a worker.
             warnings.simplefilter("always")
-            _fit_and_score(config, save_ensemble, record)
+            _fit_and_score(config, save_ensemble, record, source)
     except Exception as err:  # a failing run is data, not a crash of the sweep
         record["error"] = f"{type(err).__name__}: {err}".splitlines()[0][:500]
         record["traceback"] = traceback.format_exc()
@@ -83,9 +86,11 @@ def execute_run(config: dict, save_ensemble: bool = False) -> dict:
     return record
 
 
-def fit_run(config: dict):
-    """Build the run's data and network and fit its posterior; returns ``(ensemble, data)``."""
-    data = load_run_data(config["data"])
+def fit_run(config: dict, source=None):
+    """Build the run's data and network and fit its posterior; returns ``(ensemble, data)``.
+
+    ``source``: the run's data source already loaded, as in :func:`execute_run`."""
+    data = load_run_data(config["data"], source)
     net = build_network(config["architecture"], data)
     method = dict(config["method"])
     name = method.pop("name")
@@ -218,24 +223,19 @@ def certified_scores(ens, x, y, evaluation: dict) -> list[dict]:
     return rows
 
 
-def load_run_data(spec: dict):
-    """The run's :class:`~jostle.Dataset`; digits keep the first ``n_train`` training images."""
-    args = {k: v for k, v in spec.items() if k != "name"}
-    if spec["name"] != "digits":
-        return getattr(_datasets, spec["name"])(**args)
-    n_train = args.pop("n_train")
-    full = _datasets.digits(**args)
-    return _datasets.from_arrays(
-        full.x_train[:n_train], full.y_train[:n_train], full.x_test, full.y_test,
-        classes=full.classes, name=full.name, bounds=full.bounds,
-        image_shape=full.image_shape, feature_names=full.feature_names,
-    )
+def load_run_data(spec: dict, source=None):
+    """The run's :class:`~jostle.Dataset`: its source (loaded here unless given; a file is checked
+    against its recorded sha256) with the first ``n_train`` training points where the source is
+    made whole (``digits``, ``meter_cards``, files)."""
+    if source is None:
+        source = load_source(source_of(spec))
+    return cut(source, spec)
 
 
 def build_network(spec: dict, data) -> torch.nn.Module:
-    """An MLP with ``depth`` hidden layers of ``width`` units for the data's shape."""
-    hidden = (spec["width"],) * spec["depth"]
-    return mlp(data.n_features, data.n_classes, hidden=hidden, activation=spec["activation"])
+    """The run's network for the data's shape (:func:`jostle.sweeps.networks.build_network`): an
+    MLP with ``depth`` hidden layers of ``width`` units, a registered builder, or your own function."""
+    return networks.build_network(spec, data)
 
 
 def software_versions() -> dict:
@@ -261,9 +261,9 @@ def _ensemble_bytes(ens, config: dict) -> bytes:
         return path.read_bytes()
 
 
-def _fit_and_score(config: dict, save_ensemble: bool, record: dict) -> None:
+def _fit_and_score(config: dict, save_ensemble: bool, record: dict, source=None) -> None:
     tick = time.perf_counter()
-    ens, data = fit_run(config)
+    ens, data = fit_run(config, source)
     record["fit_seconds"] = time.perf_counter() - tick
     tick = time.perf_counter()
     record["metrics"] = evaluate(ens, data, config["evaluation"], seed=config["seed"])

@@ -22,6 +22,8 @@ from pathlib import Path
 from typing import Any
 
 from jostle.files.posterior_file import atomic_write
+from jostle.sweeps.data_sources import data_label
+from jostle.sweeps.networks import architecture_label
 from jostle.sweeps.one_run import GRADIENT_STATISTICS
 from jostle.sweeps.spec import DETERMINISTIC_METHODS, canonical_json
 
@@ -67,8 +69,8 @@ CREATE TABLE IF NOT EXISTS certified_results (
     PRIMARY KEY (key, budget, norm, method)
 );
 """
-_CONFIG_COLUMNS = ["dataset", "n_train", "depth", "width", "activation", "method", "method_settings",
-                   "family", "seed"]
+_CONFIG_COLUMNS = ["dataset", "n_train", "depth", "width", "activation", "architecture", "method",
+                   "method_settings", "family", "seed"]
 _RUN_COLUMNS = ["key", "sweep", "status", "accuracy", "nll", "ece", "members", "fit_seconds",
                 "eval_seconds", "worker", "ensemble_path", "attempts", "error", "warnings"]
 
@@ -204,8 +206,10 @@ class RunStore:
         """Results as a pandas DataFrame.
 
         Long form (default): one row per run x attack x budget, with the run's
-        configuration columns (``dataset``, ``n_train``, ``depth``, ``width``,
-        ``activation``, ``method``, ``method_settings`` (JSON of the hyper-parameters),
+        configuration columns (``dataset`` (a built-in name or a file's name), ``n_train``,
+        ``depth``, ``width`` (of the depth-width MLP; None for other architectures),
+        ``activation`` (None where the architecture names none), ``architecture`` (``mlp``, a
+        builder's or a function's name), ``method``, ``method_settings`` (JSON of the hyper-parameters),
         ``family`` (``deterministic`` or ``Bayesian``), ``seed``), its headline metrics
         (``accuracy``, ``nll``, ``ece``) and ``attack``, ``budget``, ``success_rate``,
         ``robustness``. Wide form: one row per run, with columns
@@ -356,11 +360,15 @@ class _Transaction:
 
 
 def _config_columns(config: dict) -> dict:
+    """Columns read from a configuration: ``dataset`` is the built-in name or the file's name;
+    ``depth`` and ``width`` are those of the depth-width MLP (None for a builder or your own
+    function, whose name is ``architecture``); ``activation`` is the architecture's own, if it names one."""
     method = config["method"]["name"]
+    arch = config["architecture"]
     return {
-        "dataset": config["data"]["name"], "n_train": config["data"]["n_train"],
-        "depth": config["architecture"]["depth"], "width": config["architecture"]["width"],
-        "activation": config["architecture"]["activation"], "method": method,
+        "dataset": data_label(config["data"]), "n_train": config["data"]["n_train"],
+        "depth": arch.get("depth"), "width": arch.get("width"), "activation": arch.get("activation"),
+        "architecture": architecture_label(arch), "method": method,
         "method_settings": canonical_json({k: v for k, v in config["method"].items() if k != "name"}),
         "family": "deterministic" if method in DETERMINISTIC_METHODS else "Bayesian",
         "seed": config["seed"],

@@ -5,6 +5,13 @@ hyper-parameters), training sizes and seeds, plus one evaluation block shared by
 run. Definitions come from Python keyword arguments or from a TOML file with the same
 fields; either way every key is checked here and a bad one is refused with a message that
 names it, e.g. ``sweep.methods[2]: unknown method 'mcmc'``.
+
+Data sets are built-in names or files read by jostle's loaders
+(:mod:`jostle.sweeps.data_sources`); architectures are the depth-width MLP, a registered
+builder, or your own ``module:function`` (:mod:`jostle.sweeps.networks`). Each file is hashed
+(sha256) when the sweep is checked, and each builder or function is built once for each data
+set, so a missing file, a function that cannot be imported or one that returns no
+``nn.Module`` is refused here, naming its key.
 """
 from __future__ import annotations
 
@@ -13,6 +20,7 @@ import inspect
 import itertools
 import json
 import math
+import os
 from pathlib import Path
 from typing import Any
 
@@ -21,7 +29,6 @@ try:
 except ImportError:  # Python 3.10: the same parser, published as tomli
     import tomli as tomllib
 
-from jostle import datasets as _datasets
 from jostle.attacks.run import attack_names, attack_spec, resolve_settings
 from jostle.fitting.dropout import fit_dropout
 from jostle.fitting.hmc.fit import fit_hmc
@@ -30,6 +37,21 @@ from jostle.fitting.point_estimates import fit_deep_ensemble, fit_map
 from jostle.fitting.sgmcmc.fit import fit_sgmcmc
 from jostle.fitting.variational import fit_vi
 from jostle.posterior.architectures import ACTIVATIONS
+from jostle.sweeps.data_sources import (
+    BUILTIN_DATASETS,
+    FILE_FORMATS,
+    PATH_ARGUMENTS,
+    TORCH_FORMAT,
+    arrays_sha256,
+    builtin_loader,
+    content_sha256,
+    data_label,
+    file_loader,
+    load_source,
+    source_of,
+    without_paths,
+)
+from jostle.sweeps.networks import DATA_ARGUMENTS, build_network, factory_of, resolve_callable
 
 __all__ = [
     "SweepConfigError", "FITS", "METHODS", "DETERMINISTIC_METHODS", "DATASETS",
@@ -51,7 +73,8 @@ FITS = {
 METHODS: dict[str, str] = {name: fit.__name__ for name, fit in FITS.items()}
 #: methods that give a single network (S = 1); every other method is Bayesian
 DETERMINISTIC_METHODS = ("map",)
-DATASETS = ("moons", "circles", "spirals", "digits", "leak_alarm")
+#: built-in data sets a sweep names by ``name``; files come as ``{"format": ..., <path>: ...}``
+DATASETS = BUILTIN_DATASETS
 _TARGETS = ("predicted", "true")
 # Attack steps when the sweep does not say: this many, or fewer where the method's own
 # default is smaller (fgsm takes one step).
@@ -80,7 +103,14 @@ def canonical_json(value: Any) -> str:
 
 
 def run_key(config: dict) -> str:
-    """The stable identity of a run: sha256 (hex) of the canonical JSON of its configuration."""
+    """The stable identity of a run: sha256 (hex) of the canonical JSON of its configuration.
+
+    A data file enters by its content: its paths are left out and its sha256 kept
+    (:func:`jostle.sweeps.data_sources.without_paths`), so moving the file keeps the runs and
+    changing it makes new ones. Configurations without files are hashed as they are.
+    """
+    if "data" in config and "format" in config["data"]:
+        config = {**config, "data": without_paths(config["data"])}
     return hashlib.sha256(canonical_json(config).encode("ascii")).hexdigest()
 
 
@@ -97,8 +127,11 @@ def read_toml(path: str | Path) -> dict:
         raise SweepConfigError(f"{path} is not a UTF-8 text file") from None
 
 
-def check_sweep(spec: dict, where: str = "sweep") -> dict:
+def check_sweep(spec: dict, where: str = "sweep", paths_from: str | Path | None = None) -> dict:
     """Check a sweep definition and return it normalised (defaults filled in).
+
+    Relative file paths of data sets are read from ``paths_from`` (default: the working
+    directory) and recorded as absolute paths.
 
     Raises
     ------
@@ -114,10 +147,12 @@ def check_sweep(spec: dict, where: str = "sweep") -> dict:
         raise SweepConfigError(f"{where}.name: must be a non-empty string; got {name!r}")
     sizes = _int_list(spec.get("train_sizes", [200]), f"{where}.train_sizes", low=2)
     seeds = _int_list(spec.get("seeds", [0]), f"{where}.seeds", low=0)
-    data = [_check_data(d, f"{where}.datasets[{i}]", size)
+    data = [_check_data(d, f"{where}.datasets[{i}]", size, paths_from)
             for i, d in enumerate(_list(spec["datasets"], f"{where}.datasets")) for size in sizes]
     archs = [_check_architecture(a, f"{where}.architectures[{i}]")
              for i, a in enumerate(_list(spec.get("architectures", [{}]), f"{where}.architectures"))]
+    _check_builds(data, archs, [f"{where}.datasets[{i // len(sizes)}]" for i in range(len(data))],
+                  [f"{where}.architectures[{i}]" for i in range(len(archs))])
     methods = [setting for i, m in enumerate(_list(spec["methods"], f"{where}.methods"))
                for setting in _check_method(m, f"{where}.methods[{i}]")]
     evaluation = check_evaluation(spec.get("evaluation", {}), f"{where}.evaluation")
@@ -140,8 +175,10 @@ def expand(checked: dict) -> list[dict]:
     return runs
 
 
-def check_run(spec: dict, where: str = "run", need_evaluation: bool = True) -> dict:
-    """Check one run's fields (``data``, ``architecture``, ``method``, ``seed``, ``evaluation``)."""
+def check_run(spec: dict, where: str = "run", need_evaluation: bool = True,
+              paths_from: str | Path | None = None) -> dict:
+    """Check one run's fields (``data``, ``architecture``, ``method``, ``seed``, ``evaluation``);
+    ``paths_from`` as in :func:`check_sweep`."""
     _known_keys(spec, ("data", "architecture", "method", "seed", "evaluation"), where)
     for required in ("data", "method"):
         if required not in spec:
@@ -152,11 +189,12 @@ def check_run(spec: dict, where: str = "run", need_evaluation: bool = True) -> d
     if len(settings) != 1:
         raise SweepConfigError(f"{where}.method: a single run takes one setting; remove 'grid'")
     config = {
-        "data": _check_data(data, f"{where}.data", _int(size, f"{where}.data.n_train", low=2)),
+        "data": _check_data(data, f"{where}.data", _int(size, f"{where}.data.n_train", low=2), paths_from),
         "architecture": _check_architecture(spec.get("architecture", {}), f"{where}.architecture"),
         "method": settings[0],
         "seed": _int(spec.get("seed", 0), f"{where}.seed", low=0),
     }
+    _check_builds([config["data"]], [config["architecture"]], [f"{where}.data"], [f"{where}.architecture"])
     if need_evaluation or "evaluation" in spec:
         config["evaluation"] = check_evaluation(spec.get("evaluation", {}), f"{where}.evaluation")
     return config
@@ -212,31 +250,126 @@ def fit_function(method: str):
 
 
 # ---------------------------------------------------------------------- private helpers
-def _check_data(spec: Any, where: str, n_train: int) -> dict:
+def _check_data(spec: Any, where: str, n_train: int, paths_from: str | Path | None) -> dict:
+    """A built-in name (a string, or a table with ``name``) or a file table with ``format``."""
+    if isinstance(spec, str):
+        spec = {"name": spec}
     spec = dict(_table(spec, where))
+    if "format" in spec:
+        return _check_file_data(spec, where, n_train, paths_from)
     name = spec.pop("name", None)
     if name not in DATASETS:
-        raise SweepConfigError(f"{where}.name: unknown data set {name!r} (known: {_listing(DATASETS)})")
-    loader = getattr(_datasets, name)
-    parameters = inspect.signature(loader).parameters
+        raise SweepConfigError(f"{where}.name: unknown data set {name!r} (known: {_listing(DATASETS)}; "
+                               f"or a file: format = {_listing(FILE_FORMATS)})")
+    parameters = inspect.signature(builtin_loader(name)).parameters
     allowed = [p for p in parameters if p != "n_train"]
     if "n_train" in spec:
         raise SweepConfigError(f"{where}.n_train: set training sizes with sweep.train_sizes")
     _known_keys(spec, allowed, where)
     args = {p: spec.get(p, parameters[p].default) for p in allowed}
+    return _check_loads({"name": name, "n_train": n_train, **args}, where)
+
+
+def _check_file_data(spec: dict, where: str, n_train: int, paths_from: str | Path | None) -> dict:
+    """``{"format": ..., <path arguments>, **loader args}`` -> absolute paths, their sha256, the
+    loader's defaults filled in."""
+    fmt = spec.pop("format")
+    if fmt not in (*FILE_FORMATS, TORCH_FORMAT):
+        raise SweepConfigError(f"{where}.format: unknown file format {_brief(fmt)} "
+                               f"(known: {_listing((*FILE_FORMATS, TORCH_FORMAT))})")
+    if "n_train" in spec:
+        raise SweepConfigError(f"{where}.n_train: set training sizes with sweep.train_sizes")
+    if "sha256" in spec:
+        raise SweepConfigError(f"{where}.sha256: computed from the data themselves; remove it")
+    if fmt == TORCH_FORMAT:
+        return _check_torch_data(spec, where, n_train)
+    parameters = inspect.signature(file_loader(fmt)).parameters
+    _known_keys(spec, list(parameters), where)
+    paths = PATH_ARGUMENTS[fmt]
+    entry: dict[str, Any] = {"format": fmt}
+    digests = {}
+    base = Path.cwd() if paths_from is None else Path(paths_from)
+    for argument in paths:
+        value = spec.get(argument, parameters[argument].default)
+        if value is inspect.Parameter.empty:
+            raise SweepConfigError(f"{where}: missing key {argument!r} (the {fmt} file to read)")
+        if value is None:
+            entry[argument] = None
+            continue
+        if isinstance(value, os.PathLike):  # a pathlib.Path from Python
+            value = os.fspath(value)
+        if not isinstance(value, str) or not value:
+            raise SweepConfigError(f"{where}.{argument}: must be a path (a non-empty string); got {_brief(value)}")
+        path = (base / Path(value).expanduser()).resolve()
+        folder = fmt == "folder"
+        if not (path.is_dir() if folder else path.is_file()):
+            kind = "folder" if folder else "file"
+            found = "" if not path.exists() else f" (it is a {'file' if path.is_file() else 'folder'})"
+            raise SweepConfigError(f"{where}.{argument}: no such {kind} {str(path)!r}{found}")
+        entry[argument] = str(path)
+        try:
+            digests[argument] = content_sha256(path)
+        except OSError as err:
+            raise SweepConfigError(f"{where}.{argument}: cannot read {str(path)!r} ({err})") from None
+    for argument, parameter in parameters.items():
+        if argument in paths:
+            continue
+        value = spec.get(argument, parameter.default)
+        if isinstance(value, tuple):
+            value = list(value)
+        entry[argument] = value if value is None else _check_plain(value, f"{where}.{argument}")
+    entry["sha256"] = digests
+    entry["n_train"] = n_train
+    return _check_loads(entry, where)
+
+
+def _check_torch_data(spec: dict, where: str, n_train: int) -> dict:
+    """``{"format": "torch", "datasets": "module:function", "arguments": {...}, "classes": [...]}``
+    -> the function's pair copied once, its arrays' sha256 recorded."""
+    _known_keys(spec, ("datasets", "arguments", "classes"), where)
+    if "datasets" not in spec:
+        raise SweepConfigError(f"{where}: missing key 'datasets' (a 'module:function' returning the "
+                               f"train and test torch datasets)")
     try:
-        loaded = loader(**args) if name == "digits" else loader(n_train=n_train, **args)
+        resolve_callable(spec["datasets"])
+    except ValueError as err:
+        raise SweepConfigError(f"{where}.datasets: {err}") from None
+    arguments = _table(spec.get("arguments", {}), f"{where}.arguments")
+    arguments = {k: _check_plain(v, f"{where}.arguments.{k}") for k, v in arguments.items()}
+    classes = spec.get("classes")
+    entry = {"format": TORCH_FORMAT, "datasets": spec["datasets"], "arguments": arguments,
+             "classes": None if classes is None else _check_plain(classes, f"{where}.classes"), "n_train": n_train}
+    try:
+        made = load_source(source_of(entry))
     except (ValueError, TypeError) as err:
         raise SweepConfigError(f"{where}: {err}") from None
-    if name == "digits" and n_train > loaded.x_train.shape[0]:
-        raise SweepConfigError(
-            f"{where}: training size must be <= {loaded.x_train.shape[0]} (the digits training split); got {n_train}"
-        )
-    return {"name": name, "n_train": n_train, **args}
+    entry["sha256"] = {"arrays": arrays_sha256(made)}
+    return _check_loads(entry, where)
+
+
+def _check_loads(entry: dict, where: str) -> dict:
+    """Load the entry's source once (kept loaded for the sweep) and check the training size."""
+    try:
+        loaded = load_source(source_of(entry))
+    except FileNotFoundError as err:
+        raise SweepConfigError(f"{where}: {err}") from None
+    except (ValueError, TypeError) as err:
+        raise SweepConfigError(f"{where}: {err}") from None
+    available = int(loaded.x_train.shape[0])
+    if source_of(entry) != entry and entry["n_train"] > available:
+        raise SweepConfigError(f"{where}: training size must be <= {available} (the training points of "
+                               f"{data_label(entry)}); got {entry['n_train']}")
+    return entry
 
 
 def _check_architecture(spec: Any, where: str) -> dict:
+    """The depth-width MLP table, ``{"builder": name, ...}``, or ``"module:function"`` /
+    ``{"callable": "module:function", ...}``."""
+    if isinstance(spec, str):
+        spec = {"callable": spec}
     spec = _table(spec, where)
+    if "builder" in spec or "callable" in spec:
+        return _check_factory(dict(spec), where)
     _known_keys(spec, ("depth", "width", "activation"), where)
     activation = spec.get("activation", "tanh")
     if activation not in ACTIVATIONS:
@@ -248,6 +381,63 @@ def _check_architecture(spec: Any, where: str) -> dict:
         "width": _int(spec.get("width", 32), f"{where}.width", low=1),
         "activation": activation,
     }
+
+
+def _check_factory(spec: dict, where: str) -> dict:
+    """A builder or callable entry: the function found, its arguments named in its signature,
+    plain values; a builder's defaults filled in (a callable keeps what it was given)."""
+    if "builder" in spec and "callable" in spec:
+        raise SweepConfigError(f"{where}: give either 'builder' or 'callable', not both")
+    kind = "builder" if "builder" in spec else "callable"
+    try:
+        factory = factory_of(spec)
+    except ValueError as err:
+        raise SweepConfigError(f"{where}.{kind}: {err}") from None
+    try:
+        parameters = inspect.signature(factory).parameters
+    except (TypeError, ValueError):
+        raise SweepConfigError(f"{where}.{kind}: {spec[kind]!r} has no readable signature") from None
+    takes_any = any(p.kind is inspect.Parameter.VAR_KEYWORD for p in parameters.values())
+    named = [p for p, v in parameters.items()
+             if v.kind in (inspect.Parameter.POSITIONAL_OR_KEYWORD, inspect.Parameter.KEYWORD_ONLY)]
+    entry = {kind: spec.pop(kind)}
+    for key, value in spec.items():
+        if key in DATA_ARGUMENTS:
+            raise SweepConfigError(f"{where}.{key}: set by the sweep from the data set")
+        if key not in named and not takes_any:
+            allowed = [p for p in named if p not in DATA_ARGUMENTS]
+            raise SweepConfigError(f"{where}: unknown key {key!r} of {entry[kind]!r} (allowed: {_listing(allowed)})")
+        entry[key] = value if value is None else _check_plain(value, f"{where}.{key}")
+    if kind == "builder":
+        for key in named:
+            default = parameters[key].default
+            if key not in entry and key not in DATA_ARGUMENTS and default is not inspect.Parameter.empty:
+                entry[key] = list(default) if isinstance(default, tuple) else default
+    missing = [p for p in named if p not in entry and p not in DATA_ARGUMENTS
+               and parameters[p].default is inspect.Parameter.empty]
+    if missing:
+        raise SweepConfigError(f"{where}: missing key {missing[0]!r} (an argument of {entry[kind]!r} "
+                               f"without a default)")
+    return entry
+
+
+def _check_builds(data: list[dict], archs: list[dict], data_where: list[str], arch_where: list[str]) -> None:
+    """Build each builder or callable architecture once for each data source it meets, so a
+    refused argument, images asked of feature vectors, or a result that is no ``nn.Module`` is
+    caught now, not in every run."""
+    tried = set()
+    for arch, arch_at in zip(archs, arch_where):
+        if "builder" not in arch and "callable" not in arch:
+            continue
+        for entry, data_at in zip(data, data_where):
+            token = canonical_json([source_of(entry), arch])
+            if token in tried:
+                continue
+            tried.add(token)
+            try:
+                build_network(arch, load_source(source_of(entry)))
+            except ValueError as err:
+                raise SweepConfigError(f"{arch_at} on {data_at}: {err}") from None
 
 
 def _check_method(spec: Any, where: str) -> list[dict]:

@@ -1,7 +1,10 @@
 """Robustness-against-accuracy sweeps: define a grid of runs, execute it, keep the results.
 
 Runs execute in the calling process by default. Given a ``dask.distributed.Client`` each
-run becomes its own task on the cluster; workers only need ``import jostle``. Either way
+run becomes its own task on the cluster; workers only need ``import jostle`` (and, for an
+architecture given as ``module:function``, that module). Each data set is loaded once in the
+calling process and sent to every worker once (``client.scatter(..., broadcast=True)``); the
+runs' tasks take it as an argument, so neither the data nor the files travel per run. Either way
 the calling process is the only writer of the store: it commits each run as it
 completes. Runs already stored are skipped, so rerunning a sweep after a crash or Ctrl-C
 executes only what is missing; failed runs are retried unless ``retry_failed=False``.
@@ -16,9 +19,10 @@ from pathlib import Path
 from typing import Any
 
 from jostle.common.progress import progress_bar as progress_bar_for
+from jostle.sweeps.data_sources import load_source, source_of
 from jostle.sweeps.one_run import execute_run, software_versions
 from jostle.sweeps.results_db import RunStore
-from jostle.sweeps.spec import SweepConfigError, check_sweep, expand, read_toml, run_key
+from jostle.sweeps.spec import SweepConfigError, canonical_json, check_sweep, expand, read_toml, run_key
 
 __all__ = ["Sweep", "SweepSummary"]
 
@@ -47,14 +51,30 @@ class Sweep:
 
     Parameters
     ----------
-    datasets : list of dict
-        Each ``{"name": "moons" | "circles" | "spirals" | "digits", **loader args}``
-        (e.g. ``noise``, ``n_test``, ``seed``; the training size comes from ``train_sizes``).
+    datasets : list of str or dict
+        Each a built-in set, ``"moons"`` or ``{"name": "moons" | "circles" | "spirals" |
+        "digits" | "leak_alarm" | "meter_cards", **loader args}`` (e.g. ``noise``, ``n_test``,
+        ``seed``; ``meter_cards`` takes ``resolution`` and ``colour``), or a file read by a
+        jostle loader, ``{"format": "npz", "path": ..., **from_npz args}``, ``{"format": "idx",
+        "images_path": ..., "labels_path": ..., "test_images": ..., "test_labels": ...,
+        **from_idx args}``, ``{"format": "folder", "path": ..., "size": [H, W], ...}``, or
+        ``{"format": "torch", "datasets": "package.module:function", "arguments": {...}}`` whose
+        function returns a (train, test) pair of torch datasets for ``from_torch``. The
+        training size comes from ``train_sizes`` (``digits``, ``meter_cards`` and files keep
+        their first N training points). Relative paths are read from ``paths_from``; each
+        file's sha256 joins the run key in place of its path (a torch pair: its arrays' sha256),
+        so changed data give new runs.
     methods : list of str or dict
         Each a method name (``map``, ``deep_ensemble``, ``dropout``, ``vi``, ``laplace``,
         ``hmc``) or ``{"name": ..., **hyper-parameters, "grid": {hyper-parameter: [values]}}``.
-    architectures : list of dict
-        Each ``{"depth": int, "width": int, "activation": str}`` (default depth 2, width 32, tanh).
+    architectures : list of str or dict
+        Each ``{"depth": int, "width": int, "activation": str}`` (an MLP; default depth 2,
+        width 32, tanh); ``{"builder": "mlp" | "cnn", **arguments}`` (e.g. ``{"builder": "cnn",
+        "channels": [8, 16]}``); or your own function, ``"package.module:function"`` or
+        ``{"callable": "package.module:function", **arguments}``, returning a ``torch.nn.Module``.
+        Builders and functions get the table's arguments by keyword, plus ``in_features``,
+        ``in_shape`` (``[C, H, W]``, image data only) and ``classes`` from the data set where
+        their signature names them (see :mod:`jostle.sweeps.networks`).
     train_sizes : list of int
         Training-set sizes (default ``[200]``).
     seeds : list of int
@@ -71,6 +91,9 @@ class Sweep:
         Recorded with every run in the store.
     store : str or Path, optional
         Default store for :meth:`run` and :meth:`results`.
+    paths_from : str or Path, optional
+        Folder that relative data-file paths are read from (default: the working directory;
+        :meth:`from_toml`: the TOML file's folder).
 
     Examples
     --------
@@ -81,19 +104,21 @@ class Sweep:
 
     def __init__(self, datasets: list, methods: list, architectures: list | None = None,
                  train_sizes: list | None = None, seeds: list | None = None,
-                 evaluation: dict | None = None, name: str = "sweep", store: str | Path | None = None):
+                 evaluation: dict | None = None, name: str = "sweep", store: str | Path | None = None,
+                 paths_from: str | Path | None = None):
         spec: dict[str, Any] = {"name": name, "datasets": datasets, "methods": methods}
         for key, value in (("architectures", architectures), ("train_sizes", train_sizes),
                            ("seeds", seeds), ("evaluation", evaluation)):
             if value is not None:
                 spec[key] = value
-        self._checked = check_sweep(spec)
+        self._checked = check_sweep(spec, paths_from=paths_from)
         self.name = self._checked["name"]
         self.store = None if store is None else Path(store)
 
     @classmethod
     def from_toml(cls, path: str | Path, store: str | Path | None = None) -> Sweep:
-        """Read a sweep from a TOML file whose ``[sweep]`` table holds the same fields."""
+        """Read a sweep from a TOML file whose ``[sweep]`` table holds the same fields (relative
+        data-file paths are read from the TOML file's folder)."""
         document = read_toml(path)
         unknown = [k for k in document if k != "sweep"]
         if unknown:
@@ -101,7 +126,7 @@ class Sweep:
         if "sweep" not in document:
             raise SweepConfigError(f"{path} has no [sweep] table")
         spec = dict(document["sweep"])
-        return cls(**_keyword_form(spec), store=store)
+        return cls(**_keyword_form(spec), store=store, paths_from=Path(path).resolve().parent)
 
     def runs(self) -> list[dict]:
         """Every run's configuration dict, in grid order."""
@@ -225,17 +250,29 @@ def _keyword_form(spec: dict) -> dict:
 
 def _run_on_cluster(client: Any, pending: list[dict], save_ensembles: bool,
                     commit: Callable[[dict], None]) -> None:
-    """Submit every run, commit results in completion order; cancel the rest on any error."""
+    """Send each data source to every worker once, submit every run with its source's future,
+    commit results in completion order; cancel the rest on any error."""
     from distributed import as_completed
 
     batch = uuid.uuid4().hex[:8]
+    sources: dict[str, Any] = {}
     futures = {}
-    for config in pending:
-        key = run_key(config)
-        future = client.submit(execute_run, config, save_ensembles, key=f"jostle-run-{key[:16]}-{batch}",
-                               pure=False, retries=0)
-        futures[future] = config
     try:
+        for config in pending:
+            token = canonical_json(source_of(config["data"]))
+            if token not in sources:
+                try:
+                    sources[token] = client.scatter(load_source(source_of(config["data"])), broadcast=True,
+                                                    hash=False)
+                except (OSError, ValueError) as err:  # e.g. a file changed since the sweep was checked
+                    sources[token] = err
+            if isinstance(sources[token], BaseException):
+                commit(_lost_record(config, sources[token]))
+                continue
+            key = run_key(config)
+            future = client.submit(execute_run, config, save_ensembles, sources[token],
+                                   key=f"jostle-run-{key[:16]}-{batch}", pure=False, retries=0)
+            futures[future] = config
         for future in as_completed(list(futures)):
             config = futures[future]
             try:
@@ -247,6 +284,10 @@ def _run_on_cluster(client: Any, pending: list[dict], save_ensembles: bool,
     except BaseException:
         client.cancel(list(futures))
         raise
+    finally:
+        for source in sources.values():
+            if not isinstance(source, BaseException):
+                source.release()
 
 
 def _lost_record(config: dict, err: BaseException) -> dict:
