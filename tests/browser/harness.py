@@ -6,6 +6,7 @@ killed with its group. Every wait is bounded and says what it waited for when it
 """
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import re
@@ -16,6 +17,7 @@ import sys
 import time
 import urllib.error
 import urllib.request
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -378,6 +380,27 @@ _NOTEBOOK_DONE = f"""(name) => {{
   const done = cells.every(c => c.model.executionCount !== null);
   return done && kernel && kernel.status === 'idle' ? {{errors: []}} : false;
 }}"""
+
+
+@contextlib.contextmanager
+def lab_notebook(browser, lab: Server, name: str, cells: list[str | tuple[str, str]] | None = None,
+                 viewport: tuple[int, int] = (1400, 1000),
+                 timeout: float = NOTEBOOK_RUN_TIMEOUT_S) -> Iterator[tuple[Any, PageErrors]]:
+    """A fresh browser context and page with notebook ``name`` (written from ``cells`` first,
+    when given) open in JupyterLab and every cell run; yields ``(page, errors)``. On leaving,
+    the context closes and the page's uncaught errors fail the test."""
+    if cells is not None:
+        write_notebook(lab.root / name, cells)
+    context = browser.new_context(viewport={"width": viewport[0], "height": viewport[1]})
+    page = context.new_page()
+    block_outside_traffic(page)
+    errors = PageErrors(page)
+    try:
+        open_and_run(page, lab, name, timeout=timeout)
+        yield page, errors
+    finally:
+        context.close()
+    errors.check()
 
 
 def open_and_run(page, lab: Server, name: str, timeout: float = NOTEBOOK_RUN_TIMEOUT_S) -> None:

@@ -6,7 +6,11 @@ import re
 import pytest
 
 from .explorer_page import wait_for_explorer
-from .harness import PageErrors, block_outside_traffic, open_and_run, screenshot, wait_until, write_notebook
+from .harness import (
+    lab_notebook,
+    screenshot,
+    wait_until,
+)
 
 pytestmark = [pytest.mark.browser, pytest.mark.slow]
 
@@ -36,13 +40,7 @@ _DRAWN_JS = """() => {
 
 
 def test_explorer_draws_both_radii_and_says_them_in_words(chromium_browser, lab_server):
-    notebook = write_notebook(lab_server.root / "certified.ipynb", CELLS)
-    context = chromium_browser.new_context(viewport={"width": 1400, "height": 1100})
-    page = context.new_page()
-    block_outside_traffic(page)
-    errors = PageErrors(page)
-    try:
-        open_and_run(page, lab_server, notebook.name)
+    with lab_notebook(chromium_browser, lab_server, "certified.ipynb", CELLS, viewport=(1400, 1100)) as (page, _):
         wait_for_explorer(page)
         drawn = wait_until(page, _DRAWN_JS, timeout=180, what="both rings, the words and the finest radius layer")
         assert re.search(r"No flip is possible within r = [\d.e-]+ \(L-inf ball, certified, CROWN\); "
@@ -52,6 +50,3 @@ def test_explorer_draws_both_radii_and_says_them_in_words(chromium_browser, lab_
         page.get_by_test_id("certified-text").first.scroll_into_view_if_needed()
         page.get_by_test_id("explorer-map").first.scroll_into_view_if_needed()
         screenshot(page, "explorer-lab-certified")
-    finally:
-        context.close()
-    errors.check()

@@ -11,7 +11,12 @@ import re
 import pytest
 
 from .explorer_page import click_map, set_range, snapshot, wait_for_explorer, wait_for_update
-from .harness import PageErrors, block_outside_traffic, open_and_run, open_voila, screenshot, write_notebook
+from .harness import (
+    lab_notebook,
+    open_voila,
+    screenshot,
+    write_notebook,
+)
 
 pytestmark = [pytest.mark.browser, pytest.mark.slow]
 
@@ -41,15 +46,9 @@ def explorer_notebook(lab_server):
 @pytest.fixture(scope="module")
 def lab_explorer(chromium_browser, lab_server, explorer_notebook):
     """One JupyterLab page with the explorer notebook run; page errors fail the module."""
-    context = chromium_browser.new_context(viewport={"width": 1400, "height": 1100})
-    page = context.new_page()
-    block_outside_traffic(page)
-    errors = PageErrors(page)
-    open_and_run(page, lab_server, explorer_notebook.name)
-    wait_for_explorer(page)
-    yield page, errors
-    context.close()
-    errors.check()
+    with lab_notebook(chromium_browser, lab_server, explorer_notebook.name, viewport=(1400, 1100)) as (page, errors):
+        wait_for_explorer(page)
+        yield page, errors
 
 
 @pytest.fixture(scope="module")

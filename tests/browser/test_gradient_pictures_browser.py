@@ -8,7 +8,12 @@ from __future__ import annotations
 
 import pytest
 
-from .harness import PageErrors, block_outside_traffic, open_and_run, screenshot, wait_for, wait_until, write_notebook
+from .harness import (
+    lab_notebook,
+    screenshot,
+    wait_for,
+    wait_until,
+)
 
 pytestmark = [pytest.mark.browser, pytest.mark.slow]
 
@@ -54,15 +59,8 @@ _STRIP_JS = """(scope) => {
 
 @pytest.fixture(scope="module")
 def lab_page(chromium_browser, lab_server):
-    notebook = write_notebook(lab_server.root / "gradient_pictures.ipynb", CELLS)
-    context = chromium_browser.new_context(viewport={"width": 1400, "height": 1600})
-    page = context.new_page()
-    block_outside_traffic(page)
-    errors = PageErrors(page)
-    open_and_run(page, lab_server, notebook.name)
-    yield page, errors
-    context.close()
-    errors.check()
+    with lab_notebook(chromium_browser, lab_server, "gradient_pictures.ipynb", CELLS, viewport=(1400, 1600)) as opened:
+        yield opened
 
 
 def _reference(index: int):

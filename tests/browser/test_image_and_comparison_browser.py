@@ -7,7 +7,12 @@ from __future__ import annotations
 
 import pytest
 
-from .harness import PageErrors, block_outside_traffic, open_and_run, screenshot, wait_for, wait_until, write_notebook
+from .harness import (
+    lab_notebook,
+    screenshot,
+    wait_for,
+    wait_until,
+)
 
 pytestmark = [pytest.mark.browser, pytest.mark.slow]
 
@@ -53,15 +58,9 @@ _PANELS_JS = """(scope) => {
 
 @pytest.fixture(scope="module")
 def lab_widgets(chromium_browser, lab_server):
-    notebook = write_notebook(lab_server.root / "images_and_comparison.ipynb", CELLS)
-    context = chromium_browser.new_context(viewport={"width": 1400, "height": 1400})
-    page = context.new_page()
-    block_outside_traffic(page)
-    errors = PageErrors(page)
-    open_and_run(page, lab_server, notebook.name)
-    yield page, errors
-    context.close()
-    errors.check()
+    with lab_notebook(chromium_browser, lab_server, "images_and_comparison.ipynb", CELLS,
+                      viewport=(1400, 1400)) as opened:
+        yield opened
 
 
 def _panels(page) -> dict:

@@ -16,7 +16,7 @@ import re
 import pytest
 
 from .explorer_page import snapshot, wait_for_explorer, wait_for_update
-from .harness import PageErrors, block_outside_traffic, open_and_run, wait_until, write_notebook
+from .harness import lab_notebook, wait_until
 
 pytestmark = [pytest.mark.browser, pytest.mark.slow]
 
@@ -120,20 +120,13 @@ _FOCUSED_JS = """(scope) => {
 
 @pytest.fixture(scope="module")
 def keyboard_page(chromium_browser, lab_server):
-    notebook = write_notebook(lab_server.root / "keyboard.ipynb", CELLS)
-    context = chromium_browser.new_context(viewport={"width": 1500, "height": 2000})
-    page = context.new_page()
-    block_outside_traffic(page)
-    errors = PageErrors(page)
-    open_and_run(page, lab_server, notebook.name)
-    wait_for_explorer(page, FIRST)
-    wait_until(page, "(s) => { const p = document.querySelector(s + ' [data-testid=image-panels-root]');"
-                     " return p && Number(p.dataset.revision) >= 1; }", arg=IMAGES, what="the image panels")
-    wait_until(page, "(s) => document.querySelectorAll(s + ' [data-testid=sweep-point]').length === 4", arg=SWEEP,
-               what="the sweep chart's 4 runs")
-    yield page, errors
-    context.close()
-    errors.check()
+    with lab_notebook(chromium_browser, lab_server, "keyboard.ipynb", CELLS, viewport=(1500, 2000)) as (page, errors):
+        wait_for_explorer(page, FIRST)
+        wait_until(page, "(s) => { const p = document.querySelector(s + ' [data-testid=image-panels-root]');"
+                         " return p && Number(p.dataset.revision) >= 1; }", arg=IMAGES, what="the image panels")
+        wait_until(page, "(s) => document.querySelectorAll(s + ' [data-testid=sweep-point]').length === 4",
+                   arg=SWEEP, what="the sweep chart's 4 runs")
+        yield page, errors
 
 
 @pytest.mark.parametrize("scope, least", [(COMPARISON, 2 * 8 + 1), (IMAGES, 4 + 6), (SWEEP, 4 + 2 + 3)])

@@ -8,14 +8,11 @@ import subprocess
 import pytest
 
 from .harness import (
-    PageErrors,
-    block_outside_traffic,
     jostle_command,
-    open_and_run,
+    lab_notebook,
     screenshot,
     wait_for,
     wait_until,
-    write_notebook,
 )
 
 pytestmark = [pytest.mark.browser, pytest.mark.slow]
@@ -57,16 +54,9 @@ def limit_page(chromium_browser, lab_server):
         assert done.returncode == 0, done.stderr
     cells = [("markdown", "# limit chart under test"),
              f"from jostle.widgets import SweepExplorer\nexplorer = SweepExplorer({str(store)!r})\nexplorer"]
-    notebook = write_notebook(lab_server.root / "limit_chart.ipynb", cells)
-    context = chromium_browser.new_context(viewport={"width": 1500, "height": 1400})
-    page = context.new_page()
-    block_outside_traffic(page)
-    errors = PageErrors(page)
-    open_and_run(page, lab_server, notebook.name)
-    wait_for(page, "limit-chart")
-    yield page
-    context.close()
-    errors.check()
+    with lab_notebook(chromium_browser, lab_server, "limit_chart.ipynb", cells, viewport=(1500, 1400)) as (page, _):
+        wait_for(page, "limit-chart")
+        yield page
 
 
 def test_grid_shows_cells_by_width_and_size_with_an_empty_one(limit_page):

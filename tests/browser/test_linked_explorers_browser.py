@@ -9,7 +9,7 @@ from __future__ import annotations
 import pytest
 
 from .explorer_page import click_map, set_range, snapshot, wait_for_explorer, wait_for_update
-from .harness import PageErrors, block_outside_traffic, open_and_run, screenshot, write_notebook
+from .harness import lab_notebook, screenshot
 
 pytestmark = [pytest.mark.browser, pytest.mark.slow]
 
@@ -37,17 +37,10 @@ LEFT, RIGHT = ".jostle-left", ".jostle-right"
 
 @pytest.fixture(scope="module")
 def linked_page(chromium_browser, lab_server):
-    notebook = write_notebook(lab_server.root / "linked.ipynb", LINKED_CELLS)
-    context = chromium_browser.new_context(viewport={"width": 1800, "height": 1100})
-    page = context.new_page()
-    block_outside_traffic(page)
-    errors = PageErrors(page)
-    open_and_run(page, lab_server, notebook.name)
-    wait_for_explorer(page, scope=LEFT)
-    wait_for_explorer(page, scope=RIGHT)
-    yield page, errors
-    context.close()
-    errors.check()
+    with lab_notebook(chromium_browser, lab_server, "linked.ipynb", LINKED_CELLS, viewport=(1800, 1100)) as opened:
+        wait_for_explorer(opened[0], scope=LEFT)
+        wait_for_explorer(opened[0], scope=RIGHT)
+        yield opened
 
 
 @pytest.mark.parametrize("source, other, budget", [(LEFT, RIGHT, 0.35), (RIGHT, LEFT, 0.2)])

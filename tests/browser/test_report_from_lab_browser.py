@@ -7,7 +7,11 @@ import re
 import pytest
 
 from .explorer_page import click_map, snapshot, wait_for_explorer, wait_for_update
-from .harness import PageErrors, block_outside_traffic, open_and_run, screenshot, wait_until, write_notebook
+from .harness import (
+    lab_notebook,
+    screenshot,
+    wait_until,
+)
 from .test_report_offline_browser import _cells, _open_offline
 
 pytestmark = [pytest.mark.browser, pytest.mark.slow]
@@ -41,13 +45,7 @@ def _split(text: str, name: str) -> list[float]:
 
 
 def test_report_made_in_jupyterlab_shows_the_live_numbers_offline(chromium_browser, lab_server):
-    notebook = write_notebook(lab_server.root / "finding.ipynb", CELLS)
-    context = chromium_browser.new_context(viewport={"width": 1400, "height": 1100})
-    page = context.new_page()
-    block_outside_traffic(page)
-    errors = PageErrors(page)
-    try:
-        open_and_run(page, lab_server, notebook.name)
+    with lab_notebook(chromium_browser, lab_server, "finding.ipynb", CELLS, viewport=(1400, 1100)) as (page, _):
         before = wait_for_explorer(page)
         click_map(page, 0.3, 0.35)
         live = wait_for_update(page, before, ["point", "predictive", "uncertainty"], what="the clicked input's view")
@@ -56,9 +54,6 @@ def test_report_made_in_jupyterlab_shows_the_live_numbers_offline(chromium_brows
         live = snapshot(page)  # unchanged by writing the report
         live_success = page.get_by_test_id("explorer-map-root").first.get_attribute("data-success")
         screenshot(page, "report-lab-live")
-    finally:
-        context.close()
-    errors.check()
     path = lab_server.root / "finding.html"
     context, report, url, attempts, dialogs, page_errors = _open_offline(chromium_browser, path)
     try:

@@ -3,7 +3,12 @@ from __future__ import annotations
 
 import pytest
 
-from .harness import PageErrors, block_outside_traffic, open_and_run, screenshot, wait_for, wait_until, write_notebook
+from .harness import (
+    lab_notebook,
+    screenshot,
+    wait_for,
+    wait_until,
+)
 
 pytestmark = [pytest.mark.browser, pytest.mark.slow]
 
@@ -38,16 +43,9 @@ explorer''',
 
 @pytest.fixture(scope="module")
 def sweep_page(chromium_browser, lab_server):
-    notebook = write_notebook(lab_server.root / "sweep_explorer.ipynb", SWEEP_CELLS)
-    context = chromium_browser.new_context(viewport={"width": 1400, "height": 1000})
-    page = context.new_page()
-    block_outside_traffic(page)
-    errors = PageErrors(page)
-    open_and_run(page, lab_server, notebook.name)
-    wait_for(page, "sweep-chart")
-    yield page
-    context.close()
-    errors.check()
+    with lab_notebook(chromium_browser, lab_server, "sweep_explorer.ipynb", SWEEP_CELLS) as (page, _):
+        wait_for(page, "sweep-chart")
+        yield page
 
 
 def test_marks_differ_by_shape_and_colour_per_family(sweep_page):
