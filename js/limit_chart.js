@@ -2,29 +2,8 @@
 // cells on a log colour scale, or the size against the sample count S with the 1/sqrt(S) rate.
 // Every string from the kernel (notes, labels) is set as text only.
 
-const SVG = "http://www.w3.org/2000/svg";
 const SIZE = { width: 440, height: 320, left: 58, right: 14, top: 12, bottom: 40 };
 const RAMP = 5; // --jostle-limit-0 .. --jostle-limit-4 in limit_chart.css
-
-/** @param {{shape: number[], dtype: string, buffer: DataView}} wire */
-function unpack(wire) {
-  const kinds = { float64: Float64Array, uint8: Uint8Array };
-  if (!wire || !wire.buffer) return new Float64Array(0);
-  const view = wire.buffer, Kind = kinds[wire.dtype];
-  return new Kind(view.buffer, view.byteOffset, view.byteLength / Kind.BYTES_PER_ELEMENT);
-}
-
-function node(tag, attrs = {}, parent = null, ns = null) {
-  const el = ns ? document.createElementNS(ns, tag) : document.createElement(tag);
-  for (const [k, v] of Object.entries(attrs)) el.setAttribute(k, String(v));
-  if (parent) parent.appendChild(el);
-  return el;
-}
-
-function hexToRgb(hex) {
-  const v = parseInt(hex.trim().replace("#", ""), 16);
-  return [(v >> 16) & 255, (v >> 8) & 255, v & 255];
-}
 
 // position on the log scale, 0 at the least value shown and 1 at the greatest
 function logPosition(scale, value) {
@@ -36,21 +15,6 @@ function colourAt(stops, t) {
   const x = t * (stops.length - 1), i = Math.min(stops.length - 2, Math.floor(x)), f = x - i;
   const rgb = stops[i].map((c, k) => Math.round(c + f * (stops[i + 1][k] - c)));
   return `rgb(${rgb[0]},${rgb[1]},${rgb[2]})`;
-}
-
-function pick(bar, label, testid) {
-  const wrap = node("label", {}, bar);
-  wrap.appendChild(document.createTextNode(label + " "));
-  return node("select", { "data-testid": testid }, wrap);
-}
-
-function fillSelect(select, options, current, labels = null) {
-  select.replaceChildren();
-  options.forEach((value, i) => {
-    const opt = node("option", { value }, select);
-    opt.textContent = labels ? labels[i] : String(value);
-    if (String(value) === String(current)) opt.selected = true;
-  });
 }
 
 function showTip(tip, text, x, y) {
@@ -69,7 +33,7 @@ function axisTitles(svg, xTitle, yTitle) {
 
 function drawGrid(model, svg, tip, stops) {
   const widths = model.get("widths"), sizes = model.get("train_sizes");
-  const values = unpack(model.get("values")), saved = unpack(model.get("saved"));
+  const values = typed(model.get("values")), saved = typed(model.get("saved"));
   const keys = model.get("cell_keys"), notes = model.get("cell_notes"), scale = model.get("colour_scale");
   const selected = model.get("selected_key");
   const w = (SIZE.width - SIZE.left - SIZE.right) / Math.max(1, widths.length);
@@ -188,7 +152,7 @@ function render({ model, el }) {
   const note = node("div", { class: "jostle-limit-note", "data-testid": "limit-note" }, root);
   const draw = () => {
     const style = getComputedStyle(root);
-    const stops = [...Array(RAMP).keys()].map((i) => hexToRgb(style.getPropertyValue(`--jostle-limit-${i}`) || "#777777"));
+    const stops = [...Array(RAMP).keys()].map((i) => rgb(style.getPropertyValue(`--jostle-limit-${i}`) || "#777777"));
     svg.replaceChildren();
     const view = model.get("view");
     const drawn = view === "curves" ? drawCurves(model, svg, tip, stops) : drawGrid(model, svg, tip, stops);

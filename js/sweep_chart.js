@@ -1,7 +1,6 @@
 // Robustness against accuracy, one mark per sweep run, with filters and per-family correlations.
 // Every string that comes from the kernel (method names, run descriptions) is set as text only.
 
-const SVG = "http://www.w3.org/2000/svg";
 const SIZE = { width: 460, height: 340, left: 52, right: 14, top: 12, bottom: 40 };
 const SHAPES = {
   // family 0 (deterministic): triangle; family 1 (Bayesian): circle; both about 7 px across
@@ -9,22 +8,6 @@ const SHAPES = {
   1: "M4,0A4,4 0 1,1 -4,0A4,4 0 1,1 4,0Z",
 };
 const FAMILY_NAMES = ["deterministic", "Bayesian"];
-
-/** @param {{shape: number[], dtype: string, buffer: DataView}} wire */
-function unpack(wire) {
-  const kinds = { float32: Float32Array, float64: Float64Array, int32: Int32Array, uint8: Uint8Array };
-  if (!wire || !wire.buffer) return new Float64Array(0);
-  const view = wire.buffer;
-  const Kind = kinds[wire.dtype];
-  return new Kind(view.buffer, view.byteOffset, view.byteLength / Kind.BYTES_PER_ELEMENT);
-}
-
-function node(tag, attrs = {}, parent = null, ns = null) {
-  const el = ns ? document.createElementNS(ns, tag) : document.createElement(tag);
-  for (const [k, v] of Object.entries(attrs)) el.setAttribute(k, String(v));
-  if (parent) parent.appendChild(el);
-  return el;
-}
 
 // The kernel sends each axis: its domain (shares padded a little, within [0, 1]) and round
 // 1-2-5 ticks with their labels, from the same helper as the explorer's charts.
@@ -48,27 +31,13 @@ function buildControls(model, root) {
   const bar = node("div", { class: "jostle-sweep-bar" }, root);
   const methods = node("fieldset", { "data-testid": "sweep-method-filter", class: "jostle-sweep-methods" }, bar);
   node("legend", {}, methods).textContent = "methods";
-  const pick = (label, testid) => {
-    const wrap = node("label", {}, bar);
-    wrap.appendChild(document.createTextNode(label + " "));
-    return node("select", { "data-testid": testid }, wrap);
-  };
-  const budget = pick("budget eps", "sweep-budget-select");
-  const attack = pick("attack", "sweep-attack-select");
-  const measure = pick("robustness", "sweep-measure-select");
+  const budget = pick(bar, "budget eps", "sweep-budget-select");
+  const attack = pick(bar, "attack", "sweep-attack-select");
+  const measure = pick(bar, "robustness", "sweep-measure-select");
   budget.addEventListener("change", () => { model.set("budget", Number(budget.value)); model.save_changes(); });
   attack.addEventListener("change", () => { model.set("attack", attack.value); model.save_changes(); });
   measure.addEventListener("change", () => { model.set("measure", measure.value); model.save_changes(); });
   return { methods, budget, attack, measure };
-}
-
-function fillSelect(select, options, current, labels = null) {
-  select.replaceChildren();
-  options.forEach((value, i) => {
-    const opt = node("option", { value }, select);
-    opt.textContent = labels ? labels[i] : String(value);
-    if (String(value) === String(current)) opt.selected = true;
-  });
 }
 
 function fillMethods(model, fieldset) {
@@ -90,8 +59,8 @@ function fillMethods(model, fieldset) {
 
 function drawChart(model, svg, tooltip) {
   svg.replaceChildren();
-  const x = unpack(model.get("accuracy")), y = unpack(model.get("value"));
-  const family = unpack(model.get("family")), keys = model.get("point_keys");
+  const x = typed(model.get("accuracy")), y = typed(model.get("value"));
+  const family = typed(model.get("family")), keys = model.get("point_keys");
   const notes = model.get("point_notes"), selected = model.get("selected_key");
   const xAxis = axisOf(model, "x_axis"), yAxis = axisOf(model, "y_axis");
   const [x0, x1] = [xAxis.low, xAxis.high], [y0, y1] = [yAxis.low, yAxis.high];

@@ -4,7 +4,7 @@ from __future__ import annotations
 import anywidget
 import traitlets as t
 
-from ._assets import asset_path, read_asset
+from ._assets import canvas_module, read_asset
 from ._wire import empty_wire
 
 
@@ -17,7 +17,7 @@ class LimitChart(anywidget.AnyWidget):
     the accepted value and fills the cells.
     """
 
-    _esm = asset_path("limit_chart.js")
+    _esm = canvas_module("limit_chart.js", "_chart_helpers.js")
     _css = read_asset("theme.css") + "\n" + read_asset("limit_chart.css")
 
     method_options = t.List(t.Unicode(), [], help="posterior methods with a gradient read-out").tag(sync=True)

@@ -4,7 +4,7 @@ from __future__ import annotations
 import anywidget
 import traitlets as t
 
-from ._assets import asset_path, read_asset
+from ._assets import canvas_module, read_asset
 from ._wire import empty_wire
 
 
@@ -15,7 +15,7 @@ class SweepChart(anywidget.AnyWidget):
     back the accepted value; it also fills the point arrays and the correlation rows.
     """
 
-    _esm = asset_path("sweep_chart.js")
+    _esm = canvas_module("sweep_chart.js", "_chart_helpers.js")
     _css = read_asset("theme.css") + "\n" + read_asset("sweep_chart.css")
 
     accuracy = t.Dict(empty_wire(dtype="float64"), help="x of each mark: test accuracy (binary float64)").tag(sync=True)
