@@ -106,8 +106,9 @@ def activation_sizes(template: nn.Module, shape: tuple[int, ...]) -> list[int]:
 def conv_forward(steps: list[tuple], params: dict[str, Tensor], x: Tensor, shape: tuple[int, int, int],
                  per_member: bool = False, channels_last: bool = True) -> Tensor:
     """Logits [s, n, C] of ``s`` members (module docstring); ``x`` is [n, ...] shared, or with
-    ``per_member`` [s, n, ...]. ``channels_last`` lays the images out NHWC, which the CPU
-    convolution kernels run several times faster on (measured, benchmarks/bench_cnn.py)."""
+    ``per_member`` [s, n, ...]. ``channels_last`` lays the images out NHWC after every
+    convolution, which the CPU pooling and convolution kernels run several times faster on
+    (measured, :mod:`jostle.posterior.forward`)."""
     members = int(next(iter(params.values())).shape[0])
     if per_member:
         n = x.shape[1]

@@ -293,13 +293,15 @@ class GeneralPlan(ForwardPlan):
 # The size rule of ConvPlan, measured for the default jostle.cnn on 28x28 images on a 2-core
 # CPU shared with other jobs (side by side in one process, medians of interleaved repeats;
 # benchmarks/bench_cnn.py). Up to GROUPED_POINTS points, GROUPED_MEMBERS members side by
-# side as channel blocks: S = 20, N = 1 took 2.3 ms against 3.7 ms for a per-member loop
-# (one thread); S = 100, N = 1: 22 ms against 109 ms (two threads). Above it, one member
-# per block over BLOCK_POINTS images, which keeps a block's activations near the caches:
-# S = 20, N = 1,000 took 1,700 ms against 3,421 ms for the loop over whole batches, and
-# 1,770 ms with blocks of 5 members x 64 images; S = 100, N = 100: 790 ms against 855 ms
-# (5 x 64: 1,256 ms; 20 x 16: 1,484 ms), one thread. Channels-last layout measured the
-# same within noise (1,688 against 1,702 ms).
+# side as channel blocks: S = 100, N = 1 took 2.3 ms against 9.7 ms one member at a time
+# and 12 ms for a per-member loop; at N = 16 grouped convolutions still won (26 against
+# 38 ms) but they grow faster than N (a grouped convolution over 16 images took 37x one
+# image's time). Above it, one member per block over BLOCK_POINTS images, which keeps a
+# block's activations near the caches: S = 20, N = 1,000 took 426 ms against 2,131 ms for
+# the loop over whole batches; blocks of 64 images beat 16, 32 and 128 (38 against 41-50 ms
+# at N = 100, two threads). Every convolution's output is kept channels-last: a one-channel
+# input's convolution comes back NCHW, where 2x2 max pooling measured ~10x slower than on
+# the same values channels-last (1.7 against 0.15 ms for 32 images of 16 x 28 x 28).
 GROUPED_POINTS = 16
 GROUPED_MEMBERS = 20
 BLOCK_MEMBERS = 1
