@@ -65,8 +65,9 @@ function render({ model, el }) {
     revision += 1;
     root.dataset.revision = String(revision);
     root.dataset.maxAbs = String(model.get("max_abs"));
+    root.dataset.viewRevision = String(model.get("view_revision"));
   };
-  const events = "change:original change:perturbation change:attacked change:value_range change:scale change:captions change:max_abs";
+  const events = "change:view_revision change:original change:perturbation change:attacked change:value_range change:scale change:captions change:max_abs";
   model.on(events, draw);
   const attached = new ResizeObserver(() => draw());
   attached.observe(root);
