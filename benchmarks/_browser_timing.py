@@ -38,7 +38,7 @@ __all__ = ["CHROMIUM", "arm", "lab_page", "slider_grid", "time_actions"]
 
 # Start the clock at the input event itself (capture phase, before the widget's handler).
 _ARM_JS = """(targets) => {
-  const start = () => { window.__jostleStarted = performance.now(); window.__jostleBusySeen = 0; };
+  const start = () => { window.__jostleStarted = performance.now(); };
   for (const [selector, event] of targets) {
     const el = document.querySelector(selector);
     if (!el) throw new Error(`no element ${selector} to time`);
@@ -50,13 +50,10 @@ _ARM_JS = """(targets) => {
 # `view` is a JavaScript expression giving the snapshot now; polled every animation frame.
 _DONE_TEMPLATE = """([before, fields]) => {
   const now = (%s);
-  if (now.status === 'busy' && !window.__jostleBusySeen) window.__jostleBusySeen = performance.now();
   if (!(now.viewRevision > before.viewRevision && now.status === 'idle')) return false;
   for (const f of fields) { if (now[f] === before[f]) return false; }
   const kernel = /updated in (\\d+) ms/.exec(now.statusText);
-  const started = window.__jostleStarted;
-  return {ms: performance.now() - started, kernelMs: kernel ? Number(kernel[1]) : null,
-          busyMs: window.__jostleBusySeen ? window.__jostleBusySeen - started : null};
+  return {ms: performance.now() - window.__jostleStarted, kernelMs: kernel ? Number(kernel[1]) : null};
 }"""
 
 
@@ -113,8 +110,7 @@ def slider_grid(page, testid: str, count: int, start: int = 6, stride: int = 2,
 def time_actions(page, act: Callable[[], None], before: Callable[[], dict], view_js: str, fields: list[str],
                  repeats: int, warmup: int = 2, timeout: float = 60, describe: str | None = None) -> list[dict]:
     """Run ``act`` ``warmup + repeats`` times; for each timed one, a dict of ``ms`` (input event to
-    the first frame where the view is done), ``kernelMs`` (from the status line, or None) and
-    ``busyMs`` (input event to the first frame showing the status busy, or None if no frame did).
+    the first frame where the view is done) and ``kernelMs`` (from the status line, or None).
 
     ``before()`` is the snapshot taken before each action, ``view_js`` the JavaScript expression
     giving the snapshot now (both with ``viewRevision``, ``status`` and ``statusText``).
