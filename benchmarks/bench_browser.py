@@ -16,30 +16,10 @@ status line), measured in the same run: their ratio is the cost of the wire and 
 """
 from __future__ import annotations
 
-import secrets
-import sys
-import tempfile
-from pathlib import Path
+from _browser_timing import CHROMIUM, arm, lab_page, slider_grid, time_actions  # puts the repository on sys.path
+from _timing import median, percentile
 
-REPO = Path(__file__).resolve().parents[1]
-sys.path.insert(0, str(REPO))
-
-from _timing import median, percentile  # noqa: E402
-
-from tests.browser.explorer_page import DESCRIBE_JS, click_map, set_range, snapshot, wait_for_explorer  # noqa: E402
-from tests.browser.harness import (  # noqa: E402
-    CHROMIUM,
-    CHROMIUM_ARGS,
-    PageErrors,
-    free_port,
-    jupyter_environment,
-    lab_command,
-    open_and_run,
-    start_server,
-    wait_until,
-    write_lab_settings,
-    write_notebook,
-)
+from tests.browser.explorer_page import DESCRIBE_JS, click_map, set_range, snapshot, wait_for_explorer
 
 MEMBERS = 100
 REPEATS = 15
@@ -55,31 +35,12 @@ explorer = Explorer(ens, data, grid=64, steps=40, method="pgd", budget=0.1)
 explorer''',
 ]
 
-# Start the clock at the input event itself (capture phase, before the widget's handler).
-_ARM_JS = """() => {
-  const start = () => { window.__jostleStarted = performance.now(); };
-  document.querySelector('[data-testid=explorer-map]').addEventListener('pointerdown', start, true);
-  for (const id of ['budget-slider', 'samples-slider']) {
-    document.querySelector(`[data-testid=${id}]`).addEventListener('input', start, true);
-  }
-  return true;
-}"""
-
-_DONE_JS = """([before, fields]) => {
-  const now = window.__jostleSnapshot(null, false);
-  if (!(now.viewRevision > before.viewRevision && now.status === 'idle')) return false;
-  for (const f of fields) { if (now[f] === before[f]) return false; }
-  const kernel = /updated in (\\d+) ms/.exec(now.statusText);
-  return {ms: performance.now() - window.__jostleStarted, kernelMs: kernel ? Number(kernel[1]) : null};
-}"""
-
 
 def main() -> None:
     if not CHROMIUM.is_file():
         print(f"skipped: headless Chromium is not installed at {CHROMIUM}")
         return
-    with tempfile.TemporaryDirectory(prefix="jostle-bench-browser-") as base:
-        rows = _measure(Path(base))
+    rows = _measure()
     print(f"S = {MEMBERS}, PGD 40 steps, 64x64 grid; {REPEATS} timed actions each, in JupyterLab + Chromium")
     print(f"{'action':34s} {'median ms':>9s} {'p95 ms':>8s} {'kernel ms':>9s} {'browser/kernel':>14s} {'target':>8s}")
     for name, browser, kernel in rows:
@@ -90,43 +51,23 @@ def main() -> None:
               f"{median(kernel) if kernel else float('nan'):9.0f} {ratio:14.2f} {verdict:>8s}")
 
 
-def _measure(base: Path) -> list[tuple[str, list[float], list[float]]]:
-    from playwright.sync_api import sync_playwright
-
-    root, settings, workspaces = base / "root", base / "settings", base / "workspaces"
-    for folder in (root, workspaces):
-        folder.mkdir()
-    write_lab_settings(settings)
-    write_notebook(root / "bench.ipynb", NOTEBOOK)
-    port, token = free_port(), secrets.token_hex(16)
-    url = f"http://127.0.0.1:{port}"
-    lab = start_server("JupyterLab", lab_command(port, token, root, settings, workspaces), cwd=root,
-                       env=jupyter_environment(base), log_path=base / "lab.log",
-                       ready_url=f"{url}/api/status?token={token}", url=url, token=token, root=root)
-    try:
-        with sync_playwright() as playwright:
-            browser = playwright.chromium.launch(executable_path=str(CHROMIUM), args=CHROMIUM_ARGS)
-            try:
-                page = browser.new_page(viewport={"width": 1400, "height": 1100})
-                errors = PageErrors(page)
-                open_and_run(page, lab, "bench.ipynb", timeout=300)
-                wait_for_explorer(page, timeout=120)
-                page.evaluate(_ARM_JS)
-                rows = [(name, *_time(page, act, fields)) for name, act, fields in _actions(page)]
-                errors.check()
-            finally:
-                browser.close()
-    finally:
-        lab.stop()
+def _measure() -> list[tuple[str, list[float], list[float]]]:
+    rows = []
+    with lab_page(NOTEBOOK) as page:
+        wait_for_explorer(page, timeout=120)
+        arm(page, [("[data-testid=explorer-map]", "pointerdown"), ("[data-testid=budget-slider]", "input"),
+                   ("[data-testid=samples-slider]", "input")])
+        for name, act, fields in _actions(page):
+            timed = time_actions(page, act, lambda: snapshot(page), "window.__jostleSnapshot(null, false)", fields,
+                                 repeats=REPEATS, describe=DESCRIBE_JS)
+            rows.append((name, [d["ms"] for d in timed], [d["kernelMs"] for d in timed if d["kernelMs"] is not None]))
     return rows
 
 
 def _actions(page):
     # Distinct values each time: a revisited value would be served from the view cache.
     points = [((k * 0.6180339) % 0.8 + 0.1, (k * 0.4142135) % 0.8 + 0.1) for k in range(1, REPEATS + 3)]
-    # Budgets on the slider's own step grid, so the range input does not snap two to one value.
-    step = float(page.get_by_test_id("budget-slider").first.get_attribute("step"))
-    budgets = iter([round(step * (6 + 2 * k), 6) for k in range(REPEATS + 2)])
+    budgets = iter(slider_grid(page, "budget-slider", REPEATS + 2))
     samples = iter(range(MEMBERS - 1, MEMBERS - REPEATS - 4, -1))
     clicks = iter(points)
     return [
@@ -136,20 +77,6 @@ def _actions(page):
         ("samples -> background redrawn", lambda: set_range(page, "samples-slider", next(samples)),
          ["samples", "layerRevision"]),
     ]
-
-
-def _time(page, act, fields, warmup: int = 2) -> tuple[list[float], list[float]]:
-    browser_ms, kernel_ms = [], []
-    for k in range(warmup + REPEATS):
-        before = snapshot(page)
-        act()
-        done = wait_until(page, _DONE_JS, arg=[before, fields], polling="raf", timeout=60,
-                          what=f"the view after action {k} (waiting for {fields})", describe=DESCRIBE_JS)
-        if k >= warmup:
-            browser_ms.append(done["ms"])
-            if done["kernelMs"] is not None:
-                kernel_ms.append(done["kernelMs"])
-    return browser_ms, kernel_ms
 
 
 if __name__ == "__main__":

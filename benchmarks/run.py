@@ -18,6 +18,7 @@ BENCHMARKS = [
     "bench_sweep",
     "bench_widgets",
     "bench_browser",
+    "bench_image_browser",
     "bench_gradient_readout",
     "bench_sgmcmc",
     "bench_certify",

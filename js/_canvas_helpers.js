@@ -28,6 +28,17 @@ function rgb(colour) {
   return parts.length >= 3 ? parts.slice(0, 3).map(Number) : [136, 136, 136];
 }
 
+/** `draw` run once after the current task's change events: a kernel message that sets several traits
+ *  fires one change event per trait, synchronously, and the view is painted once, not once per trait. */
+function oncePerMessage(draw) {
+  let queued = false;
+  return () => {
+    if (queued) return;
+    queued = true;
+    queueMicrotask(() => { queued = false; draw(); });
+  };
+}
+
 /** Call `repaint` whenever JupyterLab switches its theme: the theme manager marks <body> with the
  *  theme's name once its CSS is in, and canvas colours are read at paint time. Returns the disconnect. */
 function onThemeChange(repaint) {

@@ -1,5 +1,5 @@
 // jostle image panels: the chosen image, the perturbation on a diverging scale, the attacked image.
-// typed() and rgb() come from _canvas_helpers.js, served ahead of this module.
+// typed(), rgb() and oncePerMessage() come from _canvas_helpers.js, served ahead of this module.
 
 /**
  * (H, W) is drawn with `colour`; (3, H, W) as RGB (`rgbOf` maps a value to 0..255), or with
@@ -65,14 +65,16 @@ function render({ model, el }) {
     revision += 1;
     root.dataset.revision = String(revision);
     root.dataset.maxAbs = String(model.get("max_abs"));
+    root.dataset.viewRevision = String(model.get("view_revision"));
   };
-  const events = "change:original change:perturbation change:attacked change:value_range change:scale change:captions change:max_abs";
-  model.on(events, draw);
+  const events = "change:view_revision change:original change:perturbation change:attacked change:value_range change:scale change:captions change:max_abs";
+  const redraw = oncePerMessage(draw); // one paint per kernel message, which sets up to seven of these
+  model.on(events, redraw);
   const attached = new ResizeObserver(() => draw());
   attached.observe(root);
   const offTheme = onThemeChange(draw);
   draw();
-  return () => { attached.disconnect(); offTheme(); model.off(events, draw); };
+  return () => { attached.disconnect(); offTheme(); model.off(events, redraw); };
 }
 
 export default { render };

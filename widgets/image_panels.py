@@ -14,6 +14,7 @@ class ImagePanels(anywidget.AnyWidget):
     _esm = canvas_module("image_panels.js")
     _css = asset_path("theme.css")
 
+    view_revision = t.Int(0, help="number of views the kernel has sent").tag(sync=True)
     original = t.Dict(empty_wire(None), help="the chosen image, float32 (H, W) or (3, H, W)").tag(sync=True)
     perturbation = t.Dict(empty_wire(None), help="attacked - original, (H, W) or (3, H, W)").tag(sync=True)
     attacked = t.Dict(empty_wire(None), help="the attacked image, float32 (H, W) or (3, H, W)").tag(sync=True)

@@ -7,16 +7,11 @@ from __future__ import annotations
 
 import pytest
 
-from .harness import (
-    lab_notebook,
-    screenshot,
-    wait_for,
-    wait_until,
-)
+from .harness import lab_notebook, screenshot, wait_for, wait_until
+from .image_page import IMAGES, PANELS_JS, panels
 
 pytestmark = [pytest.mark.browser, pytest.mark.slow]
 
-IMAGES = ".jostle-image-explorer"
 COMPARISON = ".jostle-comparison"
 MARKUP_LABEL = "<b>first</b> posterior"
 CELLS = [
@@ -37,25 +32,6 @@ comparison = Comparison([random_ensemble(2, 2, 4, seed=2), random_ensemble(2, 2,
 comparison''',
 ]
 
-_PANELS_JS = """(scope) => {
-  const root = document.querySelector(scope);
-  if (!root) return null;
-  const get = (id) => root.querySelector(`[data-testid="${id}"]`);
-  const panels = get('image-panels-root'), strip = get('image-strip'), status = get('status-line');
-  const original = get('image-original');
-  const chart = get('predictive-chart');
-  return {
-    revision: Number(panels ? panels.dataset.revision : -1), maxAbs: panels ? Number(panels.dataset.maxAbs) : null,
-    selected: strip ? strip.dataset.selected : null, count: strip ? Number(strip.dataset.count) : 0,
-    status: status ? status.dataset.state : '', budget: (get('budget-slider') || {dataset: {}}).dataset.value,
-    original: original ? original.toDataURL() : '',
-    predictive: chart
-      ? Array.from(chart.querySelectorAll('.curve path.line')).map(p => p.getAttribute('d')).join('|')
-      : '',
-  };
-}"""
-
-
 @pytest.fixture(scope="module")
 def lab_widgets(chromium_browser, lab_server):
     with lab_notebook(chromium_browser, lab_server, "images_and_comparison.ipynb", CELLS,
@@ -63,14 +39,10 @@ def lab_widgets(chromium_browser, lab_server):
         yield opened
 
 
-def _panels(page) -> dict:
-    return page.evaluate(_PANELS_JS, IMAGES)
-
-
 def _wait_panels(page, condition: str, arg, what: str) -> dict:
-    return wait_until(page, f"""([scope, arg]) => {{ const s = ({_PANELS_JS})(scope);
+    return wait_until(page, f"""([scope, arg]) => {{ const s = ({PANELS_JS})(scope);
         return s && s.status === 'idle' && ({condition}) ? s : false; }}""", arg=[IMAGES, arg], what=what,
-                      describe=f"""([scope, arg]) => {{ const s = ({_PANELS_JS})(scope);
+                      describe=f"""([scope, arg]) => {{ const s = ({PANELS_JS})(scope);
         return {{...s, original: s.original === (arg || {{}}).original ? 'unchanged' : 'changed',
                  predictive: s.predictive === (arg || {{}}).predictive ? 'unchanged' : 'changed'}}; }}""")
 
@@ -83,8 +55,8 @@ def test_image_explorer_choosing_an_image_updates_the_panels(lab_widgets):
     assert before["selected"] == "0"
 
     page.locator(f'{IMAGES} [data-testid=image-strip-item][data-index="3"]').click()
-    after = _wait_panels(page, "s.selected === '3' && s.revision > arg.revision && s.predictive !== arg.predictive",
-                         before, "the panels for test image 3")
+    after = _wait_panels(page, "s.selected === '3' && s.revision > arg.revision && s.predictive !== arg.predictive"
+                               " && s.viewRevision > arg.viewRevision", before, "the panels for test image 3")
     # PGD iterates stay inside the L-inf ball of radius eps (Madry et al. 2018).
     assert 0 < after["maxAbs"] <= float(after["budget"]) + 1e-6
     screenshot(page.locator(IMAGES).first, "image-explorer-lab")
@@ -135,7 +107,7 @@ def test_original_panel_draws_the_chosen_image(lab_widgets):
     import jostle
 
     page, errors = lab_widgets
-    index = int(_panels(page)["selected"])
+    index = int(panels(page)["selected"])
     image = jostle.datasets.digits(seed=0).x_test[index].numpy()
     luminance = page.locator(f"{IMAGES} [data-testid=image-original]").evaluate("""canvas => {
         const data = canvas.getContext('2d').getImageData(0, 0, canvas.width, canvas.height).data;

@@ -144,6 +144,30 @@ def test_image_explorer_counts_members_certified_at_the_budget():
         ex.close()
 
 
+def test_image_explorer_certificate_ibp_off_and_refused():
+    digits = jostle.datasets.digits(seed=0)
+    ens = tiny_ensemble(members=4, in_features=64, classes=10, hidden=(8,), class_names=digits.classes)
+    ex = ImageExplorer(ens, digits, strip=3, steps=4, budget=0.02, certificate="ibp")
+    try:
+        assert ex.wait(120)
+        shown = ex.result.budget_certificate
+        x = digits.x_test[:1].to(ens.dtype)
+        cert = jostle.certify(ens, x, eps=0.02, method="ibp", bounds=_box(digits, ens.dtype))
+        assert shown.method == "ibp" and shown.certified == int(cert.members[:, 0].sum())  # integer count
+        assert "IBP" in ex._certified_text.value
+    finally:
+        ex.close()
+    ex = ImageExplorer(ens, digits, strip=3, steps=4, certificate="off")
+    try:
+        assert ex.wait(120)
+        assert ex.result.budget_certificate is None and ex._certified_text.value == "certificate: off"
+        assert "budget_certificate" not in ex.result.recomputed
+    finally:
+        ex.close()
+    with pytest.raises(ValueError, match=r"certificate must be one of .*crown.*; got 'exact'"):
+        ImageExplorer(ens, digits, strip=3, certificate="exact")
+
+
 def test_comparison_shows_both_radii_per_posterior(moons):
     first, second = tiny_ensemble(members=3, seed=1), tiny_ensemble(members=1, seed=2)
     comparison = Comparison([first, second], moons, steps=4, grid=4, boundaries=0)

@@ -52,6 +52,15 @@ def test_image_explorer_bad_index_and_budget_reach_the_status(image_explorer):
     assert ex.wait(60) and ex.status[0] == "idle" and ex.result.state.budget == 0.2
 
 
+def test_panels_view_revision_counts_the_views_sent(image_explorer):
+    ex = image_explorer
+    assert ex._panels.view_revision == ex.worker.runs == 1  # one view so far: the first
+    for k, budget in enumerate((0.15, 0.2), start=2):
+        ex.budget = budget
+        assert ex.wait(60)
+        assert ex._panels.view_revision == k and ex.result.state.budget == budget
+
+
 def test_image_explorer_refuses_data_without_images(moons, ens):
     refusal = r"data must have an image_shape \(H, W\), \(1, H, W\) or \(3, H, W\) for ImageExplorer; got None"
     with pytest.raises(ValueError, match=refusal):
