@@ -180,10 +180,28 @@ class LiveBox(w.VBox):
             self._syncing = False
 
     # ---------------------------------------------------------------- worker thread
+    #: draw each view before its certified read-out, then the read-out (the image explorer)
+    _panels_first = False
+    #: the view being drawn early, while its certified read-out is computed (else None)
+    _early = None
+    _running = 0
+
     def _compute(self, state: live.ExplorerState) -> live.ViewData:
-        return live.compute_view(self._ens, state, bounds=self._bounds, cache=self._cache)
+        early = self._show_early if self._panels_first else None
+        return live.compute_view(self._ens, state, bounds=self._bounds, cache=self._cache, on_panels=early)
+
+    def _show_early(self, view: live.ViewData) -> None:
+        """Worker thread: draw ``view`` (its certified read-out still to come) and say so."""
+        with self._view_lock:
+            self._early = view
+            try:
+                self._apply(view)
+            finally:
+                self._early = None
+        self._show_status(self._running, "busy", "computing the certificate")
 
     def _started(self, generation: int, state: live.ExplorerState) -> None:
+        self._running = generation
         changed = _changed(self._last_state, state)
         message = f"computing after a change of {changed}" if changed else "computing the view"
         self._show_status(generation, "busy", message)

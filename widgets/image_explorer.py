@@ -10,6 +10,8 @@ import traitlets as t
 import jostle.live.engine as live
 from jostle.common.checks import check_int
 from jostle.live.certified_parts import CAUTION as CERTIFICATE_CAUTION
+from jostle.live.certified_parts import default_certificate
+from jostle.posterior.ensemble import Ensemble
 
 from . import _charts
 from ._gradient_strip_part import GradientStripPart
@@ -35,10 +37,12 @@ class ImageExplorer(GradientStripPart, LiveBox):
     strip : int
         How many test images the strip shows.
     certificate : str
-        Bound method of the members-certified-at-the-budget read-out: ``crown`` (tightest),
-        ``ibp`` (looser, much cheaper on convolutional networks) or ``off``. It is recomputed
-        at every budget, before the panels are sent: CROWN on ``jostle.cnn((1, 28, 28), 10)``
-        took about 20 s per member on 2 cores (``benchmarks/bench_image_browser.py``).
+        Bound method of the members-certified-at-the-budget read-out: ``auto`` (the default:
+        ``crown`` for networks without convolutions, ``ibp`` for convolutional ones, see
+        :func:`jostle.live.certified_parts.default_certificate`), ``crown`` (tightest), ``ibp``
+        (looser, much cheaper on convolutional networks) or ``off``. It is recomputed at every
+        budget after the panels and charts are drawn (the line says "computing" meanwhile):
+        CROWN on ``jostle.cnn((1, 28, 28), 10)`` took about 20 s per member on 2 cores.
     """
 
     index = t.Int(0, help="position in the strip of the chosen test image").tag(sync=True)
@@ -48,7 +52,7 @@ class ImageExplorer(GradientStripPart, LiveBox):
 
     def __init__(self, ens: Any, data: Any, index: int = 0, budget: float = 0.1, samples: int | None = None,
                  method: str = "pgd", norm: str = "inf", steps: int = 40, objective: str = "expected_loss",
-                 strip: int = 24, seed: int = 0, certificate: str = "crown", **kwargs: Any):
+                 strip: int = 24, seed: int = 0, certificate: str = "auto", **kwargs: Any):
         shape = _image_shape(data.image_shape)
         count = check_int("strip", strip, low=1)
         self._images = data.x_test[: min(count, data.x_test.shape[0])].numpy().astype(np.float64)
@@ -59,10 +63,16 @@ class ImageExplorer(GradientStripPart, LiveBox):
         self._classes = [str(c) for c in data.classes]
         index = check_int("index", index, low=0, high=self._images.shape[0] - 1)
         budget_max = round(0.5 * (self._value_range[1] - self._value_range[0]), 3)
+        if certificate == "auto" and isinstance(ens, Ensemble):
+            certificate = default_certificate(ens)
         self._setup_live(ens, {"budget": budget, "samples": samples, "method": method, "norm": norm, "steps": steps,
                                "objective": objective, "seed": seed, "certificate": certificate},
                          budget_max=budget_max)
-        self._fixed = {"grid": 0, "boundaries": 0, "seed": seed, "radius": False, "certificate": certificate}
+        # no path chart here, so no predictive along the attack path
+        self._fixed = {"grid": 0, "boundaries": 0, "seed": seed, "radius": False, "certificate": certificate,
+                       "path_probs": False}
+        self._panels_first = True
+        self._drawn = None
         truth = data.y_test[: self._images.shape[0]].tolist()
         self._strip = ImageStrip(images=to_wire(self._images.reshape((-1,) + self._shape)),
                                  captions=[f"test image {k}: class {self._classes[y]}" for k, y in enumerate(truth)],
@@ -143,6 +153,21 @@ class ImageExplorer(GradientStripPart, LiveBox):
                                   objective=self.objective, **self._fixed)
 
     def _apply(self, view: live.ViewData) -> None:
+        drawn = (view.state, id(view.attack), id(view.before), self.perturbation_view)
+        if drawn != self._drawn:  # else the same view with its certificate, drawn already
+            self._draw(view)
+            self._drawn = drawn
+        certificate = view.budget_certificate
+        if certificate is not None:
+            self._certified_text.value = certificate.words
+        elif view.state.certificate == "off":
+            self._certified_text.value = "certificate: off"
+        elif view is self._early:
+            self._certified_text.value = "certificate: computing"
+        else:
+            self._certified_text.value = "certificate: unavailable for this network (see the status line)"
+
+    def _draw(self, view: live.ViewData) -> None:
         original = np.asarray(view.state.point).reshape(self._shape)
         names = view.classes
         first = f"original: {names[view.label]} ({view.before.probs[view.label]:.2f})"
@@ -163,13 +188,6 @@ class ImageExplorer(GradientStripPart, LiveBox):
                 verdict = "flipped" if view.attack.success else "held"
                 self._panels.captions = [first, f"perturbation (max |delta| {np.abs(delta).max():.3f})",
                                          f"attacked: {names[top]} ({view.after.probs[top]:.2f}), {verdict}"]
-        certificate = view.budget_certificate
-        if certificate is not None:
-            self._certified_text.value = certificate.words
-        elif view.state.certificate == "off":
-            self._certified_text.value = "certificate: off"
-        else:
-            self._certified_text.value = "certificate: unavailable for this network (see the status line)"
         self._draw_predictive(view)
         self._draw_fade(view)
 

@@ -19,9 +19,19 @@ from jostle.certify.certificate import CAUTION, certified_radius, certify
 from jostle.posterior.ensemble import Ensemble
 
 __all__ = ["RadiusView", "BudgetCertificateView", "radius_part", "budget_certificate_part", "radius_words",
-           "budget_words", "CAUTION", "RADIUS_ITERATIONS"]
+           "budget_words", "CAUTION", "RADIUS_ITERATIONS", "default_certificate"]
 
 RADIUS_ITERATIONS = 20
+
+
+def default_certificate(ens: Ensemble) -> str:
+    """The bound method a live view uses unless told: ``crown`` (the tightest) for networks
+    without convolutions, ``ibp`` for convolutional ones, where CROWN's back-substitution
+    through every pixel's feature map took about 20 s per member of ``jostle.cnn((1, 28, 28),
+    10)`` on 2 cores against 1.5-2.3 ms per member for IBP
+    (``benchmarks/bench_image_browser.py``): too slow to follow a budget slider."""
+    convolutional = any(isinstance(layer, torch.nn.Conv2d) for layer in ens.template.modules())
+    return "ibp" if convolutional else "crown"
 
 
 @dataclass

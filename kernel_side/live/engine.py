@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import math
 import time
+from collections.abc import Callable
 from dataclasses import dataclass, field, replace
 from typing import Any
 
@@ -86,6 +87,10 @@ class ExplorerState:
     radius : bool
         Compute the certified radius and the attack's flip budget at ``point`` (kept per point,
         norm and samples); False computes the certificate at the current budget instead.
+    path_probs : bool
+        Compute the whole ensemble's probability of the label at every step of the attack path
+        (the 2-D explorer's path chart); False leaves ``AttackView.label_prob`` NaN and saves
+        one prediction of ``steps + 1`` inputs per attack.
     """
 
     point: tuple[float, ...]
@@ -102,6 +107,7 @@ class ExplorerState:
     fade_repeats: int = 16
     certificate: str = "off"
     radius: bool = True
+    path_probs: bool = True
 
 
 @dataclass
@@ -193,7 +199,8 @@ class ViewCache:
         self._tables.clear()
 
 
-def compute_view(ens: Ensemble, state: ExplorerState, bounds: Any = None, cache: ViewCache | None = None) -> ViewData:
+def compute_view(ens: Ensemble, state: ExplorerState, bounds: Any = None, cache: ViewCache | None = None,
+                 on_panels: Callable[[ViewData], None] | None = None) -> ViewData:
     """Compute every panel's data for ``state``.
 
     Parameters
@@ -205,6 +212,10 @@ def compute_view(ens: Ensemble, state: ExplorerState, bounds: Any = None, cache:
         point +- 1.
     cache : ViewCache, optional
         Reuse parts across calls; a fresh cache makes the call independent.
+    on_panels : callable, optional
+        Called with the view before its certified read-out (``radius`` and
+        ``budget_certificate`` still None) when the state asks for one, so a widget can draw
+        everything else first: a certificate can take longer than the attack.
 
     Returns
     -------
@@ -239,18 +250,22 @@ def compute_view(ens: Ensemble, state: ExplorerState, bounds: Any = None, cache:
     attack = after = fade = None
     try:
         attack, after = get("attack", (s.point, label, s.budget, s.samples, s.method, s.norm, s.steps,
-                                       s.objective, s.seed),
+                                       s.objective, s.seed, s.path_probs),
                             lambda: attack_part(ens, s, label))
     except ValueError as refused:  # settings the attack refuses (e.g. cw with norm inf): keep the rest
         errors.append(str(refused))
     fade = get("fade", (s.point, label, s.fade_repeats, s.seed),
                lambda: fade_part(ens, s.point, label, s.fade_repeats, s.seed))
-    radius, budget_certificate = _certified(ens, s, (lo, hi), get, notes, attack)
-    return ViewData(state=s, label=label, classes=_classes(ens, before), before=before, after=after,
+    view = ViewData(state=s, label=label, classes=_classes(ens, before), before=before, after=after,
                     attack=attack, grid=grid, fade=fade, spread=spread_part(before, after, label),
-                    radius=radius, budget_certificate=budget_certificate,
-                    recomputed=tuple(recomputed), timings=timings,
-                    notes=notes, errors=errors)
+                    recomputed=tuple(recomputed), timings=dict(timings), notes=list(notes), errors=list(errors))
+    if s.certificate == "off":
+        return view
+    if on_panels is not None:
+        on_panels(view)
+    radius, budget_certificate = _certified(ens, s, (lo, hi), get, notes, attack)
+    return replace(view, radius=radius, budget_certificate=budget_certificate, recomputed=tuple(recomputed),
+                   timings=timings, notes=notes)
 
 
 def check_field(ens: Ensemble, name: str, value: Any, n_features: int | None = None) -> Any:
@@ -275,9 +290,9 @@ def check_field(ens: Ensemble, name: str, value: Any, n_features: int | None = N
         return check_int("steps", value, low=1, high=10_000)
     if name in ("grid", "boundaries"):
         return check_int(name, value, low=0, high=512 if name == "grid" else 64)
-    if name == "radius":
+    if name in ("radius", "path_probs"):
         if not isinstance(value, bool):
-            raise ValueError(f"radius must be True or False; got {show_value(value)}")
+            raise ValueError(f"{name} must be True or False; got {show_value(value)}")
         return value
     if name in ("fade_repeats", "seed"):
         return check_int(name, value, low=1 if name == "fade_repeats" else 0)

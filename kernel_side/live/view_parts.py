@@ -61,7 +61,8 @@ class AttackView:
     """One attack from the picked input.
 
     x_adv : (n_features,); path : (steps + 1, n_features); loss, label_prob : (steps + 1,)
-    (``label_prob`` is the whole ensemble's probability of the attacked label along the path);
+    (``label_prob`` is the whole ensemble's probability of the attacked label along the path, NaN
+    where the state's ``path_probs`` is False);
     distance : size of the final perturbation in the attack's norm.
     """
 
@@ -154,11 +155,14 @@ def attack_part(ens: Ensemble, state: Any, label: int) -> tuple[AttackView, Poin
                  steps=state.steps, samples=state.samples, objective=state.objective, seed=state.seed)
     path = _numpy(adv.path)[:, 0, :]
     x_adv = _numpy(adv.x_adv)[0]
-    along = ens.predict(torch.as_tensor(path, dtype=ens.dtype)).probs[:, label]
+    if state.path_probs:
+        along = ens.predict(torch.as_tensor(path, dtype=ens.dtype)).probs[:, label].numpy()
+    else:
+        along = np.full(path.shape[0], np.nan)
     delta = x_adv - np.asarray(state.point, dtype=x_adv.dtype)
     distance = float(np.abs(delta).max() if state.norm == "inf" else np.linalg.norm(delta))
     view = AttackView(x_adv=x_adv, path=path.astype(np.float32), loss=_numpy(adv.loss)[:, 0].astype(np.float32),
-                      label_prob=along.numpy().astype(np.float32), success=bool(_numpy(adv.success)[0]),
+                      label_prob=along.astype(np.float32), success=bool(_numpy(adv.success)[0]),
                       distance=distance)
     return view, point_part(ens, x_adv)
 

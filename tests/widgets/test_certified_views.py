@@ -7,6 +7,7 @@ posterior-mass figure is a one-sided Clopper-Pearson bound (Clopper & Pearson 19
 from __future__ import annotations
 
 import math
+from dataclasses import replace
 
 import numpy as np
 import pytest
@@ -207,4 +208,33 @@ def test_budget_and_point_changes_do_not_wait_for_the_radius_layer(ens, moons, m
         assert ex.wait(120) and ex.radius_map.radius.shape == (8, 8)
     finally:
         release.set()
+        ex.close()
+
+
+def test_image_explorer_picks_ibp_for_convolutional_networks_and_draws_the_panels_first():
+    from jostle.live.certified_parts import default_certificate
+
+    cards = jostle.datasets.meter_cards(resolution=12)
+    g = torch.Generator().manual_seed(0)
+    cnn = jostle.Ensemble.from_modules([jostle.init_parameters(jostle.cnn(cards.image_shape, 10, channels=(2,)), g)
+                                        for _ in range(3)])
+    assert default_certificate(cnn) == "ibp"
+    assert default_certificate(tiny_ensemble(members=2, in_features=4, classes=3, hidden=(4,))) == "crown"
+    ex = ImageExplorer(cnn, cards, strip=2, steps=3, budget=0.02)
+    try:
+        assert ex.wait(120)
+        final = ex.result
+        x = cards.x_test[:1].to(cnn.dtype)
+        cert = jostle.certify(cnn, x, eps=0.02, method="ibp", bounds=_box(cards, cnn.dtype))
+        assert final.budget_certificate.method == "ibp"
+        assert final.budget_certificate.certified == int(cert.members[:, 0].sum())  # integer count
+        assert np.isnan(final.attack.label_prob).all()  # no path chart here: no path predictive
+        # the view drawn early says the certificate is coming; the full view then adds only the words
+        revision = ex._panels.view_revision
+        early = replace(final, budget_certificate=None)
+        ex._show_early(early)
+        assert ex._certified_text.value == "certificate: computing" and ex._panels.view_revision == revision
+        ex._apply(final)
+        assert ex._certified_text.value == final.budget_certificate.words and ex._panels.view_revision == revision
+    finally:
         ex.close()

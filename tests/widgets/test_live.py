@@ -165,3 +165,29 @@ def test_the_live_engine_imports_no_widget_library():
             "sys.exit(1 if bad else 0)")
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
     assert done.returncode == 0, done.stdout + done.stderr
+
+
+def test_attack_panel_without_the_path_predictive_is_the_same_attack(ens, state):
+    full = live.compute_view(ens, state, bounds=BOUNDS)
+    lean = live.compute_view(ens, replace(state, path_probs=False), bounds=BOUNDS)
+    # the same seeded attack on the same inputs in one process: the same arithmetic, bit for bit
+    np.testing.assert_array_equal(lean.attack.x_adv, full.attack.x_adv)
+    np.testing.assert_array_equal(lean.attack.loss, full.attack.loss)
+    assert np.isnan(lean.attack.label_prob).all() and lean.attack.label_prob.shape == full.attack.label_prob.shape
+    with pytest.raises(ValueError, match="path_probs must be True or False; got 1"):
+        live.check_field(ens, "path_probs", 1)
+
+
+def test_the_certified_read_out_comes_after_the_rest_of_the_view(ens, state):
+    seen = []
+    view = live.compute_view(ens, replace(state, certificate="ibp", radius=False), bounds=BOUNDS,
+                             on_panels=seen.append)
+    assert len(seen) == 1 and seen[0].budget_certificate is None and seen[0].attack is view.attack
+    x = torch.tensor([state.point])
+    cert = jostle.certify(ens[: state.samples], x, eps=state.budget, method="ibp",
+                          bounds=tuple(torch.tensor(b, dtype=ens.dtype) for b in BOUNDS))
+    assert view.budget_certificate.certified == int(cert.members[:, 0].sum())  # integer count
+    assert "budget_certificate" in view.recomputed and "budget_certificate" not in seen[0].recomputed
+    seen.clear()
+    live.compute_view(ens, replace(state, certificate="off"), bounds=BOUNDS, on_panels=seen.append)
+    assert seen == []  # nothing to wait for: the view is the whole view
