@@ -26,7 +26,7 @@ NOTEBOOK_DIR = ROOT / "demo_notebooks"
 WIDGET_MIME = "application/vnd.jupyter.widget-view+json"
 
 #: wall-time budget per notebook in seconds; they take 20-40 s on a loaded 2-core machine
-#: (07, the convolutional one, 50-65 s: its explorer's CROWN certificate takes about 12 s),
+#: (07, the convolutional one, 40-65 s: two CNN fits, the explorer and attacks on 150 cards),
 #: and CI runs them on 2 cores, so the budget leaves room for a slower machine but would
 #: catch a notebook that grew a long fit
 BUDGET_S = 120
