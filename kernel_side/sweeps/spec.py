@@ -445,7 +445,10 @@ def _check_method(spec: Any, where: str) -> list[dict]:
     if isinstance(spec, str):
         spec = {"name": spec}
     spec = dict(_table(spec, where))
-    name = spec.pop("name", None)
+    if "name" not in spec:
+        raise SweepConfigError(f"{where}: a method table needs the key 'name' (one of {_listing(METHODS)}); "
+                               f"got the keys {', '.join(repr(k) for k in spec) or 'none'}")
+    name = spec.pop("name")
     if name not in METHODS:
         raise SweepConfigError(f"{where}: unknown method {name!r} (known: {_listing(METHODS)})")
     grid = _table(spec.pop("grid", {}), f"{where}.grid")

@@ -98,6 +98,9 @@ def test_default_attacks_are_fgsm_and_pgd():
 
 @pytest.mark.parametrize("change, message", [
     ({"methods": ["map", "vi", "mcmc"]}, r"^sweep\.methods\[2\]: unknown method 'mcmc'"),
+    ({"methods": [{"method": "map", "epochs": 5}]},
+     r"^sweep\.methods\[0\]: a method table needs the key 'name' \(one of 'map', .*\); "
+     r"got the keys 'method', 'epochs'$"),
     ({"seeds": [0, -1]}, r"^sweep\.seeds\[1\]: must be an integer >= 0; got -1"),
     ({"train_sizes": [1]}, r"^sweep\.train_sizes\[0\]: must be an integer >= 2; got 1"),
     ({"datasets": [{"name": "moons", "noise": -1.0}]},
