@@ -26,8 +26,8 @@ ACTIVATIONS: dict[str, Callable[[], nn.Module]] = {
     "softplus": nn.Softplus,
 }
 
-_BUILDERS: dict[str, Callable[..., nn.Module]] = {}
-_MAKERS: dict[str, Callable[..., nn.Module]] = {}
+# name -> (builder, its checked public function or None): the one registry of architectures
+_BUILDERS: dict[str, tuple[Callable[..., nn.Module], Callable[..., nn.Module] | None]] = {}
 _ARCH_ATTR = "_jostle_architecture"
 
 
@@ -42,19 +42,16 @@ def register_architecture(name: str, builder: Callable[..., nn.Module],
     """
     if not isinstance(name, str) or not name:
         raise ValueError(f"name must be a non-empty string; got {name!r}")
-    _BUILDERS[name] = builder
-    if maker is not None:
-        _MAKERS[name] = maker
-    else:
-        _MAKERS.pop(name, None)
+    _BUILDERS[name] = (builder, maker)
 
 
 def architecture_maker(name: str) -> Callable[..., nn.Module]:
     """The checked public function of registered architecture ``name`` (``mlp`` -> :func:`mlp`)."""
-    if name not in _MAKERS:
-        known = ", ".join(repr(n) for n in sorted(_MAKERS)) or "none"
+    makers = {n: maker for n, (_, maker) in _BUILDERS.items() if maker is not None}
+    if name not in makers:
+        known = ", ".join(repr(n) for n in sorted(makers)) or "none"
         raise ValueError(f"must name a registered builder with a checked function ({known}); got {name!r}")
-    return _MAKERS[name]
+    return makers[name]
 
 
 def build_architecture(name: str, **kwargs: Any) -> nn.Module:
@@ -62,7 +59,7 @@ def build_architecture(name: str, **kwargs: Any) -> nn.Module:
     if name not in _BUILDERS:
         known = ", ".join(sorted(_BUILDERS)) or "none"
         raise ValueError(f"architecture must be a registered builder ({known}); got {name!r}")
-    module = _BUILDERS[name](**kwargs)
+    module = _BUILDERS[name][0](**kwargs)
     setattr(module, _ARCH_ATTR, {"builder": name, "kwargs": kwargs})
     return module
 

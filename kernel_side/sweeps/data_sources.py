@@ -79,9 +79,15 @@ def content_sha256(path: str | Path) -> str:
 
 def source_of(spec: dict) -> dict:
     """The part of a run's data entry that decides the loaded data set, before the cut to ``n_train``."""
-    if "format" in spec or "n_train" not in inspect.signature(builtin_loader(spec["name"])).parameters:
+    if not _draws_points(spec):
         return {k: v for k, v in spec.items() if k != "n_train"}
     return dict(spec)
+
+
+def _draws_points(spec: dict) -> bool:
+    """Whether the entry's loader draws its ``n_train`` points itself (the toy sets), rather than
+    being made whole and cut (``digits``, ``meter_cards``, files, torch data)."""
+    return "format" not in spec and "n_train" in inspect.signature(builtin_loader(spec["name"])).parameters
 
 
 def arrays_sha256(data: Dataset) -> str:
@@ -146,7 +152,7 @@ def _load(source: dict) -> tuple[Dataset, str | None]:
 def cut(data: Dataset, spec: dict) -> Dataset:
     """The run's data set: ``data`` (the loaded source) with its first ``spec["n_train"]`` training
     points, or ``data`` itself where the loader drew them. Rows are views, not copies."""
-    if "format" not in spec and "n_train" in inspect.signature(builtin_loader(spec["name"])).parameters:
+    if _draws_points(spec):
         return data
     n_train = spec["n_train"]
     if n_train > data.x_train.shape[0]:

@@ -376,8 +376,7 @@ def test_a_builder_registered_with_its_checked_function_is_named_by_sweeps(monke
     def build(in_features, classes, bias):
         return torch.nn.Sequential(torch.nn.Linear(in_features, classes, bias=bias))
 
-    monkeypatch.setitem(architectures._BUILDERS, "linear_head", build)  # restored after the test
-    monkeypatch.setitem(architectures._MAKERS, "linear_head", checked_linear)
+    monkeypatch.setitem(architectures._BUILDERS, "linear_head", (build, checked_linear))  # restored after the test
     sweep = jostle.Sweep(datasets=["moons"], architectures=[{"builder": "linear_head"}], train_sizes=[40], **QUICK)
     assert sweep.runs()[0]["architecture"] == {"builder": "linear_head", "bias": True}
     record = execute_run(sweep.runs()[0])
