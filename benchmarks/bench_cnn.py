@@ -8,8 +8,8 @@ measured side by side in one process, candidates interleaved round after round, 
 taken (the machine's speed swings with its load). Also the strategies the forward
 engine chooses between (members side by side as channel blocks, one member at a time
 through the same pass, ``vmap``), and the peak extra memory of predict at S = 100,
-N = 10,000 in a fresh process (its resident-set high-water mark above the resident size
-before: an upper bound).
+N = 10,000 in a fresh process (the high-water mark of its resident size during the call,
+above the resident size before it).
 """
 from __future__ import annotations
 
@@ -106,17 +106,22 @@ def _loop_pgd(nets, x, y):
 
 
 _MEMORY_PROBE = """
-import resource, torch, jostle
+import os, torch, jostle
 g = torch.Generator().manual_seed(0)
 nets = [jostle.init_parameters(jostle.cnn((1, 28, 28), 10), g).eval() for _ in range(100)]
 ens = jostle.Ensemble.from_modules(nets)
 x = torch.rand(10_000, 784, generator=g)
 ens.predict(x[:100])
-import os
-before = int(open("/proc/self/statm").read().split()[1]) * os.sysconf("SC_PAGE_SIZE") / 2**20  # resident now
+def status(key):  # kB in /proc/self/status
+    return next(int(line.split()[1]) for line in open("/proc/self/status") if line.startswith(key))
+# Reset this address space's resident high-water mark (VmHWM) to the resident size now, so
+# the peak read after the call is the call's own (Linux proc(5), /proc/pid/clear_refs "5");
+# getrusage's ru_maxrss is unfit here: Linux carries it across fork and exec, so a child
+# of a large benchmark process reported its parent's peak.
+open("/proc/self/clear_refs", "w").write("5")
+before = status("VmRSS")
 ens.predict(x)
-# the high-water mark (KiB on Linux) above the resident size before: an upper bound on the extra
-print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024 - before)
+print((status("VmHWM") - before) / 1024)
 """
 
 
