@@ -188,7 +188,11 @@ def test_unreachable_scheduler(tmp_path, capsys, monkeypatch):
 
 @pytest.mark.slow
 def test_sigint_then_rerun_executes_only_the_missing_runs(tmp_path):
-    (tmp_path / "sweep.toml").write_text(SWEEP.format(epochs=400).replace("seeds = [0, 1]", "seeds = [0, 1, 2, 3]"))
+    # 3,000 epochs make each good run about 2 s here (400 made it 0.5 s): after the first one is
+    # stored, the three left take several seconds, so the interrupt lands mid-sweep even when
+    # this poller is starved for a second or two on a loaded machine (at 400 the whole sweep
+    # once finished, exit code 3, before the signal arrived).
+    (tmp_path / "sweep.toml").write_text(SWEEP.format(epochs=3000).replace("seeds = [0, 1]", "seeds = [0, 1, 2, 3]"))
     command = [sys.executable, "-m", "jostle.cli", "sweep", "run", "sweep.toml", "--store", "runs.sqlite", "--quiet"]
     process = subprocess.Popen(command, cwd=tmp_path, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     deadline = time.time() + 120
@@ -201,6 +205,7 @@ def test_sigint_then_rerun_executes_only_the_missing_runs(tmp_path):
                     stored = len(db.statuses())
             except StoreError:  # the writer has created the file but not yet its tables
                 pass
+    assert process.poll() is None, f"the sweep ended before the interrupt (exit {process.returncode}, {stored} stored)"
     process.send_signal(signal.SIGINT)
     _, err = process.communicate(timeout=60)
     assert process.returncode == 130 and err.strip().endswith("jostle sweep run: interrupted")
