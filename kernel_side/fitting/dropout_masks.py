@@ -37,10 +37,12 @@ def mask_sites(module: nn.Module, probe: Tensor) -> list[dict]:
                 shape = tuple(inputs[0].shape[1:])
                 shapes[path] = (shape[0],) + (1,) * (len(shape) - 1) if isinstance(layer, nn.Dropout2d) else shape
             hooks.append(layer.register_forward_hook(record))
+    weight = next(iter(module.parameters()), None)  # the probe goes where the module lives
+    probe = probe[:1] if weight is None else probe[:1].to(weight.device)
     was_training = module.training
     try:
         with torch.no_grad():
-            module.eval()(probe[:1])
+            module.eval()(probe)
     finally:
         module.train(was_training)
         for hook in hooks:
