@@ -123,7 +123,8 @@ class GradientEngine:
         count, points = int(next(iter(params.values())).shape[0]), int(x.shape[0])
         out = x.new_empty((count, *x.shape))
         with torch.enable_grad():
-            member_chunk, point_chunk = self.plan.chunk_sizes(count, points, ens.memory_budget, x.element_size())
+            member_chunk, point_chunk = self.plan.chunk_sizes(count, points, ens.memory_budget, x.element_size(),
+                                                                 x.device)
             for m0 in range(0, count, member_chunk):
                 block = {k: v[m0:m0 + member_chunk] for k, v in params.items()}
                 size = int(next(iter(block.values())).shape[0])

@@ -187,6 +187,13 @@ def test_member_blocks_follow_the_size_rule(cards):
     budget = jostle.DEFAULT_MEMORY_BUDGET
     assert plan.chunk_sizes(100, 1, budget, 4) == (forward.GROUPED_MEMBERS, 1)
     assert plan.chunk_sizes(100, 1000, budget, 4) == (forward.BLOCK_MEMBERS, forward.BLOCK_POINTS)
+    # off the CPU, as large as the budget allows: all 100 members for one image, and for
+    # 1,000 images as many members as fit (no device is touched; the rule reads its type)
+    assert plan.chunk_sizes(100, 1, budget, 4, "cuda") == (100, 1)
+    with torch.no_grad():  # a forward pass holds floats_per_pair float32 values per (member, point)
+        members, points = plan.chunk_sizes(100, 1000, budget, 4, torch.device("cuda"))
+    pair = plan.floats_per_pair * 4
+    assert points == min(1000, budget // pair) and members == max(1, min(100, budget // (pair * points)))
     # a small budget shrinks blocks below the rule: at most budget / bytes per (member, point)
     small = 4 * plan.floats_per_pair * 3
     members, points = plan.chunk_sizes(100, 1000, small, 4)
