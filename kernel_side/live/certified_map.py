@@ -15,6 +15,7 @@ import torch
 
 from jostle.certify.verdicts import pair_bounds, predictive_probability_bounds
 from jostle.common.checks import check_int
+from jostle.live.view_parts import as_input, to_numpy
 from jostle.posterior.ensemble import Ensemble
 
 __all__ = ["RadiusMap", "radius_map", "radius_map_levels", "map_levels", "MAP_ITERATIONS"]
@@ -78,15 +79,15 @@ def radius_map(ens: Ensemble, samples: int, grid: int, lo: tuple, hi: tuple, nor
     grid = check_int("grid", grid, low=2)
     xs, ys = np.linspace(lo[0], hi[0], grid), np.linspace(lo[1], hi[1], grid)
     gx, gy = np.meshgrid(xs, ys)
-    points = torch.as_tensor(np.stack([gx.ravel(), gy.ravel()], axis=1), dtype=ens.dtype)
-    box = (torch.as_tensor(lo, dtype=ens.dtype), torch.as_tensor(hi, dtype=ens.dtype))
+    points = as_input(ens, np.stack([gx.ravel(), gy.ravel()], axis=1))
+    box = (as_input(ens, lo), as_input(ens, hi))
     span = box[1] - box[0]
     top = float(span.max() if norm == "inf" else span.norm())
     iterations = check_int("iterations", iterations, low=1)
     guess = None if start is None else _guess_from(start, xs, ys, norm)
     radius = _bisect_predictive(ens[:samples], points, norm, method, box, top, iterations, guess)
     return RadiusMap(xs=xs.astype(np.float32), ys=ys.astype(np.float32),
-                     radius=radius.reshape(grid, grid).numpy().astype(np.float32),
+                     radius=to_numpy(radius.reshape(grid, grid)).astype(np.float32),
                      resolution=top / 2**iterations, top=top, norm=norm, method=method, samples=samples)
 
 
@@ -128,14 +129,14 @@ def _bisect_predictive(ens: Ensemble, points: torch.Tensor, norm: str, method: s
 
     def holds(eps: torch.Tensor, cells: torch.Tensor) -> torch.Tensor:
         if cells.numel() == 0:
-            return torch.zeros(0, dtype=torch.bool)
+            return torch.zeros(0, dtype=torch.bool, device=points.device)
         low, up = predictive_probability_bounds(pair_bounds(ens, points[cells], eps[cells][None], norm, method, box))
         own = label[cells, None]
         return low.gather(1, own).squeeze(1) > up.scatter(1, own, float("-inf")).amax(1)
 
-    every = torch.arange(points.shape[0])
+    every = torch.arange(points.shape[0], device=points.device)
     resolution = top / 2**iterations
-    lower = torch.zeros(points.shape[0], dtype=points.dtype)
+    lower = torch.zeros(points.shape[0], dtype=points.dtype, device=points.device)
     upper = torch.full_like(lower, top)
 
     def narrow() -> None:
@@ -159,7 +160,7 @@ def _bisect_predictive(ens: Ensemble, points: torch.Tensor, norm: str, method: s
         return lower
     # Check the guess's low end; take its high end as the failing end unchecked, and check it
     # only where the bisection never moved off it (there the answer may lie above the guess).
-    low_guess, high_guess = (g.to(lower.dtype) for g in guess)
+    low_guess, high_guess = (g.to(lower.device, lower.dtype) for g in guess)
     held = holds(low_guess, every)
     lower[held], upper[~held] = low_guess[held], low_guess[~held]
     upper[held] = high_guess[held]

@@ -16,6 +16,7 @@ import torch
 
 from jostle.attacks.readouts import minimal_budget
 from jostle.certify.certificate import CAUTION, certified_radius, certify
+from jostle.live.view_parts import as_input, to_numpy
 from jostle.posterior.ensemble import Ensemble
 
 __all__ = ["RadiusView", "BudgetCertificateView", "radius_part", "budget_certificate_part", "radius_words",
@@ -79,7 +80,7 @@ def radius_part(ens: Ensemble, point: Any, norm: str, samples: int, method: str,
                 budget: float | None = None) -> RadiusView:
     """The certified radius over the first ``samples`` members at ``point``, and the attack's flip budget."""
     members = ens[:samples]
-    x = torch.as_tensor(np.asarray(point, dtype=np.float64)[None], dtype=ens.dtype)
+    x = as_input(ens, [point])
     box = _box(bounds, ens)
     found = certified_radius(members, x, norm=norm, method=method, bounds=box, iterations=RADIUS_ITERATIONS)
     radius = float(found.eps[0])
@@ -88,7 +89,8 @@ def radius_part(ens: Ensemble, point: Any, norm: str, samples: int, method: str,
     flipping = minimal_budget(members, x, norm=norm, bounds=box)
     flip = float(flipping.eps[0])
     search_top = top if top is not None else flip
-    return RadiusView(radius=radius, resolution=resolution, member_radii=found.members[:, 0].numpy().astype(np.float64),
+    return RadiusView(radius=radius, resolution=resolution,
+                      member_radii=to_numpy(found.members[:, 0]).astype(np.float64),
                       flip=flip, search_top=float(search_top), norm=norm, method=method, samples=samples,
                       words=radius_words(radius, flip, norm, method, search_top, budget))
 
@@ -96,7 +98,7 @@ def radius_part(ens: Ensemble, point: Any, norm: str, samples: int, method: str,
 def budget_certificate_part(ens: Ensemble, point: Any, budget: float, norm: str, samples: int, method: str,
                             bounds: Any) -> BudgetCertificateView:
     """:func:`jostle.certify` over the first ``samples`` members at ``point`` and the current budget."""
-    x = torch.as_tensor(np.asarray(point, dtype=np.float64)[None], dtype=ens.dtype)
+    x = as_input(ens, [point])
     cert = certify(ens[:samples], x, eps=float(budget), norm=norm, method=method, bounds=_box(bounds, ens))
     certified = int(cert.members[:, 0].sum())
     share_lower = float(cert.share_lower[0])
@@ -156,7 +158,7 @@ def _box(bounds: Any, ens: Ensemble) -> Any:
     if bounds is None:
         return None
     lo, hi = bounds
-    return (torch.as_tensor(lo, dtype=ens.dtype), torch.as_tensor(hi, dtype=ens.dtype))
+    return as_input(ens, lo), as_input(ens, hi)
 
 
 def _diameter(box: Any, norm: str) -> float | None:

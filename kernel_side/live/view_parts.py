@@ -112,8 +112,7 @@ def spread_part(before: PointView, after: PointView | None, label: int, bins: in
 
 
 def point_part(ens: Ensemble, point: Any) -> PointView:
-    x = torch.as_tensor(np.asarray(point, dtype=np.float64)[None], dtype=ens.dtype)
-    return _summary(ens.predict(x))
+    return _summary(ens.predict(as_input(ens, [point])))
 
 
 def grid_prediction(ens: Ensemble, samples: int, grid: int, lo: tuple, hi: tuple) -> tuple:
@@ -121,9 +120,8 @@ def grid_prediction(ens: Ensemble, samples: int, grid: int, lo: tuple, hi: tuple
     xs = np.linspace(lo[0], hi[0], grid)
     ys = np.linspace(lo[1], hi[1], grid)
     gx, gy = np.meshgrid(xs, ys)
-    points = torch.as_tensor(np.stack([gx.ravel(), gy.ravel()], axis=1), dtype=ens.dtype)
-    member_probs = ens.predict(points, samples=samples).member_probs
-    return xs, ys, member_probs.reshape(member_probs.shape[0], grid, grid, -1).to(torch.float32)
+    member_probs = ens.predict(as_input(ens, np.stack([gx.ravel(), gy.ravel()], axis=1)), samples=samples).member_probs
+    return xs, ys, member_probs.reshape(member_probs.shape[0], grid, grid, -1).to("cpu", torch.float32)
 
 
 def grid_part(prediction: tuple, layer: str, boundaries: int) -> GridView:
@@ -150,28 +148,28 @@ def grid_part(prediction: tuple, layer: str, boundaries: int) -> GridView:
 
 
 def attack_part(ens: Ensemble, state: Any, label: int) -> tuple[AttackView, PointView]:
-    x = torch.as_tensor(np.asarray(state.point, dtype=np.float64)[None], dtype=ens.dtype)
-    adv = attack(ens, x, y=torch.tensor([label]), method=state.method, eps=state.budget, norm=state.norm,
-                 steps=state.steps, samples=state.samples, objective=state.objective, seed=state.seed)
-    path = _numpy(adv.path)[:, 0, :]
-    x_adv = _numpy(adv.x_adv)[0]
+    x = as_input(ens, [state.point])
+    adv = attack(ens, x, y=torch.tensor([label], device=ens.device), method=state.method, eps=state.budget,
+                 norm=state.norm, steps=state.steps, samples=state.samples, objective=state.objective, seed=state.seed)
+    path = to_numpy(adv.path)[:, 0, :]
+    x_adv = to_numpy(adv.x_adv)[0]
     if state.path_probs:
-        along = ens.predict(torch.as_tensor(path, dtype=ens.dtype)).probs[:, label].numpy()
+        along = to_numpy(ens.predict(as_input(ens, path)).probs[:, label])
     else:
         along = np.full(path.shape[0], np.nan)
     delta = x_adv - np.asarray(state.point, dtype=x_adv.dtype)
     distance = float(np.abs(delta).max() if state.norm == "inf" else np.linalg.norm(delta))
-    view = AttackView(x_adv=x_adv, path=path.astype(np.float32), loss=_numpy(adv.loss)[:, 0].astype(np.float32),
-                      label_prob=along.astype(np.float32), success=bool(_numpy(adv.success)[0]),
+    view = AttackView(x_adv=x_adv, path=path.astype(np.float32), loss=to_numpy(adv.loss)[:, 0].astype(np.float32),
+                      label_prob=along.astype(np.float32), success=bool(to_numpy(adv.success)[0]),
                       distance=distance)
     return view, point_part(ens, x_adv)
 
 
 def fade_part(ens: Ensemble, point: Any, label: int, repeats: int, seed: int) -> FadeView:
-    x = torch.as_tensor(np.asarray(point, dtype=np.float64)[None], dtype=ens.dtype)
     size = len(ens)
     counts = sorted({2**k for k in range(int(math.log2(size)) + 1)} | {size})
-    fade = gradient_fade(ens, x, torch.tensor([label]), sample_counts=counts, repeats=repeats, seed=seed)
+    fade = gradient_fade(ens, as_input(ens, [point]), torch.tensor([label], device=ens.device), sample_counts=counts,
+                         repeats=repeats, seed=seed)
     norms = np.asarray(fade.norms["l2"], dtype=np.float64)[..., 0]  # (counts, repeats)
     return FadeView(counts=np.asarray(fade.sample_counts, dtype=np.int64),
                     norm_mean=np.asarray(fade.norm_mean["l2"], dtype=np.float64), norm_low=norms.min(axis=1),
@@ -179,14 +177,20 @@ def fade_part(ens: Ensemble, point: Any, label: int, repeats: int, seed: int) ->
 
 
 def _summary(pred: Prediction) -> PointView:
-    return PointView(probs=pred.probs[0].numpy().astype(np.float64), lower=pred.lower[0].numpy().astype(np.float64),
-                     upper=pred.upper[0].numpy().astype(np.float64),
-                     member_probs=pred.member_probs[:, 0].numpy().astype(np.float32),
+    return PointView(probs=to_numpy(pred.probs[0]).astype(np.float64),
+                     lower=to_numpy(pred.lower[0]).astype(np.float64), upper=to_numpy(pred.upper[0]).astype(np.float64),
+                     member_probs=to_numpy(pred.member_probs[:, 0]).astype(np.float32),
                      total=float(pred.total[0]), aleatoric=float(pred.aleatoric[0]),
                      epistemic=float(pred.epistemic[0]), agreement=float(pred.agreement[0]))
 
 
-def _numpy(value: Any) -> np.ndarray:
+def as_input(ens: Ensemble, values: Any) -> torch.Tensor:
+    """Points for ``ens``: in its dtype, on its device (views are computed where the members live)."""
+    return torch.as_tensor(np.asarray(values, dtype=np.float64), dtype=ens.dtype, device=ens.device)
+
+
+def to_numpy(value: Any) -> np.ndarray:
+    """A view's array, from a tensor on any device."""
     if isinstance(value, torch.Tensor):
         return value.detach().cpu().numpy()
     return np.asarray(value)

@@ -169,3 +169,57 @@ def test_sgmcmc_on_the_gpu_matches_the_closed_form_posterior():
     bias = np.abs(stationary_covariance(precision.numpy(), eta, 0.5) - exact)
     se = (seconds.std(0) / math.sqrt(chains)).numpy()
     assert np.all(np.abs(seconds.mean(0).numpy() - exact) <= 4 * se + bias)
+
+
+def _same_view(got, want):
+    """Two live views agree to float64 sums (module docstring), part by part."""
+    for part in ("before", "after"):
+        for name in ("probs", "lower", "upper", "member_probs"):
+            np.testing.assert_allclose(getattr(getattr(got, part), name), getattr(getattr(want, part), name),
+                                       atol=1e-6, rtol=0)  # member_probs are sent as float32: 6e-8 of 1
+    assert got.label == want.label and got.errors == want.errors == []
+    np.testing.assert_allclose(got.attack.x_adv, want.attack.x_adv, atol=1e-7, rtol=0)  # L-inf sign steps
+    np.testing.assert_allclose(got.fade.norm_mean, want.fade.norm_mean, rtol=1e-9)
+
+
+def test_live_views_are_computed_where_the_members_live():
+    # The widgets' engine (jostle.live) on a GPU ensemble: every part of a 2-D view (map,
+    # member boundaries, attack, fade, certified radius and flip budget, the certified map)
+    # and of an image view (the certificate at the budget) equals the CPU's.
+    import jostle.live.engine as live
+    from jostle.live.certified_map import radius_map
+
+    g = torch.Generator().manual_seed(2)
+    nets = [jostle.init_parameters(jostle.mlp(2, 2, hidden=(16, 16)), g) for _ in range(6)]
+    cpu = jostle.Ensemble.from_modules(nets).to(dtype=F64)
+    gpu = cpu.to(device="cuda")
+    box = ([-2.0, -1.5], [2.5, 2.0])
+    state = live.ExplorerState(point=(0.3, -0.2), budget=0.2, samples=4, steps=10, grid=16, boundaries=3,
+                               certificate="crown")
+    got, want = live.compute_view(gpu, state, bounds=box), live.compute_view(cpu, state, bounds=box)
+    _same_view(got, want)
+    np.testing.assert_allclose(got.grid.probs, want.grid.probs, atol=1e-6, rtol=0)  # float32 on the wire
+    # A member's boundary is traced by interpolating its tie between grid cells: the same
+    # crossings up to the float32 grid's rounding.
+    assert got.grid.segments.shape == want.grid.segments.shape
+    np.testing.assert_allclose(got.grid.segments, want.grid.segments, atol=1e-4, rtol=0)
+    # Bisection brackets compare bounds against each other; float64 sums of 16-wide layers
+    # cannot move a comparison except at an exact tie, so the radii match to one bracket.
+    assert abs(got.radius.radius - want.radius.radius) <= want.radius.resolution
+    assert got.radius.flip == pytest.approx(want.radius.flip, abs=want.radius.resolution + 1e-6)
+    cells_gpu = radius_map(gpu, 4, 8, *box, method="ibp")
+    cells_cpu = radius_map(cpu, 4, 8, *box, method="ibp")
+    np.testing.assert_allclose(cells_gpu.radius, cells_cpu.radius, atol=cells_cpu.resolution, rtol=0)
+
+    cards = jostle.datasets.meter_cards(resolution=28, colour=True)
+    g = torch.Generator().manual_seed(3)
+    nets = [jostle.init_parameters(jostle.cnn(cards.image_shape, 10, channels=(4, 8)), g).eval() for _ in range(4)]
+    cpu = jostle.Ensemble.from_modules(nets).to(dtype=F64)
+    image = live.ExplorerState(point=tuple(cards.x_test[0].double().tolist()), budget=0.05, steps=5, grid=0,
+                               boundaries=0, certificate="ibp", radius=False, path_probs=False)
+    image_box = tuple(np.asarray(b, dtype=float) for b in cards.bounds)
+    got = live.compute_view(cpu.to(device="cuda"), image, bounds=image_box)
+    want = live.compute_view(cpu, image, bounds=image_box)
+    _same_view(got, want)
+    assert got.budget_certificate.certified == want.budget_certificate.certified
+    assert got.budget_certificate.share_lower == pytest.approx(want.budget_certificate.share_lower, abs=1e-12)
