@@ -22,6 +22,7 @@ import torch
 
 import jostle
 from jostle.fitting.hmc.diagnostics import ConvergenceWarning
+from tests.kernel_side.references.bayesian_regression import regression_problem
 from tests.kernel_side.references.sghmc_stationary import stationary_covariance
 
 pytestmark = pytest.mark.skipif(not torch.cuda.is_available(), reason="no CUDA device on this machine")
@@ -136,21 +137,9 @@ def test_fits_train_on_the_gpu():
 
 
 def test_sgmcmc_on_the_gpu_matches_the_closed_form_posterior():
-    # Bishop (2006) 3.3: prior N(0, alpha^-1 I), noise precision beta; S_N^-1 = alpha I + beta
-    # Phi^T Phi (eq. 3.54), m_N = beta S_N Phi^T t (eq. 3.53). 2,000 chains on the GPU.
-    generator = torch.Generator().manual_seed(0)
-    x = torch.linspace(-1.0, 1.0, 20, dtype=F64)
-    phi = torch.stack([torch.ones_like(x), x], 1)
-    t = 0.3 - 0.7 * x + 0.2 * torch.randn(20, generator=generator, dtype=F64)
-    alpha, beta = 2.0, 25.0
-    precision = alpha * torch.eye(2, dtype=F64) + beta * phi.T @ phi
-    mean = beta * torch.linalg.solve(precision, phi.T @ t)
-    phi_d, t_d = phi.cuda(), t.cuda()
-
-    def log_density(w):
-        residual = t_d - w @ phi_d.T
-        return -0.5 * beta * (residual * residual).sum(-1) - 0.5 * alpha * (w * w).sum(-1)
-
+    # Bishop (2006) 3.3 (references/bayesian_regression.py), 2,000 chains on the GPU, as in
+    # test_sgmcmc's CPU check.
+    log_density, mean, precision = regression_problem(device="cuda")
     lam_max = float(torch.linalg.eigvalsh(precision).max())
     eta = 0.2 / lam_max
     # Over-dispersed start (10x the spread), as in test_sgmcmc, so a sampler that did not move would fail.

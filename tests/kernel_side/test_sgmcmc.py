@@ -15,26 +15,10 @@ from jostle.fitting.hmc.diagnostics import ConvergenceWarning
 from jostle.fitting.hmc.network_density import NetworkPosterior, map_start
 from jostle.fitting.sgmcmc.fit import MinibatchDensity
 from jostle.fitting.sgmcmc.kernel import cyclical_step_size, sampling_steps
+from tests.kernel_side.references.bayesian_regression import regression_problem
 from tests.kernel_side.references.sghmc_stationary import stationary_covariance, stationary_variance
 
 F64 = torch.float64
-
-
-def _regression_problem():
-    """Bishop (2006), section 3.3: prior N(0, alpha^-1 I), Gaussian noise of precision beta."""
-    generator = torch.Generator().manual_seed(0)
-    x = torch.linspace(-1.0, 1.0, 20, dtype=F64)
-    phi = torch.stack([torch.ones_like(x), x], 1)
-    t = 0.3 - 0.7 * x + 0.2 * torch.randn(20, generator=generator, dtype=F64)
-    alpha, beta = 2.0, 25.0
-    precision = alpha * torch.eye(2, dtype=F64) + beta * phi.T @ phi      # S_N^-1, eq. 3.54
-    mean = beta * torch.linalg.solve(precision, phi.T @ t)                 # m_N, eq. 3.53
-
-    def log_density(w):
-        residual = t - w @ phi.T
-        return -0.5 * beta * (residual * residual).sum(-1) - 0.5 * alpha * (w * w).sum(-1)
-
-    return log_density, mean, precision
 
 
 def _per_chain_moments(samples: torch.Tensor, centre: torch.Tensor):
@@ -59,7 +43,7 @@ BURN = 10
 
 
 def _regression_draws(eta_lam: float, seed: int = 0):
-    log_density, mean, precision = _regression_problem()
+    log_density, mean, precision = regression_problem()
     lam_max = float(torch.linalg.eigvalsh(precision).max())
     # Start over-dispersed (10x the posterior spread around 0) so a sampler that did not move would fail.
     start = torch.randn(2000, 2, generator=torch.Generator().manual_seed(1), dtype=F64) * 10 / math.sqrt(lam_max)
@@ -96,7 +80,7 @@ def test_the_step_size_bias_shrinks_with_the_step():
 
 def test_sgld_matches_the_closed_form_posterior():
     # SGLD (Welling & Teh 2011) is the update with friction 1.
-    log_density, mean, precision = _regression_problem()
+    log_density, mean, precision = regression_problem()
     lam_max = float(torch.linalg.eigvalsh(precision).max())
     start = torch.zeros(500, 2, dtype=F64)
     draws = jostle.sample_sgmcmc(log_density, start, cycles=1, steps_per_cycle=800, draws_per_cycle=40,
