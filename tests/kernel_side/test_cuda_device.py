@@ -22,7 +22,7 @@ import torch
 
 import jostle
 from jostle.fitting.hmc.diagnostics import ConvergenceWarning
-from tests.kernel_side.references.bayesian_regression import regression_problem
+from tests.kernel_side.references.bayesian_regression import per_chain_moments, regression_problem
 from tests.kernel_side.references.sghmc_stationary import stationary_covariance
 
 pytestmark = pytest.mark.skipif(not torch.cuda.is_available(), reason="no CUDA device on this machine")
@@ -149,10 +149,8 @@ def test_sgmcmc_on_the_gpu_matches_the_closed_form_posterior():
     assert draws.samples.device.type == "cuda"
     samples = draws.samples[:, 10:].cpu()  # the first 10 draws: the start's memory (test_sgmcmc's BURN)
     chains = samples.shape[0]
-    chain_means = samples.mean(1)
+    chain_means, seconds = per_chain_moments(samples, mean)
     assert torch.all((chain_means.mean(0) - mean).abs() <= 4 * chain_means.std(0) / math.sqrt(chains))  # 4 s.e.
-    d = samples - mean
-    seconds = torch.einsum("cti,ctj->cij", d, d) / samples.shape[1]  # each chain's, independent over chains
     exact = torch.linalg.inv(precision).numpy()
     # 4 standard errors plus the O(eta) bias of the largest step (Lyapunov reference).
     bias = np.abs(stationary_covariance(precision.numpy(), eta, 0.5) - exact)

@@ -15,24 +15,15 @@ from jostle.fitting.hmc.diagnostics import ConvergenceWarning
 from jostle.fitting.hmc.network_density import NetworkPosterior, map_start
 from jostle.fitting.sgmcmc.fit import MinibatchDensity
 from jostle.fitting.sgmcmc.kernel import cyclical_step_size, sampling_steps
-from tests.kernel_side.references.bayesian_regression import regression_problem
+from tests.kernel_side.references.bayesian_regression import per_chain_moments, regression_problem
 from tests.kernel_side.references.sghmc_stationary import stationary_covariance, stationary_variance
 
 F64 = torch.float64
 
 
-def _per_chain_moments(samples: torch.Tensor, centre: torch.Tensor):
-    """Each chain's mean and second moment about ``centre``: independent across chains, so their
-    spread over chains gives the Monte Carlo standard error of the pooled values."""
-    means = samples.mean(1)
-    d = samples - centre
-    seconds = torch.einsum("cti,ctj->cij", d, d) / samples.shape[1]
-    return means, seconds
-
-
 def _whitened_excess(samples, mean, precision):
     """tr(S_N^-1 C) / d - 1 per chain: the relative excess of the draws' variance (0 when exact)."""
-    _, seconds = _per_chain_moments(samples, mean)
+    _, seconds = per_chain_moments(samples, mean)
     per_chain = torch.einsum("ij,cji->c", precision, seconds) / precision.shape[0] - 1.0
     return float(per_chain.mean()), float(per_chain.std() / math.sqrt(per_chain.numel()))
 
@@ -55,7 +46,7 @@ def _regression_draws(eta_lam: float, seed: int = 0):
 def test_bayesian_linear_regression_matches_the_closed_form_posterior():
     draws, mean, precision, eta = _regression_draws(0.2)
     samples = draws.samples[:, BURN:]
-    means, seconds = _per_chain_moments(samples, mean)
+    means, seconds = per_chain_moments(samples, mean)
     chains = samples.shape[0]
     # The mean of the affine update's stationary law is m_N exactly; 4 standard errors.
     se_mean = means.std(0) / math.sqrt(chains)
@@ -86,7 +77,7 @@ def test_sgld_matches_the_closed_form_posterior():
     draws = jostle.sample_sgmcmc(log_density, start, cycles=1, steps_per_cycle=800, draws_per_cycle=40,
                                  method="sgld", step_size=0.1 / lam_max, exploration=0.0, seed=3)
     samples = draws.samples[:, 2:]
-    means, seconds = _per_chain_moments(samples, mean)
+    means, seconds = per_chain_moments(samples, mean)
     se_mean = means.std(0) / math.sqrt(samples.shape[0])
     assert torch.all((means.mean(0) - mean).abs() <= 4 * se_mean)
     bias = np.abs(stationary_covariance(precision.numpy(), 0.1 / lam_max, 1.0) - torch.linalg.inv(precision).numpy())

@@ -27,3 +27,13 @@ def regression_problem(device: str | torch.device = "cpu"):
         return -0.5 * beta * (residual * residual).sum(-1) - 0.5 * alpha * (w * w).sum(-1)
 
     return log_density, mean, precision
+
+
+def per_chain_moments(samples: torch.Tensor, centre: torch.Tensor):
+    """Each chain's mean and second moment about ``centre`` (samples of shape (chains, draws,
+    d)): independent across chains, so their spread over chains gives the Monte Carlo standard
+    error of the pooled values."""
+    means = samples.mean(1)
+    d = samples - centre
+    seconds = torch.einsum("cti,ctj->cij", d, d) / samples.shape[1]
+    return means, seconds
